@@ -1,0 +1,252 @@
+"""The ``mapkit`` command: one program, one subcommand per job.
+
+Exit status: 0 success, 2 a problem with the user's input (one line on
+stderr), 1 an internal error (a bug: please report it with MAPKIT_DEBUG=1
+output).
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import re
+import sys
+from pathlib import Path
+
+from .errors import MapkitError
+
+SAMPLE_DIR = Path(__file__).resolve().parent.parent / "sample_maps"
+
+
+def _band(text: str):
+    m = re.fullmatch(r"\s*(?:([A-Za-z_][\w.-]*)[:=])?\s*([\d.]+)\s*-\s*([\d.]+)\s*", text)
+    if not m:
+        raise argparse.ArgumentTypeError(f"band {text!r} is not NAME:LO-HI (e.g. api:845-872)")
+    lo, hi = float(m.group(2)), float(m.group(3))
+    return (m.group(1) or f"band_{lo:g}_{hi:g}", lo, hi)
+
+
+def _positive_int(text: str) -> int:
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
+    if v < 1:
+        raise argparse.ArgumentTypeError(f"{text} must be at least 1")
+    return v
+
+
+def _add_read_options(p):
+    g = p.add_argument_group("reading a cube from any HDF5 file")
+    g.add_argument("--dataset", help="path of the intensity cube inside the HDF5 file")
+    g.add_argument("--axes", help="the cube's axis order, e.g. y,x,raman_shift")
+    g.add_argument("--shift", help="path of the Raman shift dataset (cm-1)")
+    g.add_argument("--x", dest="x_path", help="path of the x positions dataset (um)")
+    g.add_argument("--y", dest="y_path", help="path of the y positions dataset (um)")
+    g.add_argument("--pixel-size", type=float, help="step in um when no position datasets exist")
+    p.add_argument("--laser", type=float, help="excitation wavelength in nm, if the file lacks it")
+
+
+def _open_kwargs(a) -> dict:
+    return {"dataset": a.dataset, "axes": a.axes, "shift": a.shift, "x": a.x_path,
+            "y": a.y_path, "pixel_size": a.pixel_size, "laser_wavelength": a.laser}
+
+
+def _add_analysis_options(p):
+    p.add_argument("--out", default="mapkit-output", help="folder for the outputs (default: %(default)s)")
+    p.add_argument("--library", help="folder of reference spectra (.jdx or two-column text)")
+    p.add_argument("--standards", help="calibration standards table (CSV)")
+    p.add_argument("--analyte", help="reference to quantify (default: from the standards file)")
+    p.add_argument("--band", action="append", type=_band, metavar="NAME:LO-HI",
+                   help="band image to integrate, cm-1 (repeatable)")
+    p.add_argument("--components", type=_positive_int, default=4, help="NMF components (default 4)")
+    p.add_argument("--classes", type=_positive_int, default=4, help="k-means classes (default 4)")
+    p.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    p.add_argument("--overwrite", action="store_true", help="replace existing outputs")
+    p.add_argument("--no-figures", action="store_true", help="skip PNG figures")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+
+
+def _run_analysis(a, map_path, library, standards, bands):
+    from .pipeline import Settings, analyse
+
+    s = Settings(n_components=a.components, n_classes=a.classes, seed=a.seed,
+                 analyte=a.analyte)
+    if bands:
+        s.bands = bands
+    out = analyse(map_path, a.out, library=library, standards=standards, settings=s,
+                  overwrite=a.overwrite, progress=not a.quiet, figures=not a.no_figures,
+                  open_kwargs=_open_kwargs(a) if hasattr(a, "dataset") else None)
+    summ = out["summary"]
+    print(f"map       {map_path}  ({summ['shape'][0]} x {summ['shape'][1]} pixels, "
+          f"{summ['shape'][2]} channels)")
+    bp = summ["bad_pixels"]
+    print(f"masked    {bp['nonfinite']} non-finite, {bp['dead']} dead, {bp['saturated']} saturated pixels")
+    sp = summ["spikes"]
+    print(f"spikes    {sp['channels_replaced']} channels replaced in {sp['spectra_touched']} spectra")
+    for note in summ["notices"]:
+        print(f"notice    {note}")
+    km = summ["results"].get("kmeans", {}).get("areas", {})
+    if km:
+        print("classes   " + ", ".join(f"{k} {v['fraction_pct']:.1f} %" for k, v in km.items()))
+    conc = summ["results"].get("concentration")
+    if conc:
+        cal = conc["calibration"]
+        print(f"calibration {cal['analyte']}: r = {cal['r']:.4f}, LOD {cal['lod']:.2f} "
+              f"{cal['unit']}, LOQ {cal['loq']:.2f} {cal['unit']}")
+        print(f"content   mean {conc['mean']:.2f} {conc['unit']}, median "
+              f"{conc['percentiles'][50]:.2f}; {conc['below_loq']} of {conc['pixels']} pixels "
+              f"below LOQ, {conc['outside_range']} outside the calibrated range")
+    print(f"wrote     {len(out['written'])} files to {Path(a.out)}/")
+    for p in out["written"]:
+        if p.suffix in (".h5", ".json"):
+            print(f"          {p}")
+    return out
+
+
+def cmd_demo(a):
+    if not (SAMPLE_DIR / "tablet_map.h5").exists():
+        raise MapkitError("the bundled sample map is missing", file=SAMPLE_DIR / "tablet_map.h5",
+                          fix="run 'mapkit samples sample_maps' in the source tree")
+    print("demo: invented tablet cross-section (synthetic data, see sample_maps/README.md)")
+    bands = a.band or [("acetaminophen_858", 845.0, 872.0), ("calcite_1086", 1080.0, 1092.0),
+                       ("anatase_144", 125.0, 165.0)]
+    return _run_analysis(a, SAMPLE_DIR / "tablet_map.h5", SAMPLE_DIR / "library",
+                         SAMPLE_DIR / "calibration_standards.csv", bands)
+
+
+def cmd_analyse(a):
+    return _run_analysis(a, a.map, a.library, a.standards, a.band)
+
+
+def cmd_info(a):
+    from .read import open_map
+    from .read.nexus import is_nexus_map, read_results
+
+    m = open_map(a.map, **_open_kwargs(a))
+    print(repr(m))
+    if m.laser_wavelength:
+        print(f"laser     {m.laser_wavelength:g} nm")
+    for step in m.provenance:
+        print(f"step      {step.name} {step.parameters}")
+    if is_nexus_map(a.map):
+        for name, r in read_results(a.map).items():
+            fields = ", ".join(f"{k} {tuple(v['data'].shape)}" for k, v in r["fields"].items())
+            print(f"result    {name} ({r['method']}): {fields}")
+
+
+def cmd_convert(a):
+    from .export import write_map
+    from .read import open_map
+
+    m = open_map(a.input, **_open_kwargs(a))
+    write_map(a.output, m, overwrite=a.overwrite)
+    print(f"wrote {a.output}: {m!r}")
+
+
+def cmd_spectrum(a):
+    import numpy as np
+
+    from .read import open_map
+
+    m = open_map(a.map, **_open_kwargs(a))
+    ix = int(np.argmin(np.abs(m.x - a.at[0])))
+    iy = int(np.argmin(np.abs(m.y - a.at[1])))
+    s = m.spectrum(iy, ix)
+    print(f"# pixel x={m.x[ix]:g} um, y={m.y[iy]:g} um (column {ix}, row {iy})")
+    print("raman_shift_cm-1,intensity")
+    for sh, v in zip(m.raman_shift, s):
+        print(f"{sh:.3f},{v:.6g}")
+
+
+def cmd_samples(a):
+    from .samples import write_samples
+
+    for p in write_samples(a.outdir):
+        print(p)
+
+
+def cmd_view(a):
+    try:
+        import napari
+        from mapkit_napari import open_with_panels
+    except ImportError:
+        raise MapkitError("the viewer needs napari and the mapkit-napari plugin",
+                          field="view", fix="pip install -e plugins (see README)") from None
+    open_with_panels(a.map)
+    napari.run()
+
+
+def build_parser() -> argparse.ArgumentParser:
+    from ._version import __version__
+
+    p = argparse.ArgumentParser(prog="mapkit", description=(
+        "Turn hyperspectral Raman maps into component images, spectral classes and "
+        "concentration maps."))
+    p.add_argument("--version", action="version", version=f"mapkit {__version__}")
+    sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    d = sub.add_parser("demo", help="run the whole path on the bundled synthetic map",
+                       description="Run the whole path on the bundled, invented sample map.")
+    _add_analysis_options(d)
+    d.set_defaults(func=cmd_demo)
+
+    an = sub.add_parser("analyse", help="clean, reduce and quantify one map file",
+                        description="Remove spikes and baseline, then band images, NMF, "
+                                    "k-means classes, unmixing and a concentration map.")
+    an.add_argument("map", help="map file (.h5 mapkit layout, any HDF5 with --dataset, or text table)")
+    _add_analysis_options(an)
+    _add_read_options(an)
+    an.set_defaults(func=cmd_analyse)
+
+    i = sub.add_parser("info", help="describe a map or results file")
+    i.add_argument("map")
+    _add_read_options(i)
+    i.set_defaults(func=cmd_info)
+
+    c = sub.add_parser("convert", help="write any readable map in the mapkit HDF5 layout")
+    c.add_argument("input")
+    c.add_argument("output")
+    c.add_argument("--overwrite", action="store_true")
+    _add_read_options(c)
+    c.set_defaults(func=cmd_convert)
+
+    s = sub.add_parser("spectrum", help="print one pixel's spectrum as CSV")
+    s.add_argument("map")
+    s.add_argument("--at", nargs=2, type=float, metavar=("X_UM", "Y_UM"), required=True,
+                   help="stage position in um (nearest pixel)")
+    _add_read_options(s)
+    s.set_defaults(func=cmd_spectrum)
+
+    g = sub.add_parser("samples", help="regenerate the synthetic sample data")
+    g.add_argument("outdir")
+    g.set_defaults(func=cmd_samples)
+
+    v = sub.add_parser("view", help="open a map in napari with the mapkit panels")
+    v.add_argument("map")
+    v.set_defaults(func=cmd_view)
+    return p
+
+
+def main(argv=None) -> int:
+    args = build_parser().parse_args(argv)
+    try:
+        args.func(args)
+    except MapkitError as exc:
+        print(f"mapkit: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("mapkit: interrupted", file=sys.stderr)
+        return 130
+    except Exception as exc:  # a bug, not a user mistake
+        if os.environ.get("MAPKIT_DEBUG"):
+            raise
+        first = str(exc).splitlines()[0] if str(exc) else ""
+        print(f"mapkit: internal error: {type(exc).__name__}: {first} "
+              "(rerun with MAPKIT_DEBUG=1 for the traceback and report it)", file=sys.stderr)
+        return 1
+    return 0
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

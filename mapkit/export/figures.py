@@ -1,0 +1,107 @@
+"""Figures: maps with a scale bar and a colourbar with units, spectra on the shift axis."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ..core.result import Field
+from .atomic import atomic_path
+
+#: Colour-blind-safe qualitative palette for classes (Okabe & Ito 2008, "Color
+#: Universal Design"); quantities use the perceptually uniform 'cividis'.
+CLASS_COLOURS = ("#0072B2", "#E69F00", "#009E73", "#CC79A7", "#56B4E9", "#D55E00",
+                 "#F0E442", "#000000")
+QUANTITY_CMAP = "cividis"
+
+
+def _nice_length(span_um: float) -> float:
+    """A round scale-bar length near a fifth of the field of view."""
+    target = span_um / 5
+    mag = 10 ** np.floor(np.log10(target))
+    for f in (5, 2, 1):
+        if f * mag <= target:
+            return float(f * mag)
+    return float(mag)
+
+
+def _scale_bar(ax, extent):
+    from matplotlib.patches import Rectangle
+    from matplotlib.patheffects import withStroke
+
+    x0, x1, y0, y1 = extent
+    length = _nice_length(abs(x1 - x0))
+    pad = 0.05 * abs(x1 - x0)
+    h = 0.02 * abs(y1 - y0)
+    bx, by = x0 + pad, y0 + pad if y0 < y1 else y0 - pad
+    ax.add_patch(Rectangle((bx, by), length, h, color="white", ec="black", lw=0.6))
+    label = f"{length:g} µm"
+    ax.text(bx + length / 2, by + 2.5 * h, label, ha="center", va="top" if y0 > y1 else "bottom",
+            color="white", fontsize=8,
+            path_effects=[withStroke(linewidth=2, foreground="black")])
+
+
+def _figure(**kw):
+    from matplotlib.figure import Figure  # no pyplot: no global state, no GUI backend
+    return Figure(**kw)
+
+
+def save_image_figure(path, field: Field, index: int | None = None, *, title: str = "",
+                      classes: bool = False, overwrite: bool = False, dpi: int = 150):
+    """Save one image (a 2-D field, or plane ``index`` of a stack) as PNG or SVG."""
+    from matplotlib.colors import BoundaryNorm, ListedColormap
+
+    img = np.asarray(field.data if index is None else field.data[index], dtype=float)
+    y, x = field.axes[-2].values, field.axes[-1].values
+    dy = abs(y[1] - y[0]) if len(y) > 1 else 1.0
+    dx = abs(x[1] - x[0]) if len(x) > 1 else 1.0
+    extent = (x[0] - dx / 2, x[-1] + dx / 2, y[-1] + dy / 2, y[0] - dy / 2)
+    fig = _figure(figsize=(5.2, 4.2), layout="constrained")
+    ax = fig.add_subplot()
+    if classes:
+        n = int(np.nanmax(img)) + 1
+        cmap = ListedColormap(CLASS_COLOURS[:max(n, 1)])
+        cmap.set_bad("#bbbbbb")
+        masked = np.ma.masked_less(img, 0)
+        im = ax.imshow(masked, extent=extent, cmap=cmap, interpolation="nearest",
+                       norm=BoundaryNorm(np.arange(-0.5, n + 0.5), n))
+        cb = fig.colorbar(im, ax=ax, ticks=np.arange(n))
+        cb.ax.set_yticklabels([f"class {k + 1}" for k in range(n)])
+    else:
+        im = ax.imshow(np.ma.masked_invalid(img), extent=extent, cmap=QUANTITY_CMAP,
+                       interpolation="nearest")
+        im.cmap.set_bad("#bbbbbb")
+        cb = fig.colorbar(im, ax=ax)
+        cb.set_label(f"{field.long_name or field.signal}" + (f" ({field.units})" if field.units else ""))
+    ax.set_xlabel("x (µm)")
+    ax.set_ylabel("y (µm)")
+    _scale_bar(ax, extent)
+    ax.set_title(title, fontsize=10)
+    with atomic_path(path, overwrite=overwrite) as tmp:
+        fig.savefig(tmp, dpi=dpi, format=str(path).rsplit(".", 1)[-1])
+    return path
+
+
+def save_spectra_figure(path, field: Field, *, title: str = "", classes: bool = False,
+                        overwrite: bool = False, dpi: int = 150):
+    """Save stacked spectra (component or class spectra) against Raman shift."""
+    shift = field.axes[-1].values
+    names = [str(v) for v in field.axes[0].values]
+    fig = _figure(figsize=(6.4, 4.0), layout="constrained")
+    ax = fig.add_subplot()
+    data = np.asarray(field.data, float)
+    offset = 1.1 * np.nanmax(np.abs(data)) if data.size else 1.0
+    for k, (name, spec) in enumerate(zip(names, data)):
+        colour = CLASS_COLOURS[k % len(CLASS_COLOURS)]
+        ax.plot(shift, spec + k * offset, color=colour, lw=1.0, label=name)
+        if field.errors is not None:
+            sd = np.asarray(field.errors[k], float)
+            ax.fill_between(shift, spec - sd + k * offset, spec + sd + k * offset,
+                            color=colour, alpha=0.25, lw=0)
+    ax.set_xlabel("Raman shift (cm⁻¹)")
+    ax.set_ylabel(f"intensity ({field.units}), offset" if field.units else "intensity, offset")
+    ax.set_yticks([])
+    ax.legend(fontsize=8, loc="upper right")
+    ax.set_title(title, fontsize=10)
+    with atomic_path(path, overwrite=overwrite) as tmp:
+        fig.savefig(tmp, dpi=dpi, format=str(path).rsplit(".", 1)[-1])
+    return path

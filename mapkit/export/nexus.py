@@ -1,0 +1,157 @@
+"""Write maps and results in the mapkit NeXus layout (see docs/file-layout.md)."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from pathlib import Path
+
+import numpy as np
+
+from .. import layout
+from ..core.provenance import Step, library_versions
+from ..core.ramanmap import RamanMap
+from ..core.result import Result
+from .atomic import atomic_path
+
+
+def _str_attr(obj, name, value):
+    obj.attrs[name] = value
+
+
+def _write_axis(group, name, values, units):
+    d = group.create_dataset(name, data=np.asarray(values))
+    if units:
+        d.attrs["units"] = units
+    return d
+
+
+def _write_provenance(f, steps, extra: dict | None = None):
+    import h5py
+
+    g = f.require_group(layout.PROVENANCE)
+    g.attrs["NX_class"] = "NXcollection"
+    if "steps" in g:
+        del g["steps"]
+    g.create_dataset("steps", data=[s.to_json() for s in steps], dtype=h5py.string_dtype())
+    g.attrs["versions"] = json.dumps(library_versions(), sort_keys=True)
+    for k, v in (extra or {}).items():
+        g.attrs[k] = json.dumps(v, sort_keys=True) if not isinstance(v, str) else v
+
+
+def file_sha256(path) -> str:
+    """SHA-256 of a file, read in blocks (recorded so a result names its exact input)."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def _write_cube(f, m: RamanMap, compression):
+    """Write the cube tile by tile, so a lazy map never has to fit in memory."""
+    import h5py  # noqa: F401
+
+    g = f.require_group(layout.MAP)
+    g.attrs["NX_class"] = "NXdata"
+    g.attrs["signal"] = "intensity"
+    g.attrs["axes"] = list(layout.AXES)
+    for i, name in enumerate(layout.AXES):
+        g.attrs[f"{name}_indices"] = i
+    ny, nx, ns = m.shape
+    chunks = layout.pixel_tile(ny, nx, ns)
+    d = g.create_dataset("intensity", shape=(ny, nx, ns), dtype="float32", chunks=chunks,
+                         compression=compression, shuffle=compression is not None)
+    d.attrs["units"] = "counts"
+    d.attrs["long_name"] = "Raman intensity"
+    ty, tx, _ = chunks
+    for y0 in range(0, ny, ty):
+        for x0 in range(0, nx, tx):
+            d[y0:y0 + ty, x0:x0 + tx] = np.asarray(m.intensity[y0:y0 + ty, x0:x0 + tx, :],
+                                                   dtype=np.float32)
+    _write_axis(g, "y", m.y, "um")
+    _write_axis(g, "x", m.x, "um")
+    _write_axis(g, "raman_shift", m.raman_shift, "1/cm")
+    mk = g.create_dataset("mask", data=m.mask.astype(np.uint8))
+    mk.attrs["long_name"] = "bad pixel (1) / good pixel (0)"
+    if m.laser_wavelength is not None:
+        inst = f.require_group(layout.INSTRUMENT)
+        inst.attrs["NX_class"] = "NXinstrument"
+        lw = inst.create_dataset("laser_wavelength", data=float(m.laser_wavelength))
+        lw.attrs["units"] = "nm"
+
+
+def _write_result(f, result: Result):
+    import h5py
+
+    parent = f.require_group(layout.RESULTS)
+    parent.attrs["NX_class"] = "NXcollection"
+    if result.name in parent:
+        del parent[result.name]
+    rg = parent.create_group(result.name)
+    rg.attrs["NX_class"] = "NXcollection"
+    rg.attrs["method"] = result.method
+    rg.attrs["parameters"] = json.dumps(Step(result.method, result.parameters).parameters,
+                                        sort_keys=True)
+    rg.attrs["summary"] = json.dumps(Step("s", result.summary).parameters, sort_keys=True)
+    for fname, fld in result.fields.items():
+        g = rg.create_group(fname)
+        g.attrs["NX_class"] = "NXdata"
+        g.attrs["signal"] = fld.signal
+        g.attrs["axes"] = list(fld.axis_names)
+        for i, ax in enumerate(fld.axes):
+            g.attrs[f"{ax.name}_indices"] = i
+            vals = np.asarray(ax.values)
+            if vals.dtype.kind in "UO":
+                g.create_dataset(ax.name, data=[str(v) for v in vals], dtype=h5py.string_dtype())
+            else:
+                _write_axis(g, ax.name, vals, ax.units)
+        d = g.create_dataset(fld.signal, data=fld.data)
+        d.attrs["units"] = fld.units
+        if fld.long_name:
+            d.attrs["long_name"] = fld.long_name
+        if fld.errors is not None:
+            e = g.create_dataset(f"{fld.signal}_errors", data=fld.errors)
+            e.attrs["units"] = fld.units
+        for k, v in fld.extras.items():
+            g.create_dataset(k, data=v)
+
+
+def write_results_file(path, m: RamanMap, results=(), *, overwrite=False, compression=None,
+                       inputs: dict | None = None) -> Path:
+    """Write a map and its results into one new NeXus file, atomically.
+
+    Parameters
+    ----------
+    path : path-like
+        Target file; refused if it exists and ``overwrite`` is false.
+    m : RamanMap
+        The map the results were computed from (written under ``/entry/map``).
+    results : iterable of Result
+        Written under ``/entry/results/<name>``.
+    compression : str, optional
+        ``"gzip"`` pays off only for integer-valued counts; default none.
+    inputs : dict, optional
+        Input files by role, e.g. ``{"map": "a.h5"}``; their SHA-256 is recorded.
+    """
+    import h5py
+
+    recorded = {role: {"path": Path(p).name, "sha256": file_sha256(p)}
+                for role, p in (inputs or {}).items()}
+    with atomic_path(path, overwrite=overwrite) as tmp:
+        with h5py.File(tmp, "w") as f:
+            f.attrs["default"] = "entry"
+            f.attrs["creator"] = "mapkit"
+            entry = f.create_group(layout.ENTRY)
+            entry.attrs["NX_class"] = "NXentry"
+            entry.attrs["default"] = "map"
+            _write_cube(f, m, compression)
+            for r in results:
+                _write_result(f, r)
+            _write_provenance(f, m.provenance, {"inputs": recorded} if recorded else None)
+    return Path(path)
+
+
+def write_map(path, m: RamanMap, *, overwrite=False, compression=None) -> Path:
+    """Write a map alone in the mapkit layout (atomic)."""
+    return write_results_file(path, m, (), overwrite=overwrite, compression=compression)

@@ -1,0 +1,40 @@
+"""Names and paths of the mapkit HDF5 layout (NeXus NXdata convention).
+
+Readers and writers both take their paths from here, so the documented layout
+(docs/file-layout.md) and the code cannot drift apart.
+"""
+
+ENTRY = "/entry"
+MAP = "/entry/map"
+INTENSITY = "/entry/map/intensity"
+MASK = "/entry/map/mask"
+INSTRUMENT = "/entry/instrument"
+LASER = "/entry/instrument/laser_wavelength"
+PROVENANCE = "/entry/provenance"
+RESULTS = "/entry/results"
+
+AXES = ("y", "x", "raman_shift")
+AXIS_UNITS = {"y": "um", "x": "um", "raman_shift": "1/cm"}
+
+#: Target size of one HDF5 chunk of the cube. Chunks always hold whole
+#: spectra, so reading one pixel touches one chunk.
+CHUNK_BYTES = 1 << 20
+#: h5py chunk cache per open file; above the chunk size so a tile is read once.
+CHUNK_CACHE_BYTES = 64 << 20
+
+
+def pixel_tile(ny: int, nx: int, n_shift: int, itemsize: int = 4) -> tuple[int, int, int]:
+    """HDF5 chunk shape (ty, tx, n_shift) of about CHUNK_BYTES holding whole spectra.
+
+    Examples
+    --------
+    >>> pixel_tile(48, 64, 600)
+    (16, 16, 600)
+    >>> pixel_tile(1, 5, 10)
+    (1, 5, 10)
+    """
+    per_chunk = max(1, CHUNK_BYTES // max(1, n_shift * itemsize))
+    side = 1
+    while (side * 2) ** 2 <= per_chunk:
+        side *= 2
+    return min(side, ny), min(side, nx), n_shift

@@ -1,0 +1,228 @@
+"""The end-to-end path: open → clean → reduce → quantify → export, in one call.
+
+:func:`analyse` is what ``mapkit analyse`` and ``mapkit demo`` run; every
+number it writes comes from the stage modules, so Python, the command line
+and the viewer agree.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+import warnings
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from .core.provenance import Step, library_versions
+from .core.ramanmap import RamanMap
+from .core.result import Axis, Field, Result
+from .errors import MapkitError
+
+
+@dataclass
+class Settings:
+    """Parameters of the end-to-end path (all recorded in every output)."""
+
+    bands: list = field(default_factory=lambda: [("band_858", 845.0, 872.0)])
+    spike_threshold: float = 8.0
+    baseline_lam: float = 1e5
+    baseline_p: float = 0.01
+    normalisation: str = "vector"
+    n_components: int = 4
+    n_classes: int = 4
+    seed: int = 0
+    unmix_baseline_order: int = 5
+    analyte: str | None = None
+    memory_fraction: float = 0.5
+
+
+def _memory_available() -> int:
+    try:
+        with open("/proc/meminfo") as fh:
+            for line in fh:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    return 8 << 30
+
+
+def _safe(name: str) -> str:
+    return re.sub(r"[^A-Za-z0-9_.-]+", "_", name).strip("_") or "map"
+
+
+def calibrate_from_standards(standards_path, unmixer, analyte=None):
+    """Fit a straight-line calibration of the analyte's response fraction against the standards."""
+    from .quantify import LinearCalibration, response_fraction
+    from .read.calibration_set import read_calibration_set
+    from .read.reference import Spectrum
+
+    cs = read_calibration_set(standards_path)
+    analyte = analyte or cs.analyte
+    shift = unmixer.raman_shift_
+    spectra = np.stack([Spectrum(n, cs.raman_shift, s, {"source": cs.source}).on_axis(shift)
+                        for n, s in zip(cs.names, cs.spectra)])
+    std_map = RamanMap(spectra[:, None, :], raman_shift=shift, x=[0.0],
+                       y=np.arange(len(cs.names), dtype=float), source=cs.source)
+    abundance, _ = unmixer.transform(std_map)
+    response = response_fraction(abundance[:, :, 0], unmixer.names_, analyte)
+    return LinearCalibration(analyte=analyte, unit=cs.unit).fit(cs.concentration, response), cs
+
+
+def analyse(map_path, outdir, *, library=None, standards=None, settings: Settings | None = None,
+            overwrite: bool = False, progress: bool = True, figures: bool = True,
+            open_kwargs: dict | None = None) -> dict:
+    """Run the whole path on one map file and write every output into ``outdir``.
+
+    Returns a dict with the paths written and a summary of the results.
+    """
+    from tqdm.auto import tqdm
+
+    from .export import save_image_figure, save_spectra_figure, write_results_file, write_tiff
+    from .preprocess import flag_bad_pixels, normalise_map, remove_baseline, remove_spikes
+    from .quantify import concentration_map, response_fraction
+    from .read import open_map, read_library
+    from .reduce import KMeansClasses, NMFComponents, ReferenceUnmixing, band_image
+
+    s = settings or Settings()
+    outdir = Path(outdir)
+    if outdir.exists() and not outdir.is_dir():
+        raise MapkitError("the output path is a file, not a folder", file=outdir,
+                          fix="give a folder for the outputs")
+    outdir.mkdir(parents=True, exist_ok=True)
+    stages = ["read", "bad pixels", "spikes", "baseline", "normalise", "bands", "NMF",
+              "k-means", "unmixing", "concentration", "write"]
+    bar = tqdm(total=len(stages), desc="mapkit", unit="step", disable=not progress, leave=False)
+
+    def stage(name):
+        bar.set_postfix_str(name)
+
+    # library and standards are read before the cube, so their errors come first
+    refs = read_library(library) if library is not None else None
+    if standards is not None and refs is None:
+        raise MapkitError("calibration standards need a reference library to unmix against",
+                          field="--standards", fix="pass --library too")
+
+    stage("read")
+    raw = open_map(map_path, **(open_kwargs or {}))
+    need = raw.n_pixels * raw.shape[2] * 8 * 4  # float64 working copies of the cube
+    if need > s.memory_fraction * _memory_available():
+        raise MapkitError(f"the map needs about {need / 2**30:.1f} GiB to process in memory",
+                          file=map_path, field="intensity",
+                          fix="crop or bin the map first; chunk-wise processing is not available yet")
+    m = raw.load()
+    bar.update()
+    stage("bad pixels")
+    m, bad_report = flag_bad_pixels(m)
+    bar.update()
+    stage("spikes")
+    despiked, spikes = remove_spikes(m, threshold=s.spike_threshold)
+    bar.update()
+    stage("baseline")
+    corrected, _ = remove_baseline(despiked, lam=s.baseline_lam, p=s.baseline_p)
+    bar.update()
+    stage("normalise")
+    normed = normalise_map(corrected, method=s.normalisation)
+    bar.update()
+
+    results: list[Result] = []
+    stage("bands")
+    for name, lo, hi in s.bands:
+        results.append(band_image(corrected, lo, hi, name=name))
+    bar.update()
+    stage("NMF")
+    nmf = NMFComponents(n_components=s.n_components, random_state=s.seed)
+    nmf.fit(corrected)
+    results.append(nmf.result(corrected, nmf.fit_images_))
+    bar.update()
+    stage("k-means")
+    km = KMeansClasses(n_classes=s.n_classes, random_state=s.seed).fit(normed)
+    results.append(km.result(normed))
+    bar.update()
+    stage("unmixing")
+    notices = []
+    calibration = None
+    if refs is not None:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            unmixer = ReferenceUnmixing(refs, baseline_order=s.unmix_baseline_order).fit(despiked)
+        notices += [str(w.message) for w in caught]
+        unmix_result = unmixer.result(despiked)
+        results.append(unmix_result)
+    bar.update()
+    stage("concentration")
+    if refs is not None and standards is not None:
+        calibration, cs = calibrate_from_standards(standards, unmixer, s.analyte)
+        response = response_fraction(unmix_result.fields["abundance"].data, unmixer.names_,
+                                     calibration.analyte)
+        axes = (Axis("y", m.y, "um"), Axis("x", m.x, "um"))
+        results.append(concentration_map(response, calibration, axes, mask=m.mask))
+        calibration.save(outdir / "calibration.json")
+    bar.update()
+
+    spike_field = Field("replaced", spikes.astype(np.uint8),
+                        (Axis("y", m.y, "um"), Axis("x", m.x, "um"),
+                         Axis("raman_shift", m.raman_shift, "1/cm")), "",
+                        long_name="1 where a cosmic-ray spike was replaced")
+    results.append(Result("spikes", "remove_spikes", {"threshold": s.spike_threshold},
+                          {"replaced": spike_field},
+                          {"channels_replaced": int(spikes.sum()),
+                           "spectra_touched": int(spikes.any(axis=-1).sum())}))
+
+    stage("write")
+    run_step = Step("analyse", {"settings": asdict(s), "library": str(library) if library else None,
+                                "standards": str(standards) if standards else None})
+    final = corrected.derive(corrected.intensity, run_step)
+    inputs = {"map": map_path}
+    if standards is not None:
+        inputs["standards"] = standards
+    h5 = write_results_file(outdir / "results.h5", final, results, overwrite=overwrite,
+                            inputs=inputs)
+    written = [h5]
+    stem = _safe(Path(map_path).stem)
+    for r in results:
+        for fname, fld in r.fields.items():
+            if not fld.is_image or fld.data.ndim > 3 or fname == "replaced":
+                continue
+            base = f"{stem}_{r.name}" + ("" if fname in ("image", r.name) else f"_{fname}")
+            written.append(write_tiff(outdir / f"{base}.tif", fld, overwrite=overwrite,
+                                      parameters=r.parameters))
+            if not figures:
+                continue
+            is_classes = fld.signal == "labels"
+            if fld.data.ndim == 3:
+                for k, label in enumerate(fld.axes[0].values):
+                    written.append(save_image_figure(
+                        outdir / f"{base}_{_safe(str(label))}.png", fld, k,
+                        title=f"{r.name}: {label}", overwrite=overwrite))
+            else:
+                written.append(save_image_figure(outdir / f"{base}.png", fld, title=r.name,
+                                                 classes=is_classes, overwrite=overwrite))
+            if fld.errors is not None and fld.data.ndim == 2:
+                err = Field(f"{fld.signal}_uncertainty", fld.errors, fld.axes, fld.units,
+                            long_name=f"standard uncertainty of {fld.signal}")
+                written.append(write_tiff(outdir / f"{base}_uncertainty.tif", err,
+                                          overwrite=overwrite))
+                written.append(save_image_figure(outdir / f"{base}_uncertainty.png", err,
+                                                 title=f"{r.name}: uncertainty",
+                                                 overwrite=overwrite))
+        if figures:
+            for fname, fld in r.fields.items():
+                if fld.axis_names[-1] == "raman_shift" and fld.data.ndim == 2:
+                    written.append(save_spectra_figure(outdir / f"{stem}_{r.name}_{fname}.png",
+                                                       fld, title=f"{r.name}: {fname}",
+                                                       overwrite=overwrite))
+    summary = {"map": str(map_path), "shape": list(raw.shape), "bad_pixels": bad_report,
+               "spikes": results[-1].summary, "notices": notices,
+               "results": {r.name: r.summary for r in results if r.summary},
+               "settings": asdict(s), "versions": library_versions()}
+    from .export.atomic import atomic_path
+    with atomic_path(outdir / "summary.json", overwrite=True) as tmp:
+        tmp.write_text(json.dumps(summary, indent=2, default=str))
+    written.append(outdir / "summary.json")
+    bar.update()
+    bar.close()
+    return {"written": [Path(p) for p in written], "summary": summary, "results": results,
+            "calibration": calibration}

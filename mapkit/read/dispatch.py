@@ -1,0 +1,47 @@
+"""One entry point that opens any map file mapkit understands."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from ..core.ramanmap import RamanMap
+from ..errors import MapkitError
+
+_TEXT = (".csv", ".tsv", ".txt", ".dat")
+
+
+def open_map(path, *, dataset: str | None = None, axes=None, shift: str | None = None,
+             x: str | None = None, y: str | None = None, pixel_size: float | None = None,
+             laser_wavelength: float | None = None) -> RamanMap:
+    """Open a map lazily from a mapkit NeXus file, any HDF5 dataset, or a text table.
+
+    Parameters
+    ----------
+    path : path-like
+    dataset, axes, shift, x, y, pixel_size
+        For a cube in an arbitrary HDF5 file: the dataset path, its axis order
+        (e.g. ``"x,y,raman_shift"``), the shift-axis dataset, and the position
+        datasets (or a pixel size in µm). Not used for mapkit files or tables.
+    laser_wavelength : float, optional
+        Excitation wavelength in nm, when the file does not record it.
+    """
+    from .hdf5 import read_hdf5_dataset
+    from .nexus import read_nexus_map
+    from .table import read_table
+
+    p = Path(path)
+    if not p.exists():
+        raise MapkitError("file not found", file=p, fix="check the path")
+    if dataset is not None:
+        if axes is None or shift is None:
+            raise MapkitError("reading a cube by dataset path needs its axis order and shift axis",
+                              file=p, field=dataset, fix="pass --axes (e.g. y,x,raman_shift) and --shift PATH")
+        return read_hdf5_dataset(p, dataset, axes=axes, shift_path=shift, x_path=x, y_path=y,
+                                 pixel_size=pixel_size, laser_wavelength=laser_wavelength)
+    if p.suffix.lower() in _TEXT:
+        return read_table(p, laser_wavelength=laser_wavelength)
+    m = read_nexus_map(p)
+    if laser_wavelength is not None and m.laser_wavelength is None:
+        from dataclasses import replace
+        m = replace(m, laser_wavelength=laser_wavelength)
+    return m

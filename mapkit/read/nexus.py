@@ -1,0 +1,101 @@
+"""Read a map stored in the mapkit NeXus layout (see docs/file-layout.md)."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+
+from .. import layout
+from ..core.provenance import Step
+from ..core.ramanmap import RamanMap
+from ..errors import MapkitError
+from .hdf5 import dataset, lazy_cube, open_h5
+
+
+def is_nexus_map(path) -> bool:
+    """True if ``path`` is an HDF5 file holding ``/entry/map/intensity``."""
+    import h5py
+
+    try:
+        with h5py.File(path, "r") as f:
+            return isinstance(f.get(layout.INTENSITY), h5py.Dataset)
+    except (OSError, ValueError):
+        return False
+
+
+def read_nexus_map(path) -> RamanMap:
+    """Open a map file lazily: axes are read, the cube stays on disk.
+
+    The file is opened read-only. Errors name the dataset path that is wrong.
+    """
+    f = open_h5(path)
+    hint = ("write the map in the mapkit layout (docs/file-layout.md), or read the cube by "
+            "path with --dataset and --axes")
+    cube_ds = dataset(f, layout.INTENSITY, source=path, hint=hint)
+    if cube_ds.ndim != 3:
+        raise MapkitError(f"intensity has rank {cube_ds.ndim}, the layout needs 3 (y, x, raman_shift)",
+                          file=path, field=layout.INTENSITY, fix="store the cube as (y, x, raman_shift)")
+    cube = lazy_cube(cube_ds, source=path, field=layout.INTENSITY)
+
+    def axis(name):
+        d = dataset(f, f"{layout.MAP}/{name}", source=path, hint=hint)
+        units = d.attrs.get("units")
+        units = units.decode() if isinstance(units, bytes) else units
+        if units is not None and units != layout.AXIS_UNITS[name]:
+            raise MapkitError(f"units are {units!r}, the layout needs {layout.AXIS_UNITS[name]!r}",
+                              file=path, field=f"{layout.MAP}/{name}",
+                              fix=f"convert the axis to {layout.AXIS_UNITS[name]}")
+        return d[...]
+
+    mask = f[layout.MASK][...] if layout.MASK in f else None
+    laser = float(f[layout.LASER][()]) if layout.LASER in f else None
+    steps = ()
+    if f"{layout.PROVENANCE}/steps" in f:
+        raw = f[f"{layout.PROVENANCE}/steps"][...]
+        steps = tuple(Step.from_json(s.decode() if isinstance(s, bytes) else s) for s in raw)
+    from ..core.ramanmap import check_axis
+    shift = check_axis(axis("raman_shift"), name="raman_shift", length=cube.shape[2],
+                       source=str(path), field_path=f"{layout.MAP}/raman_shift")
+    x = check_axis(axis("x"), name="x", length=cube.shape[1], source=str(path),
+                   field_path=f"{layout.MAP}/x")
+    y = check_axis(axis("y"), name="y", length=cube.shape[0], source=str(path),
+                   field_path=f"{layout.MAP}/y")
+    return RamanMap(cube, raman_shift=shift, x=x, y=y,
+                    mask=None if mask is None else np.asarray(mask, bool),
+                    laser_wavelength=laser, provenance=steps, source=str(path))
+
+
+def read_results(path) -> dict[str, dict]:
+    """Every result group under ``/entry/results`` as plain arrays and attributes.
+
+    Returns ``{result_name: {"method": str, "parameters": dict,
+    "fields": {field_name: {"signal": str, "data": array, "units": str,
+    "axes": {axis_name: array}, "errors": array or None}}}}``.
+    """
+    import h5py
+
+    out: dict[str, dict] = {}
+    with open_h5(path) as f:
+        group = f.get(layout.RESULTS)
+        if group is None:
+            return out
+        for rname, rgroup in group.items():
+            fields = {}
+            for fname, g in rgroup.items():
+                if not isinstance(g, h5py.Group):
+                    continue
+                signal = g.attrs["signal"]
+                axes = [a.decode() if isinstance(a, bytes) else a for a in g.attrs["axes"]]
+                data = g[signal][...]
+                fields[fname] = {
+                    "signal": signal, "data": data,
+                    "units": g[signal].attrs.get("units", ""),
+                    "axes": {a: g[a][...] for a in axes if a in g},
+                    "errors": g[f"{signal}_errors"][...] if f"{signal}_errors" in g else None,
+                    "extras": {k: g[k][...] for k in g if k not in (signal, f"{signal}_errors", *axes)},
+                }
+            out[rname] = {"method": rgroup.attrs.get("method", ""),
+                          "parameters": json.loads(rgroup.attrs.get("parameters", "{}")),
+                          "fields": fields}
+    return out

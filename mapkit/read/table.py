@@ -1,0 +1,156 @@
+"""Read maps from plain text tables, long or wide form.
+
+Long form: one row per (x, y, shift) with an intensity, columns found by their
+header names. Wide form: one row per pixel, ``x`` and ``y`` columns followed by
+one column per channel whose header is the Raman shift. The delimiter
+(comma, semicolon, tab or spaces) is detected from the header line.
+"""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+import numpy as np
+
+from ..core.ramanmap import RamanMap
+from ..errors import MapkitError
+
+_NAMES = {
+    "x": ("x", "x_um", "x (um)", "x [um]", "x(um)", "pos_x", "x_position"),
+    "y": ("y", "y_um", "y (um)", "y [um]", "y(um)", "pos_y", "y_position"),
+    "raman_shift": ("raman_shift", "shift", "raman shift", "wavenumber", "raman_shift_cm-1",
+                    "shift (1/cm)", "raman shift (cm-1)", "shift [1/cm]"),
+    "intensity": ("intensity", "counts", "signal", "intensity (counts)"),
+}
+_NUMBER = re.compile(r"^[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?$")
+
+
+def _split_fn(header_line: str):
+    for delim in ("\t", ";", ","):
+        if delim in header_line:
+            return lambda s, d=delim: [c.strip() for c in s.rstrip("\r\n").split(d)]
+    return lambda s: s.split()
+
+
+def _read_rows(path):
+    path = Path(path)
+    if not path.exists():
+        raise MapkitError("file not found", file=path, fix="check the path")
+    try:
+        text = path.read_text(encoding="utf-8-sig")
+    except UnicodeDecodeError:
+        raise MapkitError("not a UTF-8 text table", file=path,
+                          fix="export the table as UTF-8 text (CSV or tab-separated)") from None
+    lines = [(i + 1, ln) for i, ln in enumerate(text.splitlines())
+             if ln.strip() and not ln.lstrip().startswith("#")]
+    if len(lines) < 2:
+        raise MapkitError("the table has no data rows", file=path,
+                          fix="give a header line and at least one row")
+    split = _split_fn(lines[0][1])
+    header = split(lines[0][1])
+    width = len(header)
+    values = np.empty((len(lines) - 1, width))
+    for r, (lineno, line) in enumerate(lines[1:]):
+        cells = split(line)
+        if len(cells) != width:
+            raise MapkitError(f"line {lineno} has {len(cells)} values, the header has {width}",
+                              file=path, field=f"line {lineno}",
+                              fix="make every row as long as the header (ragged rows are not read)")
+        for c, cell in enumerate(cells):
+            if not _NUMBER.match(cell) and cell.lower() not in ("nan", "inf", "-inf"):
+                raise MapkitError(f"value {cell!r} in column {header[c]!r} is not a number",
+                                  file=path, field=f"line {lineno}",
+                                  fix="use '.' as the decimal separator and numbers only")
+        values[r] = [float(c) for c in cells]
+    return header, values
+
+
+def _find(header, key, path, required=True):
+    low = [h.strip().lower() for h in header]
+    for name in _NAMES[key]:
+        if name in low:
+            return low.index(name)
+    if required:
+        raise MapkitError(f"no {key} column in the header {header}", file=path, field=key,
+                          fix=f"name the column one of {', '.join(_NAMES[key][:3])}")
+    return None
+
+
+def _grid(xs, ys, path):
+    """Unique sorted positions and each row's (iy, ix), refusing non-rectangular scans."""
+    ux, ix = np.unique(xs, return_inverse=True)
+    uy, iy = np.unique(ys, return_inverse=True)
+    return ux, uy, ix.ravel(), iy.ravel()
+
+
+def read_table(path, *, laser_wavelength=None) -> RamanMap:
+    """Read a long- or wide-form text table into a map.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> p = pathlib.Path(tempfile.mkdtemp()) / "wide.csv"
+    >>> _ = p.write_text("x,y,100,200\\n0,0,1,2\\n1,0,3,4\\n")
+    >>> m = read_table(p)
+    >>> m.shape, m.spectrum(0, 1).tolist()
+    ((1, 2, 2), [3.0, 4.0])
+    """
+    header, values = _read_rows(path)
+    cx, cy = _find(header, "x", path), _find(header, "y", path)
+    cs = _find(header, "raman_shift", path, required=False)
+    if cs is not None:
+        ci = _find(header, "intensity", path)
+        return _long(values, cx, cy, cs, ci, path, laser_wavelength)
+    channel_cols = [i for i in range(len(header)) if i not in (cx, cy)]
+    bad = [header[i] for i in channel_cols if not _NUMBER.match(header[i])]
+    if bad or not channel_cols:
+        raise MapkitError(f"cannot tell the table's form: column {bad[0] if bad else ''!r} is "
+                          "neither a shift value nor a known column", file=path, field="header",
+                          fix="use long form (x, y, raman_shift, intensity) or wide form "
+                              "(x, y, then one numeric shift per column)")
+    shift = np.array([float(header[i]) for i in channel_cols])
+    ux, uy, ix, iy = _grid(values[:, cx], values[:, cy], path)
+    cube = np.full((uy.size, ux.size, shift.size), np.nan, np.float32)
+    seen = np.zeros((uy.size, ux.size), int)
+    np.add.at(seen, (iy, ix), 1)
+    _check_coverage(seen, ux, uy, path)
+    cube[iy, ix] = values[:, channel_cols]
+    return RamanMap(cube, raman_shift=shift, x=ux, y=uy, laser_wavelength=laser_wavelength,
+                    source=str(path))
+
+
+def _check_coverage(seen, ux, uy, path):
+    if np.any(seen > 1):
+        iy, ix = np.argwhere(seen > 1)[0]
+        raise MapkitError(f"position x={ux[ix]:g}, y={uy[iy]:g} appears more than once",
+                          file=path, field="x, y", fix="keep one spectrum per position")
+    if np.any(seen == 0):
+        iy, ix = np.argwhere(seen == 0)[0]
+        raise MapkitError(f"position x={ux[ix]:g}, y={uy[iy]:g} is missing: the scan is not a "
+                          f"rectangular grid ({int((seen == 0).sum())} positions missing)",
+                          file=path, field="x, y", fix="export the full rectangular scan")
+
+
+def _long(values, cx, cy, cs, ci, path, laser_wavelength):
+    shift_vals = values[:, cs]
+    shift = np.unique(shift_vals)
+    ux, uy, ix, iy = _grid(values[:, cx], values[:, cy], path)
+    counts = np.zeros((uy.size, ux.size), int)
+    np.add.at(counts, (iy, ix), 1)
+    if np.any(counts > shift.size):
+        iyy, ixx = np.argwhere(counts > shift.size)[0]
+        raise MapkitError(f"position x={ux[ixx]:g}, y={uy[iyy]:g} has a channel more than once",
+                          file=path, field="raman_shift",
+                          fix="keep one row per position and shift")
+    _check_coverage((counts > 0).astype(int), ux, uy, path)
+    if np.any(counts != shift.size):
+        iyy, ixx = np.argwhere(counts != shift.size)[0]
+        raise MapkitError(f"position x={ux[ixx]:g}, y={uy[iyy]:g} has {counts[iyy, ixx]} of "
+                          f"{shift.size} channels", file=path, field="raman_shift",
+                          fix="export every channel at every position on the same shift axis")
+    ish = np.searchsorted(shift, shift_vals)
+    cube = np.full((uy.size, ux.size, shift.size), np.nan, np.float32)
+    cube[iy, ix, ish] = values[:, ci]
+    return RamanMap(cube, raman_shift=shift, x=ux, y=uy, laser_wavelength=laser_wavelength,
+                    source=str(path))
