@@ -15,9 +15,6 @@ from pathlib import Path
 
 from .errors import MapkitError
 
-SAMPLE_DIR = Path(__file__).resolve().parent.parent / "sample_maps"
-
-
 def _band(text: str):
     m = re.fullmatch(r"\s*(?:([A-Za-z_][\w.-]*)[:=])?\s*([\d.]+)\s*-\s*([\d.]+)\s*", text)
     if not m:
@@ -105,14 +102,14 @@ def _run_analysis(a, map_path, library, standards, bands):
 
 
 def cmd_demo(a):
-    if not (SAMPLE_DIR / "tablet_map.h5").exists():
-        raise MapkitError("the bundled sample map is missing", file=SAMPLE_DIR / "tablet_map.h5",
-                          fix="run 'mapkit samples sample_maps' in the source tree")
+    from .samples import sample_dir
+
+    here = sample_dir()
     print("demo: invented tablet cross-section (synthetic data, see sample_maps/README.md)")
     bands = a.band or [("acetaminophen_858", 845.0, 872.0), ("calcite_1086", 1080.0, 1092.0),
                        ("anatase_144", 125.0, 165.0)]
-    return _run_analysis(a, SAMPLE_DIR / "tablet_map.h5", SAMPLE_DIR / "library",
-                         SAMPLE_DIR / "calibration_standards.csv", bands)
+    return _run_analysis(a, here / "tablet_map.h5", here / "library",
+                         here / "calibration_standards.csv", bands)
 
 
 def cmd_analyse(a):

@@ -25,7 +25,7 @@ from .errors import MapkitError
 class Settings:
     """Parameters of the end-to-end path (all recorded in every output)."""
 
-    bands: list = field(default_factory=lambda: [("band_858", 845.0, 872.0)])
+    bands: list = field(default_factory=list)
     spike_threshold: float = 8.0
     baseline_lam: float = 1e5
     baseline_p: float = 0.01
@@ -130,7 +130,11 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     results: list[Result] = []
     stage("bands")
     for name, lo, hi in s.bands:
-        results.append(band_image(corrected, lo, hi, name=name))
+        try:
+            results.append(band_image(corrected, lo, hi, name=name))
+        except MapkitError as exc:
+            raise MapkitError(exc.problem, file=map_path, field=f"--band {name}:{lo:g}-{hi:g}",
+                              fix=exc.fix) from None
     bar.update()
     stage("NMF")
     nmf = NMFComponents(n_components=s.n_components, random_state=s.seed)

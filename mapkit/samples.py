@@ -220,6 +220,19 @@ def write_samples(outdir) -> list[Path]:
     return written
 
 
+def sample_dir() -> Path:
+    """The bundled sample folder in a source checkout, else a generated copy in the user cache."""
+    bundled = Path(__file__).resolve().parent.parent / "sample_maps"
+    if (bundled / "tablet_map.h5").exists():
+        return bundled
+    import os
+
+    cache = Path(os.environ.get("XDG_CACHE_HOME", Path.home() / ".cache")) / "mapkit" / "sample_maps"
+    if not (cache / "tablet_map.h5").exists():
+        write_samples(cache)
+    return cache
+
+
 if __name__ == "__main__":  # pragma: no cover
     for path in write_samples(sys.argv[1] if len(sys.argv) > 1 else "sample_maps"):
         print(path)

@@ -35,7 +35,7 @@ def nnls_batch(A, Y, *, max_sweeps: int = 2000, tol: float = 1e-10):
     --------
     >>> A = np.array([[1., 0.], [0., 1.], [1., 1.]])
     >>> nnls_batch(A, np.array([[1.], [-1.], [0.]])).round(6).ravel().tolist()
-    [0.333333, 0.0]
+    [0.5, 0.0]
     """
     A = np.asarray(A, float)
     Y = np.asarray(Y, float)

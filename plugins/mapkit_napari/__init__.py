@@ -1,0 +1,20 @@
+"""napari plugin for mapkit. It arranges library calls and shows their results; every
+number it displays is computed by the ``mapkit`` package."""
+
+__version__ = "0.1.0"
+
+
+def open_with_panels(path):
+    """Open ``path`` in a new napari viewer with the mapkit panels docked; returns the viewer."""
+    import napari
+
+    from ._panel import SpectrumPanel
+
+    viewer = napari.Viewer(title="mapkit")
+    viewer.open(str(path), plugin="mapkit-napari")
+    viewer.window.add_dock_widget(SpectrumPanel(viewer), name="Pixel spectra", area="right")
+    viewer.scale_bar.visible = True
+    return viewer
+
+
+__all__ = ["open_with_panels"]

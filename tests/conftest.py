@@ -1,0 +1,52 @@
+"""Shared fixtures: the bundled sample data and its ground truth."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+ROOT = Path(__file__).resolve().parent.parent
+SAMPLES = ROOT / "sample_maps"
+
+
+@pytest.fixture(scope="session")
+def sample_dir() -> Path:
+    return SAMPLES
+
+
+@pytest.fixture(scope="session")
+def sample_map_path() -> Path:
+    return SAMPLES / "tablet_map.h5"
+
+
+@pytest.fixture(scope="session")
+def truth():
+    with np.load(SAMPLES / "tablet_truth.npz") as t:
+        return {k: t[k] for k in t.files}
+
+
+@pytest.fixture(scope="session")
+def sample_map(sample_map_path):
+    from mapkit.read import open_map
+
+    return open_map(sample_map_path).load()
+
+
+@pytest.fixture(scope="session")
+def cleaned(sample_map):
+    """The sample map after bad-pixel flagging, spike removal and ALS baseline removal."""
+    from mapkit.preprocess import flag_bad_pixels, remove_baseline, remove_spikes
+
+    flagged, report = flag_bad_pixels(sample_map)
+    despiked, spikes = remove_spikes(flagged)
+    corrected, baseline = remove_baseline(despiked)
+    return {"flagged": flagged, "report": report, "despiked": despiked, "spikes": spikes,
+            "corrected": corrected, "baseline": baseline}
+
+
+def sha256(path) -> str:
+    import hashlib
+
+    return hashlib.sha256(Path(path).read_bytes()).hexdigest()

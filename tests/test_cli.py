@@ -1,0 +1,214 @@
+"""The command line: the demo end to end, and bad input as one-line errors with status 2."""
+
+import subprocess
+import sys
+
+import h5py
+import numpy as np
+import pytest
+
+from mapkit.cli import main
+
+from .conftest import sha256
+
+
+@pytest.fixture(scope="module")
+def demo_out(tmp_path_factory, sample_dir):
+    out = tmp_path_factory.mktemp("demo")
+    before = {p: sha256(p) for p in sample_dir.rglob("*") if p.is_file()}
+    rc = main(["demo", "--out", str(out), "--quiet"])
+    after = {p: sha256(p) for p in sample_dir.rglob("*") if p.is_file()}
+    return rc, out, before, after
+
+
+def test_demo_writes_everything(demo_out):
+    rc, out, before, after = demo_out
+    assert rc == 0
+    assert before == after, "inputs must never be modified"
+    names = {p.name for p in out.iterdir()}
+    for expected in ("results.h5", "summary.json", "calibration.json",
+                     "tablet_map_kmeans_labels.tif", "tablet_map_kmeans_labels.png",
+                     "tablet_map_concentration.tif", "tablet_map_concentration_uncertainty.tif",
+                     "tablet_map_nmf_images.tif", "tablet_map_unmixing_abundance.tif"):
+        assert expected in names, expected
+    assert not [n for n in names if n.endswith(".part")]
+
+
+def test_demo_results_file_layout(demo_out):
+    _, out, *_ = demo_out
+    with h5py.File(out / "results.h5", "r") as f:
+        for group in ("nmf/images", "nmf/spectra", "kmeans/labels", "kmeans/class_spectra",
+                      "unmixing/abundance", "concentration/concentration", "spikes/replaced"):
+            assert f"/entry/results/{group}" in f, group
+        conc = f["/entry/results/concentration/concentration"]
+        assert conc["concentration"].attrs["units"] == "% w/w"
+        assert "concentration_errors" in conc
+        assert conc["x"].attrs["units"] == "um"
+        versions = f["/entry/provenance"].attrs["versions"]
+        for lib in ("mapkit", "numpy", "scipy", "scikit-learn", "h5py"):
+            assert lib in versions
+        inputs = f["/entry/provenance"].attrs["inputs"]
+        assert "sha256" in inputs
+        steps = [s.decode() if isinstance(s, bytes) else s for s in f["/entry/provenance/steps"][...]]
+        assert any("remove_spikes" in s for s in steps) and any("remove_baseline" in s for s in steps)
+
+
+def test_tiff_has_physical_pixel_size(demo_out):
+    import tifffile
+
+    _, out, *_ = demo_out
+    with tifffile.TiffFile(out / "tablet_map_nmf_images.tif") as tif:
+        assert tif.is_imagej
+        assert tif.imagej_metadata["unit"] in ("micron", "um", "\\u00B5m")
+        xres = tif.pages[0].tags["XResolution"].value
+        assert xres[0] / xres[1] == pytest.approx(1 / 2.0)  # 2 µm pixels
+        assert tif.series[0].shape == (4, 48, 64)
+        assert "numpy" in tif.imagej_metadata["Info"]
+
+
+def test_png_figures_are_pictures(demo_out):
+    from PIL import Image
+
+    _, out, *_ = demo_out
+    img = np.asarray(Image.open(out / "tablet_map_concentration.png").convert("L"), float)
+    assert img.shape[0] > 300 and img.std() > 20
+
+
+def test_demo_is_reproducible(demo_out, tmp_path):
+    _, out, *_ = demo_out
+    assert main(["demo", "--out", str(tmp_path), "--quiet", "--no-figures"]) == 0
+    with h5py.File(out / "results.h5") as a, h5py.File(tmp_path / "results.h5") as b:
+        for path in ("/entry/map/intensity", "/entry/results/nmf/images/abundance",
+                     "/entry/results/kmeans/labels/labels",
+                     "/entry/results/concentration/concentration/concentration"):
+            np.testing.assert_array_equal(a[path][...], b[path][...])
+
+
+def test_existing_output_not_overwritten(demo_out, capsys):
+    _, out, *_ = demo_out
+    before = sha256(out / "results.h5")
+    rc = main(["demo", "--out", str(out), "--quiet", "--no-figures"])
+    err = capsys.readouterr().err
+    assert rc == 2 and "exists" in err and "--overwrite" in err
+    assert sha256(out / "results.h5") == before
+
+
+def _write_h5(path, **datasets):
+    with h5py.File(path, "w") as f:
+        for name, (data, units) in datasets.items():
+            d = f.create_dataset(name, data=data)
+            if units:
+                d.attrs["units"] = units
+
+
+def _good(n=5):
+    return {"entry/map/intensity": (np.ones((3, 4, n), np.float32) *
+                                    np.arange(1, n + 1), None),
+            "entry/map/x": (np.arange(4.0), "um"), "entry/map/y": (np.arange(3.0), "um"),
+            "entry/map/raman_shift": (np.linspace(100, 500, n), "1/cm")}
+
+
+def _case(tmp_path, name):
+    p = tmp_path / "in.h5"
+    d = _good()
+    if name == "missing":
+        return tmp_path / "nothere.h5", "file not found"
+    if name == "not_hdf5":
+        p.write_text("hello")
+        return p, "not a readable HDF5 file"
+    if name == "no_dataset":
+        del d["entry/map/intensity"]
+        _write_h5(p, **d)
+        return p, "/entry/map/intensity: dataset is missing"
+    if name == "wrong_rank":
+        d["entry/map/intensity"] = (np.ones((3, 4)), None)
+        _write_h5(p, **d)
+        return p, "rank 2"
+    if name == "shift_length":
+        d["entry/map/raman_shift"] = (np.linspace(100, 500, 4), "1/cm")
+        _write_h5(p, **d)
+        return p, "4 values but the cube has 5"
+    if name == "non_monotonic":
+        d["entry/map/raman_shift"] = (np.array([100, 300, 200, 400, 500.0]), "1/cm")
+        _write_h5(p, **d)
+        return p, "not monotonic"
+    if name == "duplicated":
+        d["entry/map/raman_shift"] = (np.array([100, 200, 200, 400, 500.0]), "1/cm")
+        _write_h5(p, **d)
+        return p, "duplicated value"
+    if name == "all_nan":
+        d["entry/map/intensity"] = (np.full((3, 4, 5), np.nan, np.float32), None)
+        _write_h5(p, **d)
+        return p, "non-finite"
+    if name == "ragged_text":
+        p = tmp_path / "in.csv"
+        p.write_text("x,y,100,200\n0,0,1,2\n1,0,3\n")
+        return p, "line 3 has 3 values"
+    raise AssertionError(name)
+
+
+CASES = ["missing", "not_hdf5", "no_dataset", "wrong_rank", "shift_length", "non_monotonic",
+         "duplicated", "all_nan", "ragged_text"]
+
+
+@pytest.mark.parametrize("case", CASES)
+def test_bad_input_one_line_exit_2(tmp_path, capsys, case):
+    path, words = _case(tmp_path, case)
+    digest = sha256(path) if path.exists() else None
+    rc = main(["analyse", str(path), "--out", str(tmp_path / "out"), "--quiet", "--no-figures"])
+    err = capsys.readouterr().err.strip()
+    assert rc == 2, err
+    assert len(err.splitlines()) == 1, err
+    assert words in err and path.name in err, err
+    assert "Traceback" not in err
+    if digest:
+        assert sha256(path) == digest, "input changed"
+
+
+def test_nan_pixels_are_masked_and_reported(tmp_path, capsys):
+    d = _good(40)
+    cube = np.random.default_rng(0).poisson(100, (3, 4, 40)).astype(np.float32)
+    cube[1, 2, 5] = np.nan
+    cube[0, 0, :] = np.inf
+    d["entry/map/intensity"] = (cube, None)
+    p = tmp_path / "some_nan.h5"
+    _write_h5(p, **d)
+    rc = main(["analyse", str(p), "--out", str(tmp_path / "o"), "--quiet", "--no-figures",
+               "--components", "2", "--classes", "2"])
+    out = capsys.readouterr().out
+    assert rc == 0
+    assert "2 non-finite" in out
+
+
+def test_console_script_exit_codes(tmp_path):
+    bad = tmp_path / "x.h5"
+    bad.write_text("not hdf5")
+    r = subprocess.run([sys.executable, "-m", "mapkit.cli", "info", str(bad)],
+                       capture_output=True, text=True)
+    assert r.returncode == 2 and "Traceback" not in r.stderr and len(r.stderr.splitlines()) == 1
+    r = subprocess.run([sys.executable, "-m", "mapkit.cli", "analyse", "--help"],
+                       capture_output=True, text=True)
+    assert r.returncode == 0 and "--library" in r.stdout
+
+
+def test_info_and_spectrum(sample_map_path, capsys):
+    assert main(["info", str(sample_map_path)]) == 0
+    assert "48 x 64 pixels" in capsys.readouterr().out
+    assert main(["spectrum", str(sample_map_path), "--at", "10", "4"]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    assert lines[0].startswith("# pixel x=10 um, y=4 um") and len(lines) == 602
+
+
+def test_convert_from_text_then_analyse(tmp_path, capsys):
+    rng = np.random.default_rng(5)
+    rows = ["x,y," + ",".join(str(s) for s in range(200, 600, 10))]
+    for iy in range(4):
+        for ix in range(5):
+            rows.append(f"{ix},{iy}," + ",".join(str(v) for v in rng.poisson(50, 40)))
+    src = tmp_path / "scan.csv"
+    src.write_text("\n".join(rows) + "\n")
+    assert main(["convert", str(src), str(tmp_path / "scan.h5")]) == 0
+    assert main(["analyse", str(tmp_path / "scan.h5"), "--out", str(tmp_path / "o"), "--quiet",
+                 "--no-figures", "--components", "2", "--classes", "2",
+                 "--band", "mid:300-400"]) == 0
+    assert (tmp_path / "o" / "scan_mid.tif").exists()
