@@ -49,8 +49,9 @@ def _open_kwargs(a) -> dict:
             "y": a.y_path, "pixel_size": a.pixel_size, "laser_wavelength": a.laser}
 
 
-def _add_analysis_options(p):
-    p.add_argument("--out", default="mapkit-output", help="folder for the outputs (default: %(default)s)")
+def _add_analysis_options(p, default_out="mapkit-output"):
+    p.add_argument("--out", default=default_out,
+                   help="folder for the outputs (default: %(default)s)")
     p.add_argument("--library", help="folder of reference spectra (.jdx or two-column text)")
     p.add_argument("--standards", help="calibration standards table (CSV)")
     p.add_argument("--analyte", help="reference to quantify (default: from the standards file)")
@@ -105,6 +106,8 @@ def cmd_demo(a):
     from .samples import sample_dir
 
     here = sample_dir()
+    if a.out is None:  # the demo's own folder: a rerun replaces the previous demo output
+        a.out, a.overwrite = "mapkit-output/demo", True
     print("demo: invented tablet cross-section (synthetic data, see sample_maps/README.md)")
     bands = a.band or [("acetaminophen_858", 845.0, 872.0), ("calcite_1086", 1080.0, 1092.0),
                        ("anatase_144", 125.0, 165.0)]
@@ -185,7 +188,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     d = sub.add_parser("demo", help="run the whole path on the bundled synthetic map",
                        description="Run the whole path on the bundled, invented sample map.")
-    _add_analysis_options(d)
+    _add_analysis_options(d, default_out=None)
     d.set_defaults(func=cmd_demo)
 
     an = sub.add_parser("analyse", help="clean, reduce and quantify one map file",
