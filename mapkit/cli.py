@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import argparse
 import os
+
+import numpy as np
 import re
 import sys
 from pathlib import Path
@@ -60,13 +62,23 @@ def _add_analysis_options(p, default_out="mapkit-output"):
     p.add_argument("--components", type=_positive_int, default=4, help="NMF components (default 4)")
     p.add_argument("--classes", type=_positive_int, default=4, help="k-means classes (default 4)")
     p.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    p.add_argument("--recipe", help="TOML recipe of cleaning steps (default: mask bad pixels, "
+                                    "despike, ALS baseline; see 'mapkit steps')")
     p.add_argument("--overwrite", action="store_true", help="replace existing outputs")
     p.add_argument("--no-figures", action="store_true", help="skip PNG figures")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
 
 
+def _recipe(a):
+    from .preprocess.recipe import Recipe
+
+    return Recipe.from_file(a.recipe) if getattr(a, "recipe", None) else Recipe.default()
+
+
 def _run_analysis(a, map_path, library, standards, bands):
     from .pipeline import Settings, analyse
+
+    recipe = _recipe(a)  # checked before any data is read
 
     s = Settings(n_components=a.components, n_classes=a.classes, seed=a.seed,
                  analyte=a.analyte)
@@ -74,7 +86,7 @@ def _run_analysis(a, map_path, library, standards, bands):
         s.bands = bands
     out = analyse(map_path, a.out, library=library, standards=standards, settings=s,
                   overwrite=a.overwrite, progress=not a.quiet, figures=not a.no_figures,
-                  open_kwargs=_open_kwargs(a) if hasattr(a, "dataset") else None)
+                  open_kwargs=_open_kwargs(a) if hasattr(a, "dataset") else None, recipe=recipe)
     summ = out["summary"]
     print(f"map       {map_path}  ({summ['shape'][0]} x {summ['shape'][1]} pixels, "
           f"{summ['shape'][2]} channels)")
@@ -108,6 +120,8 @@ def cmd_demo(a):
     here = sample_dir()
     if a.out is None:  # the demo's own folder: a rerun replaces the previous demo output
         a.out, a.overwrite = "mapkit-output/demo", True
+    if a.recipe is None and (here / "tablet_recipe.toml").exists():
+        a.recipe = str(here / "tablet_recipe.toml")
     print("demo: invented tablet cross-section (synthetic data, see sample_maps/README.md)")
     bands = a.band or [("acetaminophen_858", 845.0, 872.0), ("calcite_1086", 1080.0, 1092.0),
                        ("anatase_144", 125.0, 165.0)]
@@ -157,6 +171,74 @@ def cmd_spectrum(a):
     print("raman_shift_cm-1,intensity")
     for sh, v in zip(m.raman_shift, s):
         print(f"{sh:.3f},{v:.6g}")
+
+
+def _map_files(target):
+    from .read.dispatch import MAP_SUFFIXES
+
+    p = Path(target)
+    if p.is_dir():
+        files = sorted(q for q in p.iterdir() if q.suffix.lower() in MAP_SUFFIXES)
+        if not files:
+            raise MapkitError("no map files in the folder", file=p,
+                              fix=f"put maps ({', '.join(MAP_SUFFIXES)}) in it")
+        return files
+    return [p]
+
+
+def cmd_preprocess(a):
+    from .export import write_map
+    from .read import open_map
+
+    recipe = _recipe(a)
+    files = _map_files(a.target)
+    out = Path(a.out)
+    out.mkdir(parents=True, exist_ok=True)
+    for f in files:
+        m = open_map(f, **_open_kwargs(a))
+        clean, extras = recipe.apply(m)
+        target = out / f"{f.stem}_clean.h5"
+        write_map(target, clean, overwrite=a.overwrite)
+        touched = extras.get("despike", {}).get("spikes")
+        note = f", {int(np.sum(touched))} spike channels replaced" if touched is not None else ""
+        print(f"{f} -> {target} ({int(clean.mask.sum())} pixels masked{note})")
+
+
+def cmd_steps(a):
+    from .preprocess.recipe import DEFAULT_RECIPE
+    from .preprocess.registry import describe_steps
+
+    print(describe_steps())
+    print("\nDefault recipe:\n" + DEFAULT_RECIPE)
+
+
+def cmd_axis_calibrate(a):
+    from .preprocess.axis_calibration import calibrate_axis
+    from .read import open_map, read_reference
+
+    p = Path(a.spectrum)
+    if p.suffix.lower() in (".h5", ".hdf5", ".nxs"):
+        from .preprocess.engine import good_mean_spectrum
+
+        m = open_map(p)
+        shift, spec = m.raman_shift, good_mean_spectrum(m)
+    else:
+        ref = read_reference(p)
+        shift, spec = ref.raman_shift, ref.intensity
+    cal = calibrate_axis(shift, spec, a.material, order=a.order, window=a.window)
+    print(f"{'standard':>10} {'measured':>10} {'corrected':>10} {'residual':>9}  (1/cm)")
+    for r, m_, res in zip(cal.reference, cal.measured, cal.residuals):
+        print(f"{r:10.2f} {m_:10.2f} {r - res:10.2f} {res:9.3f}")
+    print(f"RMS residual {cal.rms:.3f} 1/cm with {len(cal.reference)} bands, order {a.order}")
+    snippet = cal.recipe_step()
+    if a.out:
+        from .export.atomic import atomic_path
+
+        with atomic_path(a.out, overwrite=a.overwrite) as tmp:
+            tmp.write_text(snippet)
+        print(f"wrote {a.out}")
+    else:
+        print("\nAdd to a recipe:\n" + snippet)
 
 
 def cmd_samples(a):
@@ -217,6 +299,31 @@ def build_parser() -> argparse.ArgumentParser:
                    help="stage position in um (nearest pixel)")
     _add_read_options(s)
     s.set_defaults(func=cmd_spectrum)
+
+    pp = sub.add_parser("preprocess", help="clean one map or every map in a folder with a recipe",
+                        description="Apply a recipe of cleaning steps and write *_clean.h5 maps.")
+    pp.add_argument("target", help="map file or folder of maps")
+    pp.add_argument("--recipe", help="TOML recipe (default: see 'mapkit steps')")
+    pp.add_argument("--out", default="mapkit-output", help="folder for the cleaned maps")
+    pp.add_argument("--overwrite", action="store_true")
+    _add_read_options(pp)
+    pp.set_defaults(func=cmd_preprocess)
+
+    st = sub.add_parser("steps", help="list the cleaning steps a recipe can use")
+    st.set_defaults(func=cmd_steps)
+
+    ac = sub.add_parser("axis-calibrate", help="fit a shift-axis correction from a reference "
+                                               "material's spectrum")
+    ac.add_argument("spectrum", help="spectrum (.jdx, two-column text) or map (.h5: mean spectrum)")
+    ac.add_argument("--material", default="polystyrene",
+                    help="reference material (polystyrene, cyclohexane, naphthalene, "
+                         "acetaminophen, toluene, sulfur, silicon)")
+    ac.add_argument("--order", type=int, default=2, help="polynomial order (default 2)")
+    ac.add_argument("--window", type=float, default=10.0,
+                    help="search half-width around each tabulated band, 1/cm (default 10)")
+    ac.add_argument("--out", help="write the recipe step to this TOML file")
+    ac.add_argument("--overwrite", action="store_true")
+    ac.set_defaults(func=cmd_axis_calibrate)
 
     g = sub.add_parser("samples", help="regenerate the synthetic sample data")
     g.add_argument("outdir")

@@ -26,9 +26,6 @@ class Settings:
     """Parameters of the end-to-end path (all recorded in every output)."""
 
     bands: list = field(default_factory=list)
-    spike_threshold: float = 8.0
-    baseline_lam: float = 1e5
-    baseline_p: float = 0.01
     normalisation: str = "vector"
     n_components: int = 4
     n_classes: int = 4
@@ -73,15 +70,19 @@ def calibrate_from_standards(standards_path, unmixer, analyte=None):
 
 def analyse(map_path, outdir, *, library=None, standards=None, settings: Settings | None = None,
             overwrite: bool = False, progress: bool = True, figures: bool = True,
-            open_kwargs: dict | None = None) -> dict:
+            open_kwargs: dict | None = None, recipe=None) -> dict:
     """Run the whole path on one map file and write every output into ``outdir``.
 
-    Returns a dict with the paths written and a summary of the results.
+    ``recipe`` (a :class:`~mapkit.preprocess.recipe.Recipe`, default: mask bad pixels,
+    despike, ALS baseline) cleans the map before every reduction. Returns a dict with the
+    paths written and a summary of the results.
     """
+    from .preprocess.recipe import Recipe
     from tqdm.auto import tqdm
 
     from .export import save_image_figure, save_spectra_figure, write_results_file, write_tiff
-    from .preprocess import flag_bad_pixels, normalise_map, remove_baseline, remove_spikes
+    from .preprocess import normalise_map
+    from .preprocess.quality import snr
     from .quantify import concentration_map, response_fraction
     from .read import open_map, read_library
     from .reduce import KMeansClasses, NMFComponents, ReferenceUnmixing, band_image
@@ -92,8 +93,9 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
         raise MapkitError("the output path is a file, not a folder", file=outdir,
                           fix="give a folder for the outputs")
     outdir.mkdir(parents=True, exist_ok=True)
-    stages = ["read", "bad pixels", "spikes", "baseline", "normalise", "bands", "NMF",
-              "k-means", "unmixing", "concentration", "write"]
+    recipe = recipe or Recipe.default()
+    stages = ["read"] + [name for name, _ in recipe.steps] + [
+        "normalise", "bands", "NMF", "k-means", "unmixing", "concentration", "write"]
     bar = tqdm(total=len(stages), desc="mapkit", unit="step", disable=not progress, leave=False)
 
     def stage(name):
@@ -114,15 +116,15 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
                           fix="crop or bin the map first; chunk-wise processing is not available yet")
     m = raw.load()
     bar.update()
-    stage("bad pixels")
-    m, bad_report = flag_bad_pixels(m)
-    bar.update()
-    stage("spikes")
-    despiked, spikes = remove_spikes(m, threshold=s.spike_threshold)
-    bar.update()
-    stage("baseline")
-    corrected, _ = remove_baseline(despiked, lam=s.baseline_lam, p=s.baseline_p)
-    bar.update()
+
+    def step_progress(name):
+        stage(name)
+        bar.update()
+
+    corrected, extras = recipe.apply(m, progress=step_progress)
+    bad_report = extras.get("mask_bad_pixels", {}).get("report",
+                                                       {"nonfinite": 0, "dead": 0, "saturated": 0})
+    spikes = extras.get("despike", {}).get("spikes")
     stage("normalise")
     normed = normalise_map(corrected, method=s.normalisation)
     bar.update()
@@ -151,9 +153,9 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     if refs is not None:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
-            unmixer = ReferenceUnmixing(refs, baseline_order=s.unmix_baseline_order).fit(despiked)
+            unmixer = ReferenceUnmixing(refs, baseline_order=s.unmix_baseline_order).fit(corrected)
         notices += [str(w.message) for w in caught]
-        unmix_result = unmixer.result(despiked)
+        unmix_result = unmixer.result(corrected)
         results.append(unmix_result)
     bar.update()
     stage("concentration")
@@ -161,23 +163,38 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
         calibration, cs = calibrate_from_standards(standards, unmixer, s.analyte)
         response = response_fraction(unmix_result.fields["abundance"].data, unmixer.names_,
                                      calibration.analyte)
-        axes = (Axis("y", m.y, "um"), Axis("x", m.x, "um"))
-        results.append(concentration_map(response, calibration, axes, mask=m.mask))
+        axes = (Axis("y", corrected.y, "um"), Axis("x", corrected.x, "um"))
+        results.append(concentration_map(response, calibration, axes, mask=corrected.mask))
         calibration.save(outdir / "calibration.json")
     bar.update()
 
-    spike_field = Field("replaced", spikes.astype(np.uint8),
-                        (Axis("y", m.y, "um"), Axis("x", m.x, "um"),
-                         Axis("raman_shift", m.raman_shift, "1/cm")), "",
-                        long_name="1 where a cosmic-ray spike was replaced")
-    results.append(Result("spikes", "remove_spikes", {"threshold": s.spike_threshold},
-                          {"replaced": spike_field},
-                          {"channels_replaced": int(spikes.sum()),
-                           "spectra_touched": int(spikes.any(axis=-1).sum())}))
+    img_axes = (Axis("y", corrected.y, "um"), Axis("x", corrected.x, "um"))
+    ny, nx, ns = corrected.shape
+    snr_img = snr(np.asarray(corrected.intensity, float).reshape(-1, ns)).reshape(ny, nx)
+    snr_img[corrected.mask] = np.nan
+    results.append(Result("quality", "quality", {}, {
+        "snr": Field("snr", snr_img, img_axes, "", long_name="signal-to-noise ratio"),
+        "mask": Field("bad_pixel", corrected.mask.astype(np.uint8), img_axes, "",
+                      long_name="1 = masked (dead, saturated or non-finite)")},
+        {"snr_median": float(np.nanmedian(snr_img)), "masked": int(corrected.mask.sum())}))
+    spike_summary = {"channels_replaced": 0, "spectra_touched": 0}
+    if spikes is not None and spikes.shape[:2] == corrected.shape[:2]:
+        spikes = np.asarray(spikes)
+        spike_summary = {"channels_replaced": int(spikes.sum()),
+                         "spectra_touched": int(spikes.any(axis=-1).sum())}
+        spike_axes = img_axes + (Axis("raman_shift", m.raman_shift, "1/cm"),)
+        if spikes.shape[2] == m.raman_shift.size:
+            results.append(Result("spikes", "despike", dict(recipe.steps)["despike"],
+                                  {"replaced": Field("replaced", spikes.astype(np.uint8),
+                                                     spike_axes, "",
+                                                     long_name="1 where a cosmic-ray spike "
+                                                               "was replaced")},
+                                  spike_summary))
 
     stage("write")
     run_step = Step("analyse", {"settings": asdict(s), "library": str(library) if library else None,
-                                "standards": str(standards) if standards else None})
+                                "standards": str(standards) if standards else None,
+                                "recipe": recipe.text})
     final = corrected.derive(corrected.intensity, run_step)
     inputs = {"map": map_path}
     if standards is not None:
@@ -188,7 +205,7 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     stem = _safe(Path(map_path).stem)
     for r in results:
         for fname, fld in r.fields.items():
-            if not fld.is_image or fld.data.ndim > 3 or fname == "replaced":
+            if not fld.is_image or fld.data.ndim > 3 or fname in ("replaced", "mask"):
                 continue
             base = f"{stem}_{r.name}" + ("" if fname in ("image", r.name) else f"_{fname}")
             written.append(write_tiff(outdir / f"{base}.tif", fld, overwrite=overwrite,
@@ -219,7 +236,7 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
                                                        fld, title=f"{r.name}: {fname}",
                                                        overwrite=overwrite))
     summary = {"map": str(map_path), "shape": list(raw.shape), "bad_pixels": bad_report,
-               "spikes": results[-1].summary, "notices": notices,
+               "spikes": spike_summary, "notices": notices, "recipe": recipe.text,
                "results": {r.name: r.summary for r in results if r.summary},
                "settings": asdict(s), "versions": library_versions()}
     from .export.atomic import atomic_path

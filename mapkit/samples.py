@@ -213,6 +213,12 @@ def write_samples(outdir) -> list[Path]:
     header = "standard,concentration," + ",".join(f"{s:.3f}" for s in SHIFT)
     rows = [f"std{i // 3 + 1}-{i % 3 + 1},{c:g}," + ",".join(f"{v:.0f}" for v in s)
             for i, (c, s) in enumerate(zip(conc, spectra))]
+    p = out / "tablet_recipe.toml"
+    if not p.exists():
+        bundled = Path(__file__).resolve().parent.parent / "sample_maps" / "tablet_recipe.toml"
+        from .preprocess.recipe import DEFAULT_RECIPE
+        p.write_text(bundled.read_text() if bundled.exists() else DEFAULT_RECIPE)
+    written.append(p)
     p = out / "calibration_standards.csv"
     p.write_text(f"# analyte: {ANALYTE}; unit: % w/w; synthetic, invented\n" + header + "\n"
                  + "\n".join(rows) + "\n")

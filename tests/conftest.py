@@ -41,9 +41,9 @@ def cleaned(sample_map):
 
     flagged, report = flag_bad_pixels(sample_map)
     despiked, spikes = remove_spikes(flagged)
-    corrected, baseline = remove_baseline(despiked)
+    corrected = remove_baseline(despiked)
     return {"flagged": flagged, "report": report, "despiked": despiked, "spikes": spikes,
-            "corrected": corrected, "baseline": baseline}
+            "corrected": corrected}
 
 
 def sha256(path) -> str:

@@ -50,7 +50,7 @@ def test_demo_results_file_layout(demo_out):
         inputs = f["/entry/provenance"].attrs["inputs"]
         assert "sha256" in inputs
         steps = [s.decode() if isinstance(s, bytes) else s for s in f["/entry/provenance/steps"][...]]
-        assert any("remove_spikes" in s for s in steps) and any("remove_baseline" in s for s in steps)
+        assert any('"despike"' in s for s in steps) and any('"baseline"' in s for s in steps)
 
 
 def test_tiff_has_physical_pixel_size(demo_out):

@@ -8,7 +8,7 @@ from mapkit import MapkitError
 from mapkit.preprocess import (air_to_vacuum, als_baseline, bad_pixel_mask, normalise, savgol,
                                shift_to_wavelength, spectral_spike_mask, vacuum_to_air,
                                wavelength_to_shift)
-from mapkit.preprocess.baseline import solve_pentadiagonal
+from mapkit.preprocess._banded import penalty_diagonals, solve_pentadiagonal, weighted_whittaker
 
 
 # --- Savitzky-Golay: Savitzky & Golay 1964, Anal. Chem. 36:1627, tables as corrected by
@@ -35,18 +35,34 @@ def test_savgol_first_derivative_matches_table():
                                atol=1e-12)
 
 
-# --- ALS baseline: Eilers & Boelens 2005; cross-checked with pybaselines (Erb, pybaselines)
-def test_als_matches_pybaselines(cleaned, sample_map):
+# --- baselines, cross-checked with pybaselines (D. Erb, "pybaselines", a general-purpose
+# baseline library): asls = Eilers & Boelens 2005, arpls = Baek et al. 2015, airpls =
+# Zhang et al. 2010, modpoly = Lieber & Mahadevan-Jansen 2003, mor = Perez-Pueyo 2010
+BASELINE_CASES = [
+    ("als", dict(lam=1e5, p=0.01), "asls", dict(lam=1e5, p=0.01)),
+    ("als", dict(lam=1e7, p=0.001), "asls", dict(lam=1e7, p=0.001)),
+    ("arpls", dict(lam=1e5), "arpls", dict(lam=1e5)),
+    ("airpls", dict(lam=1e6), "airpls", dict(lam=1e6)),
+    ("modpoly", dict(order=3), "modpoly", dict(poly_order=3)),
+    ("rolling", dict(half_window=30), "mor", dict(half_window=30)),
+]
+
+
+@pytest.mark.parametrize("ours, kw, theirs, their_kw", BASELINE_CASES,
+                         ids=[f"{c[0]}-{i}" for i, c in enumerate(BASELINE_CASES)])
+def test_baselines_match_pybaselines(cleaned, sample_map, ours, kw, theirs, their_kw):
     pytest.importorskip("pybaselines")
     from pybaselines import Baseline
 
-    spectra = np.asarray(cleaned["despiked"].intensity, float).reshape(-1, 600)[::97][:24]
+    from mapkit.preprocess.baseline import METHODS
+
+    spectra = np.asarray(cleaned["despiked"].intensity, float).reshape(-1, 600)
+    spectra = spectra[np.ptp(spectra, axis=1) > 0][::97][:24]
     fitter = Baseline(sample_map.raman_shift)
-    for lam, p in ((1e5, 0.01), (1e7, 0.001)):
-        ours = als_baseline(spectra, lam=lam, p=p)
-        ref = np.array([fitter.asls(s, lam=lam, p=p)[0] for s in spectra])
-        rel = np.max(np.abs(ours - ref), axis=1) / np.max(np.abs(ref), axis=1)
-        assert rel.max() < 1e-6, rel.max()
+    mine = METHODS[ours](spectra, sample_map.raman_shift, **kw)
+    ref = np.array([getattr(fitter, theirs)(s, **their_kw)[0] for s in spectra])
+    rel = np.max(np.abs(mine - ref), axis=1) / np.max(np.abs(ref), axis=1)
+    assert rel.max() < 1e-6, rel.max()
 
 
 def test_als_float32_input_is_solved_in_float64():
@@ -68,13 +84,24 @@ def test_pentadiagonal_solver_matches_dense_solve():
     rng = np.random.default_rng(3)
     n = 40
     w = rng.uniform(0.01, 1, (3, n))
-    from mapkit.preprocess.baseline import _penalty_diagonals
-    d0, d1, d2 = _penalty_diagonals(n, 50.0)
+    d0, d1, d2 = penalty_diagonals(n, 50.0)
     rhs = rng.normal(size=(3, n))
     x = solve_pentadiagonal(w + d0, np.broadcast_to(d1, (3, n - 1)), np.broadcast_to(d2, (3, n - 2)), rhs)
     for k in range(3):
         A = np.diag(w[k] + d0) + np.diag(d1, 1) + np.diag(d1, -1) + np.diag(d2, 2) + np.diag(d2, -2)
         np.testing.assert_allclose(x[k], np.linalg.solve(A, rhs[k]), rtol=1e-8)
+
+
+def test_compiled_and_numpy_solvers_agree():
+    pytest.importorskip("numba")
+    rng = np.random.default_rng(4)
+    w = rng.uniform(0, 1, (7, 300))
+    y = rng.normal(size=(7, 300)).cumsum(axis=1)
+    a = weighted_whittaker(w, y, 1e4, engine="numba")
+    b = weighted_whittaker(w, y, 1e4, engine="numpy")
+    np.testing.assert_allclose(a, b, rtol=1e-9, atol=1e-9)
+    np.testing.assert_allclose(als_baseline(y, lam=1e4, engine="numba"),
+                               als_baseline(y, lam=1e4, engine="numpy"), rtol=1e-9, atol=1e-9)
 
 
 def test_als_rejects_bad_parameters():
@@ -157,3 +184,98 @@ def test_air_vacuum_birch_downs():
     assert vacuum_to_air(632.991) == pytest.approx(632.816, abs=1e-3)
     # Ne I 640.2248 nm in air (NIST ASD) → 15615.20 cm⁻¹ absolute
     assert 1e7 / air_to_vacuum(640.2248) == pytest.approx(15615.20, abs=0.01)
+
+
+def test_whittaker_smoother_properties():
+    # Eilers 2003: λ → 0 returns the data; a 2nd-order penalty leaves a straight line
+    from mapkit.preprocess.smooth import whittaker_smooth
+
+    rng = np.random.default_rng(2)
+    y = rng.normal(size=(3, 80))
+    np.testing.assert_allclose(whittaker_smooth(y, lam=1e-9), y, atol=1e-6)
+    line = np.tile(np.linspace(-2, 7, 80), (2, 1))
+    np.testing.assert_allclose(whittaker_smooth(line, lam=1e4), line, rtol=1e-8, atol=1e-8)
+    assert np.std(np.diff(whittaker_smooth(y, lam=100.0), axis=1)) < np.std(np.diff(y, axis=1))
+
+
+def test_msc_and_emsc_recover_the_reference():
+    # by the model's definition (Geladi et al. 1985; Martens & Stark 1991): spectra that are
+    # the reference scaled and offset (MSC) or plus a polynomial (EMSC) come back as it
+    from mapkit.preprocess.normalise import emsc, msc
+
+    s = np.linspace(400, 1800, 300)
+    ref = 1 / (1 + ((s - 1000) / 8) ** 2) + 0.5 / (1 + ((s - 1400) / 12) ** 2)
+    t = (s - s.mean()) / np.ptp(s)
+    block = np.stack([2.0 * ref + 0.3, 0.7 * ref - 0.1])
+    np.testing.assert_allclose(msc(block, ref), np.tile(ref, (2, 1)), atol=1e-10)
+    curved = np.stack([1.5 * ref + 0.2 + 0.4 * t - 0.3 * t ** 2, 0.8 * ref - 0.5 * t])
+    np.testing.assert_allclose(emsc(curved, ref, order=2, shift=s), np.tile(ref, (2, 1)),
+                               atol=1e-10)
+
+
+def test_resample_and_bin():
+    from mapkit.preprocess.axis import bin_cube, resample
+
+    src = np.linspace(100, 200, 11)
+    y = 3 * src[None] + 1
+    np.testing.assert_allclose(resample(y, src, [105.0, 150.0, 199.0]), [[316, 451, 598]])
+    with pytest.raises(MapkitError, match="outside"):
+        resample(y, src, [90.0, 150.0])
+    cube = np.arange(4 * 5 * 2, dtype=float).reshape(4, 5, 2)
+    mask = np.zeros((4, 5), bool)
+    mask[0, 0] = True
+    out, omask, dropped = bin_cube(cube, mask, 2)
+    assert out.shape == (2, 2, 2) and dropped == (0, 1)
+    np.testing.assert_allclose(out[0, 0], cube[[0, 1, 1], [1, 0, 1]].mean(axis=0))
+    assert not omask.any()
+
+
+def test_spectral_despike_replaces_a_spike():
+    from mapkit.preprocess.spikes import interpolate_flagged
+
+    rng = np.random.default_rng(0)
+    y = 100 + rng.normal(0, 3, (1, 200))
+    y[0, 120] += 2000
+    flags = spectral_spike_mask(y, threshold=3.5)
+    assert flags[0, 120]
+    fixed = interpolate_flagged(y, flags)
+    assert abs(fixed[0, 120] - 100) < 15
+
+
+def test_snr_of_a_known_spectrum():
+    from mapkit.preprocess.quality import noise_sd, snr
+
+    rng = np.random.default_rng(1)
+    y = 50 + rng.normal(0, 2.0, (200, 1000))
+    y[:, 500] += 100
+    assert np.median(noise_sd(y)) == pytest.approx(2.0, rel=0.05)
+    assert np.median(snr(y)) == pytest.approx(50, rel=0.1)
+
+
+# --- shift-axis calibration: ASTM E1840 polystyrene positions (from memory; see
+# mapkit/preprocess/axis_calibration.py) and a known, invented axis distortion
+def test_axis_calibration_recovers_a_known_distortion():
+    from mapkit.preprocess.axis_calibration import REFERENCE_SHIFTS, calibrate_axis
+
+    true_positions = np.array(REFERENCE_SHIFTS["polystyrene"])
+    reported = np.linspace(500.0, 3200.0, 2048)           # what the instrument claims
+    u = (reported - 1500) / 1000
+    truth = reported + 2.5 - 1.8 * u + 0.9 * u ** 2         # what the channels really are
+    rng = np.random.default_rng(3)
+    heights = rng.uniform(300, 1500, true_positions.size)
+    spectrum = 200 + sum(h * 4.0 ** 2 / ((truth - p) ** 2 + 4.0 ** 2)
+                         for h, p in zip(heights, true_positions))
+    spectrum = rng.poisson(spectrum).astype(float)
+    cal = calibrate_axis(reported, spectrum, "polystyrene", order=2, window=12)
+    assert len(cal.reference) >= 9
+    assert np.max(np.abs(cal.apply(reported) - truth)) <= 0.3
+    assert cal.rms < 0.3
+    assert 'name = "correct_axis"' in cal.recipe_step()
+
+
+def test_axis_calibration_needs_enough_bands():
+    from mapkit.preprocess.axis_calibration import calibrate_axis
+
+    s = np.linspace(900, 1100, 300)
+    with pytest.raises(MapkitError, match="bands"):
+        calibrate_axis(s, np.ones_like(s), "polystyrene", order=2)

@@ -76,3 +76,59 @@ def crop_indices(shift, lo, hi):
                           f"(the map covers {shift.min():.1f}-{shift.max():.1f})",
                           field="range", fix="choose a range inside the map's shift axis")
     return idx
+
+
+def resample_matrix(source, target):
+    """Linear-interpolation indices and weights from ``source`` onto ``target`` (both 1-D).
+
+    Returns ``(i, f)`` with ``out = y[:, i] * (1 - f) + y[:, i + 1] * f``; the source axis
+    may run in either direction. Targets outside the source range are an error.
+    """
+    src = np.asarray(source, float)
+    tgt = np.asarray(target, float)
+    flip = src[0] > src[-1]
+    s = src[::-1] if flip else src
+    if tgt.min() < s[0] - 1e-9 or tgt.max() > s[-1] + 1e-9:
+        raise MapkitError(f"the new axis {tgt.min():g}-{tgt.max():g} 1/cm reaches outside the "
+                          f"data ({s[0]:g}-{s[-1]:g})", field="raman_shift",
+                          fix="choose start and stop inside the measured range")
+    i = np.clip(np.searchsorted(s, tgt, side="right") - 1, 0, s.size - 2)
+    f = (tgt - s[i]) / (s[i + 1] - s[i])
+    if flip:  # index pairs in the original, descending order: (j, j+1) with j = n-2-i
+        return s.size - 2 - i, 1 - f
+    return i, f
+
+
+def resample(block, source, target):
+    """Spectra linearly interpolated from the ``source`` onto the ``target`` shift axis.
+
+    Examples
+    --------
+    >>> resample(np.array([[0.0, 10.0, 20.0]]), [100, 200, 300], [150, 250]).tolist()
+    [[5.0, 15.0]]
+    """
+    b = np.atleast_2d(np.asarray(block, dtype=np.float64))
+    i, f = resample_matrix(source, target)
+    return b[:, i] * (1 - f) + b[:, i + 1] * f
+
+
+def bin_cube(cube, mask, factor: int):
+    """Average ``factor`` x ``factor`` pixel tiles, ignoring masked pixels.
+
+    Returns the binned cube, the binned mask (a tile is masked when all its pixels are)
+    and the number of trailing rows and columns dropped to fit whole tiles.
+    """
+    cube = np.asarray(cube, dtype=np.float64)
+    ny, nx, ns = cube.shape
+    by, bx = ny // factor, nx // factor
+    if by == 0 or bx == 0:
+        raise MapkitError(f"binning by {factor} leaves no pixel of a {ny} x {nx} map",
+                          field="factor", fix="choose a smaller factor")
+    c = cube[:by * factor, :bx * factor].reshape(by, factor, bx, factor, ns)
+    good = ~np.asarray(mask)[:by * factor, :bx * factor].reshape(by, factor, bx, factor)
+    w = good[..., None].astype(np.float64)
+    count = w.sum(axis=(1, 3))
+    total = (c * w).sum(axis=(1, 3))
+    out = np.zeros_like(total)
+    np.divide(total, count, out=out, where=count > 0)
+    return out, count[..., 0] == 0, (ny - by * factor, nx - bx * factor)

@@ -1,87 +1,84 @@
-"""Baseline (fluorescence background) estimation, solved for a block of spectra at once."""
+"""Baseline (fluorescence background) estimation, solved for a block of spectra at once.
+
+Every function takes a block ``(n_spectra, n_shift)`` (or one spectrum) and returns the
+baseline in float64 with the same shape. The Whittaker-type methods (ALS, arPLS, airPLS)
+share one batched penalised solve (:mod:`mapkit.preprocess._banded`); each follows the
+stopping rule of the pybaselines implementation of the same method, so the two agree to
+rounding (tests/test_preprocess.py).
+"""
 
 from __future__ import annotations
 
 import numpy as np
+from scipy.ndimage import grey_dilation, grey_erosion, grey_opening
+from scipy.special import expit
 
 from ..errors import MapkitError
+from ._banded import als_solve, weighted_whittaker
+
+_EPS = np.finfo(float).eps
 
 
-def _penalty_diagonals(n: int, lam: float):
-    """Diagonals (main, first, second) of λ·DᵀD for the 2nd-difference matrix D."""
-    d0 = np.full(n, 6.0)
-    d0[[0, -1]] = 1.0
-    if n > 2:
-        d0[[1, -2]] = 5.0
-    d1 = np.full(n - 1, -4.0)
-    d1[[0, -1]] = -2.0
-    d2 = np.ones(n - 2)
-    if n == 3:
-        d0[:] = (1.0, 4.0, 1.0)
-        d1[:] = -2.0
-    return lam * d0, lam * d1, lam * d2
+def _prepare(block):
+    y = np.asarray(block, dtype=np.float64)
+    single = y.ndim == 1
+    y = np.atleast_2d(y)
+    if y.shape[-1] < 3:
+        raise MapkitError(f"a baseline needs at least 3 channels, the spectra have {y.shape[-1]}",
+                          field="raman_shift", fix="do not crop the spectra so narrowly")
+    return y, single
 
 
-def solve_pentadiagonal(a, b, c, rhs):
-    """Solve symmetric positive-definite pentadiagonal systems, one per row.
+def _check_lam(lam):
+    if not lam > 0:
+        raise MapkitError(f"lam = {lam} must be positive", field="lam", fix="use 1e2-1e9")
 
-    ``a`` (m, n) is the main diagonal, ``b`` (m, n-1) and ``c`` (m, n-2) the
-    first and second super-diagonals, ``rhs`` (m, n). An LDLᵀ factorisation
-    runs along the channel axis while every operation is vectorised across the
-    m spectra; scipy's banded solvers would need a Python loop per spectrum and
-    hold the GIL (measured in benchmarks/bench_baseline.py).
+
+def _relative_change(old, new):
+    return np.linalg.norm(new - old, axis=1) / np.maximum(np.linalg.norm(old, axis=1), _EPS)
+
+
+def _reweighted(y, lam, weigh, max_iter, tol, engine):
+    """Iterate solve → new weights on the still-active spectra until each one converges.
+
+    ``weigh(y, z, w, iteration)`` returns (new_w, change, stop_now) per active row; a row
+    leaves the active set when ``change < tol`` (keeping the weights that produced its
+    final baseline, as pybaselines does) or when ``stop_now`` says the update is unusable.
     """
-    m, n = rhs.shape
-    d = np.empty((m, n))
-    l1 = np.zeros((m, n))
-    l2 = np.zeros((m, n))
-    d[:, 0] = a[:, 0]
-    if n > 1:
-        l1[:, 1] = b[:, 0] / d[:, 0]
-        d[:, 1] = a[:, 1] - l1[:, 1] ** 2 * d[:, 0]
-    for i in range(2, n):
-        l2[:, i] = c[:, i - 2] / d[:, i - 2]
-        l1[:, i] = (b[:, i - 1] - l2[:, i] * l1[:, i - 1] * d[:, i - 2]) / d[:, i - 1]
-        d[:, i] = a[:, i] - l1[:, i] ** 2 * d[:, i - 1] - l2[:, i] ** 2 * d[:, i - 2]
+    m, n = y.shape
+    w = np.ones((m, n))
     z = np.empty((m, n))
-    z[:, 0] = rhs[:, 0]
-    if n > 1:
-        z[:, 1] = rhs[:, 1] - l1[:, 1] * z[:, 0]
-    for i in range(2, n):
-        z[:, i] = rhs[:, i] - l1[:, i] * z[:, i - 1] - l2[:, i] * z[:, i - 2]
-    z /= d
-    x = np.empty((m, n))
-    x[:, n - 1] = z[:, n - 1]
-    if n > 1:
-        x[:, n - 2] = z[:, n - 2] - l1[:, n - 1] * x[:, n - 1]
-    for i in range(n - 3, -1, -1):
-        x[:, i] = z[:, i] - l1[:, i + 1] * x[:, i + 1] - l2[:, i + 2] * x[:, i + 2]
-    return x
+    active = np.arange(m)
+    for it in range(1, max_iter + 2):
+        za = weighted_whittaker(w[active], y[active], lam, engine=engine)
+        z[active] = za
+        new_w, change, stop = weigh(y[active], za, w[active], it)
+        done = stop | (change < tol)
+        keep = ~done
+        w[active[keep]] = new_w[keep]
+        active = active[keep]
+        if active.size == 0:
+            break
+    return z
 
 
-def als_baseline(block, shift=None, *, lam: float = 1e5, p: float = 0.01,
-                 max_iter: int = 50, tol: float = 1e-3):
-    """Asymmetric least squares baseline of every spectrum in ``block``.
+def als_baseline(block, shift=None, *, lam: float = 1e5, p: float = 0.01, max_iter: int = 50,
+                 tol: float = 1e-3, engine: str = "auto"):
+    """Asymmetric least squares baseline (Eilers & Boelens 2005).
 
-    Eilers & Boelens (2005), "Baseline correction with asymmetric least squares
-    smoothing": minimise Σ wᵢ(yᵢ − zᵢ)² + λ Σ (Δ²zᵢ)² with wᵢ = p where the
-    spectrum lies above the baseline and 1 − p below, re-weighting until the
-    weights stop changing (relative change < ``tol``, the stopping rule of
-    pybaselines' ``asls``, so the two agree). Solved in float64 whatever the
-    input dtype: float32 weights beside λ ≥ 1e5 break the factorisation.
+    Minimises Σ wᵢ(yᵢ − zᵢ)² + λ Σ(Δ²zᵢ)² with wᵢ = p where the spectrum lies above the
+    baseline and 1 − p below, re-weighting until the relative change of the weights is
+    below ``tol``. Solved in float64 whatever the input dtype: float32 weights next to
+    λ ≥ 1e5 break the factorisation.
 
     Parameters
     ----------
     block : array (n_spectra, n_shift) or (n_shift,)
-    shift : ignored (the penalty is on channel index, as in the paper)
+    shift : ignored (the penalty acts on channel index, as in the paper)
     lam : float
         Smoothness, 1e2–1e9.
     p : float
         Asymmetry, 0 < p < 1 (typically 0.001–0.1).
-
-    Returns
-    -------
-    baseline : float64 array, same shape as ``block``
 
     Examples
     --------
@@ -92,28 +89,135 @@ def als_baseline(block, shift=None, *, lam: float = 1e5, p: float = 0.01,
     """
     if not 0 < p < 1:
         raise MapkitError(f"p = {p} is outside (0, 1)", field="p", fix="use 0.001-0.1")
-    if not lam > 0:
-        raise MapkitError(f"lam = {lam} must be positive", field="lam", fix="use 1e2-1e9")
-    y = np.asarray(block, dtype=np.float64)
-    single = y.ndim == 1
-    y = np.atleast_2d(y)
-    m, n = y.shape
-    if n < 3:
-        return np.array(y if not single else y[0])
-    p0, p1, p2 = _penalty_diagonals(n, lam)
-    w = np.ones((m, n))
-    z = np.empty((m, n))
-    active = np.arange(m)
-    for _ in range(max_iter + 1):
-        wa = w[active]
-        za = solve_pentadiagonal(wa + p0, np.broadcast_to(p1, (active.size, n - 1)),
-                                 np.broadcast_to(p2, (active.size, n - 2)), wa * y[active])
+    _check_lam(lam)
+    y, single = _prepare(block)
+    if engine in ("auto", "numba"):
+        z = als_solve(y, lam, p, max_iter, tol)
+        if z is not None:
+            return z[0] if single else z
+
+    def weigh(ya, za, wa, it):
+        new = np.where(ya > za, p, 1 - p)
+        return new, _relative_change(wa, new), np.zeros(len(ya), bool)
+
+    z = _reweighted(y, lam, weigh, max_iter, tol, engine)
+    return z[0] if single else z
+
+
+def arpls_baseline(block, shift=None, *, lam: float = 1e5, max_iter: int = 50,
+                   tol: float = 1e-3, engine: str = "auto"):
+    """Asymmetrically reweighted penalised least squares (arPLS; Baek et al. 2015, Analyst 140:250).
+
+    Weights follow a logistic function of the residual scaled by the mean and standard
+    deviation of the negative residuals, so noise around the baseline keeps weight and
+    peaks lose it.
+
+    Examples
+    --------
+    >>> x = np.linspace(0, 1, 300)
+    >>> y = 10 + 5 * x + 40 * np.exp(-((x - 0.5) / 0.02) ** 2)
+    >>> z = arpls_baseline(y, lam=1e5)
+    >>> bool(abs(z[150] - 12.5) < 1.0)
+    True
+    """
+    _check_lam(lam)
+    y, single = _prepare(block)
+
+    def weigh(ya, za, wa, it):
+        r = ya - za
+        neg = r < 0
+        count = neg.sum(axis=1)
+        stop = count < 2
+        rn = np.where(neg, r, 0.0)
+        mean = rn.sum(axis=1) / np.maximum(count, 1)
+        var = (np.where(neg, r - mean[:, None], 0.0) ** 2).sum(axis=1) / np.maximum(count - 1, 1)
+        std = np.sqrt(var)
+        std = np.where(std == 0, _EPS, std)
+        new = expit(-(2 / std[:, None]) * (r - (2 * std - mean)[:, None]))
+        return new, _relative_change(wa, new), stop
+
+    z = _reweighted(y, lam, weigh, max_iter, tol, engine)
+    return z[0] if single else z
+
+
+def airpls_baseline(block, shift=None, *, lam: float = 1e6, max_iter: int = 50,
+                    tol: float = 1e-3, engine: str = "auto"):
+    """Adaptive iteratively reweighted penalised least squares (airPLS; Zhang, Chen & Liang 2010).
+
+    Points above the baseline get weight 0; points below get exp(t·|r|/|Σr⁻|) at
+    iteration t (capped at 50), and iteration stops when |Σr⁻| < tol·Σ|y|.
+    """
+    _check_lam(lam)
+    y, single = _prepare(block)
+    y_l1 = np.abs(y).sum(axis=1)
+    log_max = np.log(np.finfo(float).max)
+    z = np.empty_like(y)
+    w = np.ones_like(y)
+    active = np.arange(y.shape[0])
+    for it in range(1, max_iter + 2):
+        za = weighted_whittaker(w[active], y[active], lam, engine=engine)
         z[active] = za
-        new_w = np.where(y[active] > za, p, 1 - p)
-        change = np.linalg.norm(new_w - wa, axis=1) / np.maximum(np.linalg.norm(wa, axis=1),
-                                                                 np.finfo(float).eps)
-        w[active] = new_w
-        active = active[change >= tol]
+        r = y[active] - za
+        neg = r < 0
+        l1 = np.where(neg, r, 0.0).sum(axis=1)          # ≤ 0
+        safe = np.where(l1 == 0, -1.0, l1)
+        inner = np.clip((min(it, 50) / safe)[:, None] * r, 0, log_max - np.spacing(log_max))
+        new_w = np.where(neg, np.exp(inner), 0.0)
+        rel = np.divide(np.abs(l1), y_l1[active], out=np.zeros_like(l1), where=y_l1[active] > 0)
+        done = (neg.sum(axis=1) < 2) | (rel < tol)
+        w[active[~done]] = new_w[~done]
+        active = active[~done]
         if active.size == 0:
             break
     return z[0] if single else z
+
+
+def modpoly_baseline(block, shift=None, *, order: int = 2, max_iter: int = 250,
+                     tol: float = 1e-3):
+    """Modified polynomial baseline (Lieber & Mahadevan-Jansen 2003, Appl. Spectrosc. 57:1363).
+
+    Fits a polynomial, clips the spectrum to it from above, and refits until the baseline
+    changes by less than ``tol`` (relative). Polynomials live on the shift axis mapped to
+    [-1, 1] (the channel index when ``shift`` is None).
+    """
+    y, single = _prepare(block)
+    if not (0 <= order <= 20):
+        raise MapkitError(f"order = {order} is outside 0-20", field="order", fix="use 1-6")
+    x = np.arange(y.shape[1], dtype=float) if shift is None else np.asarray(shift, float)
+    t = 2 * (x - x.min()) / (x.max() - x.min()) - 1
+    V = np.polynomial.polynomial.polyvander(t, order)
+    pinv = np.linalg.pinv(V)
+    base = (pinv @ y.T).T @ V.T
+    work = y.copy()
+    active = np.arange(y.shape[0])
+    for _ in range(max_iter):
+        old = base[active]
+        work[active] = np.minimum(work[active], old)
+        new = (pinv @ work[active].T).T @ V.T
+        base[active] = new
+        active = active[_relative_change(old, new) >= tol]
+        if active.size == 0:
+            break
+    return base[0] if single else base
+
+
+def rolling_baseline(block, shift=None, *, half_window: int = 25):
+    """Morphological baseline (Perez-Pueyo et al. 2010, Appl. Spectrosc. 64:595).
+
+    A grey opening with a flat window of 2·half_window + 1 channels, then the pointwise
+    minimum of the opening and the mean of its dilation and erosion, which smooths the
+    opening's steps. Choose the window wider than the widest band.
+    """
+    y, single = _prepare(block)
+    if not (1 <= half_window < y.shape[1] // 2):
+        raise MapkitError(f"half_window = {half_window} must be 1 to {y.shape[1] // 2 - 1}",
+                          field="half_window", fix="use a window wider than the widest band")
+    size = (1, 2 * half_window + 1)
+    opening = grey_opening(y, size=size)
+    avg = 0.5 * (grey_dilation(opening, size=size) + grey_erosion(opening, size=size))
+    base = np.minimum(opening, avg)
+    return base[0] if single else base
+
+
+METHODS = {"als": als_baseline, "arpls": arpls_baseline, "airpls": airpls_baseline,
+           "modpoly": modpoly_baseline, "rolling": rolling_baseline}

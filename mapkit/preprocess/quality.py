@@ -24,3 +24,24 @@ def bad_pixel_mask(block, *, saturation: float | None = None) -> dict[str, np.nd
     else:
         saturated = (safe >= saturation).any(axis=-1)
     return {"nonfinite": nonfinite, "dead": dead & ~nonfinite, "saturated": saturated & ~dead}
+
+
+def noise_sd(block):
+    """Noise standard deviation of each spectrum from its first differences.
+
+    For white noise the first difference has variance 2σ², and the median absolute
+    deviation (× 1.4826) ignores the few large differences at bands and spikes.
+    """
+    d = np.diff(np.asarray(block, dtype=np.float64), axis=-1)
+    mad = np.median(np.abs(d - np.median(d, axis=-1, keepdims=True)), axis=-1)
+    return 1.4826 * mad / np.sqrt(2)
+
+
+def snr(block):
+    """Signal-to-noise ratio per spectrum: (maximum − median) / noise sd (0 where noise is 0)."""
+    b = np.asarray(block, dtype=np.float64)
+    signal = b.max(axis=-1) - np.median(b, axis=-1)
+    sd = noise_sd(b)
+    out = np.zeros_like(signal)
+    np.divide(signal, sd, out=out, where=sd > 0)
+    return out

@@ -8,6 +8,9 @@ from ..core.ramanmap import RamanMap
 from ..errors import MapkitError
 
 _TEXT = (".csv", ".tsv", ".txt", ".dat")
+_HDF5 = (".h5", ".hdf5", ".nxs", ".nx5")
+#: file suffixes treated as maps when a folder is processed
+MAP_SUFFIXES = _HDF5 + _TEXT
 
 
 def open_map(path, *, dataset: str | None = None, axes=None, shift: str | None = None,

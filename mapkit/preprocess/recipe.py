@@ -1,0 +1,150 @@
+"""Recipes: a TOML file naming a sequence of preprocessing steps and their parameters.
+
+Example::
+
+    [recipe]
+    name = "tablet sections"
+
+    [[step]]
+    name = "mask_bad_pixels"
+
+    [[step]]
+    name = "despike"
+    threshold = 8.0
+
+    [[step]]
+    name = "baseline"
+    method = "als"
+    lam = 1e5
+    p = 0.01
+
+A recipe is checked completely (unknown steps, unknown or missing parameters, wrong
+types, values out of range) before any data is read; errors name the file and line.
+Every output records the recipe text in its provenance, so a result can be reproduced
+from the file alone.
+"""
+
+from __future__ import annotations
+
+import re
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from ..core.provenance import Step
+from ..errors import MapkitError
+from .registry import STEPS, get_step
+
+DEFAULT_RECIPE = """\
+# mapkit default cleaning recipe
+[recipe]
+name = "default"
+
+[[step]]
+name = "mask_bad_pixels"
+
+[[step]]
+name = "despike"
+method = "neighbours"
+threshold = 8.0
+
+[[step]]
+name = "baseline"
+method = "als"
+lam = 1e5
+p = 0.01
+"""
+
+
+@dataclass(frozen=True)
+class Recipe:
+    """A validated sequence of steps: ``[(name, full parameters), …]`` plus its source text."""
+
+    steps: tuple
+    name: str = ""
+    text: str = ""
+    source: str = ""
+    lines: tuple = field(default=(), repr=False)
+
+    @classmethod
+    def from_text(cls, text: str, source: str = "<recipe>") -> "Recipe":
+        try:
+            doc = tomllib.loads(text)
+        except tomllib.TOMLDecodeError as exc:
+            raise MapkitError(f"not valid TOML ({exc})", file=source,
+                              fix="check quotes, brackets and '=' signs") from None
+        unknown = set(doc) - {"recipe", "step"}
+        if unknown:
+            raise MapkitError(f"unknown section {sorted(unknown)[0]!r}", file=source,
+                              field=_line_of(text, rf"^\s*\[+\s*{sorted(unknown)[0]}"),
+                              fix="use [recipe] and [[step]] sections only")
+        raw_steps = doc.get("step", [])
+        if not isinstance(raw_steps, list) or not raw_steps:
+            raise MapkitError("the recipe has no [[step]] sections", file=source,
+                              fix="add at least one [[step]] with a name")
+        headers = [i + 1 for i, ln in enumerate(text.splitlines())
+                   if re.match(r"^\s*\[\[\s*step\s*\]\]", ln)]
+        steps, lines = [], []
+        for k, raw in enumerate(raw_steps):
+            line = headers[k] if k < len(headers) else 0
+            where = f"line {line}" if line else f"step {k + 1}"
+            params = dict(raw)
+            name = params.pop("name", None)
+            if name is None:
+                raise MapkitError("a [[step]] has no name", file=source, field=where,
+                                  fix=f"add name = one of {', '.join(STEPS)}")
+            if name not in STEPS:
+                raise MapkitError(f"unknown step {name!r}", file=source, field=where,
+                                  fix=f"use one of {', '.join(STEPS)}")
+            try:
+                full = get_step(name).validate(params, where)
+            except MapkitError as exc:
+                key = re.search(r"^(\w+)(?: = | does not)|parameter '(\w+)'", exc.problem)
+                key = key and (key.group(1) or key.group(2))
+                at = _param_line(text, line, key) if key else where
+                raise MapkitError(exc.problem, file=source, field=at, fix=exc.fix) from None
+            steps.append((name, full))
+            lines.append(line)
+        meta = doc.get("recipe", {})
+        return cls(tuple(steps), str(meta.get("name", "")), text, source, tuple(lines))
+
+    @classmethod
+    def from_file(cls, path) -> "Recipe":
+        path = Path(path)
+        if not path.is_file():
+            raise MapkitError("recipe file not found", file=path, fix="check the path")
+        return cls.from_text(path.read_text(encoding="utf-8"), str(path))
+
+    @classmethod
+    def default(cls) -> "Recipe":
+        return cls.from_text(DEFAULT_RECIPE, "default recipe")
+
+    def apply(self, m, *, progress=None):
+        """Run every step on map ``m``; returns (map, by-products of each step by name)."""
+        extras = {}
+        m = m.derive(m.intensity, Step("recipe", {"name": self.name, "source": self.source,
+                                                   "text": self.text}))
+        for name, params in self.steps:
+            if progress:
+                progress(name)
+            m, extra = get_step(name).run(m, **params)
+            extras[name] = extra
+        return m, extras
+
+
+def _line_of(text, pattern):
+    for i, ln in enumerate(text.splitlines(), 1):
+        if re.match(pattern, ln):
+            return f"line {i}"
+    return ""
+
+
+def _param_line(text, start, key):
+    """Line of ``key = …`` inside the step whose header is on line ``start`` (1-based)."""
+    lines = text.splitlines()
+    for i in range(start, len(lines)):        # lines[start] is the line after the header
+        if re.match(r"^\s*\[", lines[i]):
+            break
+        if re.match(rf"^\s*{re.escape(key)}\s*=", lines[i]):
+            return f"line {i + 1}"
+    return f"line {start}" if start else ""
