@@ -63,7 +63,7 @@ def _add_analysis_options(p, default_out="mapkit-output"):
     p.add_argument("--classes", type=_positive_int, default=4, help="k-means classes (default 4)")
     p.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
     p.add_argument("--recipe", help="TOML recipe of cleaning steps (default: mask bad pixels, "
-                                    "despike, ALS baseline; see 'mapkit steps')")
+                                    "despike, arPLS baseline; see 'mapkit steps')")
     p.add_argument("--overwrite", action="store_true", help="replace existing outputs")
     p.add_argument("--no-figures", action="store_true", help="skip PNG figures")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
@@ -96,9 +96,16 @@ def _run_analysis(a, map_path, library, standards, bands):
     print(f"spikes    {sp['channels_replaced']} channels replaced in {sp['spectra_touched']} spectra")
     for note in summ["notices"]:
         print(f"notice    {note}")
-    km = summ["results"].get("kmeans", {}).get("areas", {})
-    if km:
-        print("classes   " + ", ".join(f"{k} {v['fraction_pct']:.1f} %" for k, v in km.items()))
+    km = summ["results"].get("kmeans", {})
+    names = {r["spectrum"]: r["match"] for r in km.get("identification", [])}
+    if km.get("areas"):
+        print("classes   " + ", ".join(
+            f"{k}{' (' + names[k] + ')' if k in names else ''} {v['fraction_pct']:.1f} %"
+            for k, v in km["areas"].items()))
+    ident = summ["results"].get("nmf", {}).get("identification", [])
+    if ident:
+        print("components " + ", ".join(f"{r['spectrum']} = {r['match']} (HQI {r['score']:.3f})"
+                                        for r in ident))
     conc = summ["results"].get("concentration")
     if conc:
         cal = conc["calibration"]
@@ -299,6 +306,10 @@ def build_parser() -> argparse.ArgumentParser:
                    help="stage position in um (nearest pixel)")
     _add_read_options(s)
     s.set_defaults(func=cmd_spectrum)
+
+    from .cli_reduce import add_parsers
+
+    add_parsers(sub, _add_read_options, _band, _positive_int)
 
     pp = sub.add_parser("preprocess", help="clean one map or every map in a folder with a recipe",
                         description="Apply a recipe of cleaning steps and write *_clean.h5 maps.")

@@ -7,8 +7,6 @@ and the viewer agree.
 
 from __future__ import annotations
 
-import json
-import re
 import warnings
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
@@ -46,10 +44,6 @@ def _memory_available() -> int:
     return 8 << 30
 
 
-def _safe(name: str) -> str:
-    return re.sub(r"[^A-Za-z0-9_.-]+", "_", name).strip("_") or "map"
-
-
 def calibrate_from_standards(standards_path, unmixer, analyte=None):
     """Fit a straight-line calibration of the analyte's response fraction against the standards."""
     from .quantify import LinearCalibration, response_fraction
@@ -74,18 +68,19 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     """Run the whole path on one map file and write every output into ``outdir``.
 
     ``recipe`` (a :class:`~mapkit.preprocess.recipe.Recipe`, default: mask bad pixels,
-    despike, ALS baseline) cleans the map before every reduction. Returns a dict with the
+    despike, arPLS baseline) cleans the map before every reduction. Returns a dict with the
     paths written and a summary of the results.
     """
     from .preprocess.recipe import Recipe
     from tqdm.auto import tqdm
 
-    from .export import save_image_figure, save_spectra_figure, write_results_file, write_tiff
+    from .export.bundle import safe_name, write_bundle, write_summary
     from .preprocess import normalise_map
     from .preprocess.quality import snr
     from .quantify import concentration_map, response_fraction
     from .read import open_map, read_library
-    from .reduce import KMeansClasses, NMFComponents, ReferenceUnmixing, band_image
+    from .reduce import (KMeansClasses, NMFComponents, ReferenceUnmixing, band_image,
+                         match_library)
 
     s = settings or Settings()
     outdir = Path(outdir)
@@ -141,11 +136,13 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     stage("NMF")
     nmf = NMFComponents(n_components=s.n_components, random_state=s.seed)
     nmf.fit(corrected)
-    results.append(nmf.result(corrected, nmf.fit_images_))
+    nmf_result = nmf.result(corrected, nmf.fit_images_)
+    results.append(nmf_result)
     bar.update()
     stage("k-means")
     km = KMeansClasses(n_classes=s.n_classes, random_state=s.seed).fit(normed)
-    results.append(km.result(normed))
+    km_result = km.result(normed)
+    results.append(km_result)
     bar.update()
     stage("unmixing")
     notices = []
@@ -157,6 +154,12 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
         notices += [str(w.message) for w in caught]
         unmix_result = unmixer.result(corrected)
         results.append(unmix_result)
+        # name the NMF components and the classes from the same library
+        nmf_result.summary["identification"] = match_library(
+            nmf.components_, corrected.raman_shift, refs,
+            names=[f"component {i + 1}" for i in range(s.n_components)])
+        km_result.summary["identification"] = match_library(
+            km.class_mean_, corrected.raman_shift, refs, names=list(km_result.summary["areas"]))
     bar.update()
     stage("concentration")
     if refs is not None and standards is not None:
@@ -199,50 +202,13 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     inputs = {"map": map_path}
     if standards is not None:
         inputs["standards"] = standards
-    h5 = write_results_file(outdir / "results.h5", final, results, overwrite=overwrite,
-                            inputs=inputs)
-    written = [h5]
-    stem = _safe(Path(map_path).stem)
-    for r in results:
-        for fname, fld in r.fields.items():
-            if not fld.is_image or fld.data.ndim > 3 or fname in ("replaced", "mask"):
-                continue
-            base = f"{stem}_{r.name}" + ("" if fname in ("image", r.name) else f"_{fname}")
-            written.append(write_tiff(outdir / f"{base}.tif", fld, overwrite=overwrite,
-                                      parameters=r.parameters))
-            if not figures:
-                continue
-            is_classes = fld.signal == "labels"
-            if fld.data.ndim == 3:
-                for k, label in enumerate(fld.axes[0].values):
-                    written.append(save_image_figure(
-                        outdir / f"{base}_{_safe(str(label))}.png", fld, k,
-                        title=f"{r.name}: {label}", overwrite=overwrite))
-            else:
-                written.append(save_image_figure(outdir / f"{base}.png", fld, title=r.name,
-                                                 classes=is_classes, overwrite=overwrite))
-            if fld.errors is not None and fld.data.ndim == 2:
-                err = Field(f"{fld.signal}_uncertainty", fld.errors, fld.axes, fld.units,
-                            long_name=f"standard uncertainty of {fld.signal}")
-                written.append(write_tiff(outdir / f"{base}_uncertainty.tif", err,
-                                          overwrite=overwrite))
-                written.append(save_image_figure(outdir / f"{base}_uncertainty.png", err,
-                                                 title=f"{r.name}: uncertainty",
-                                                 overwrite=overwrite))
-        if figures:
-            for fname, fld in r.fields.items():
-                if fld.axis_names[-1] == "raman_shift" and fld.data.ndim == 2:
-                    written.append(save_spectra_figure(outdir / f"{stem}_{r.name}_{fname}.png",
-                                                       fld, title=f"{r.name}: {fname}",
-                                                       overwrite=overwrite))
+    written = write_bundle(outdir, final, results, stem=safe_name(Path(map_path).stem),
+                           overwrite=overwrite, figures=figures, inputs=inputs)
     summary = {"map": str(map_path), "shape": list(raw.shape), "bad_pixels": bad_report,
                "spikes": spike_summary, "notices": notices, "recipe": recipe.text,
                "results": {r.name: r.summary for r in results if r.summary},
                "settings": asdict(s), "versions": library_versions()}
-    from .export.atomic import atomic_path
-    with atomic_path(outdir / "summary.json", overwrite=True) as tmp:
-        tmp.write_text(json.dumps(summary, indent=2, default=str))
-    written.append(outdir / "summary.json")
+    written.append(write_summary(outdir, summary))
     bar.update()
     bar.close()
     return {"written": [Path(p) for p in written], "summary": summary, "results": results,

@@ -36,12 +36,13 @@ def sample_map(sample_map_path):
 
 @pytest.fixture(scope="session")
 def cleaned(sample_map):
-    """The sample map after bad-pixel flagging, spike removal and ALS baseline removal."""
+    """The sample map after bad-pixel flagging, spike removal and arPLS baseline removal
+    (the bundled recipe, sample_maps/tablet_recipe.toml)."""
     from mapkit.preprocess import flag_bad_pixels, remove_baseline, remove_spikes
 
     flagged, report = flag_bad_pixels(sample_map)
     despiked, spikes = remove_spikes(flagged)
-    corrected = remove_baseline(despiked)
+    corrected = remove_baseline(despiked, method="arpls", lam=1e6)
     return {"flagged": flagged, "report": report, "despiked": despiked, "spikes": spikes,
             "corrected": corrected}
 

@@ -50,8 +50,6 @@ def file_sha256(path) -> str:
 
 def _write_cube(f, m: RamanMap, compression):
     """Write the cube tile by tile, so a lazy map never has to fit in memory."""
-    import h5py  # noqa: F401
-
     g = f.require_group(layout.MAP)
     g.attrs["NX_class"] = "NXdata"
     g.attrs["signal"] = "intensity"

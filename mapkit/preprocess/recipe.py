@@ -50,10 +50,13 @@ threshold = 8.0
 
 [[step]]
 name = "baseline"
-method = "als"
-lam = 1e5
-p = 0.01
+method = "arpls"
+lam = 1e6
 """
+
+
+MINIMAL_RECIPE = DEFAULT_RECIPE.split("[[step]]\nname = \"baseline\"")[0].replace(
+    "default cleaning recipe", "minimal cleaning recipe").replace('"default"', '"minimal"')
 
 
 @dataclass(frozen=True)
@@ -118,6 +121,11 @@ class Recipe:
     @classmethod
     def default(cls) -> "Recipe":
         return cls.from_text(DEFAULT_RECIPE, "default recipe")
+
+    @classmethod
+    def minimal(cls) -> "Recipe":
+        """Bad pixels and spikes only: for fits that model the background themselves."""
+        return cls.from_text(MINIMAL_RECIPE, "minimal recipe")
 
     def apply(self, m, *, progress=None):
         """Run every step on map ``m``; returns (map, by-products of each step by name)."""

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..core.result import Axis, Field, Result
+from ..core.result import Field, Result
 from ..errors import MapkitError
 from .calibration import LinearCalibration
 

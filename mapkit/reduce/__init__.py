@@ -1,9 +1,15 @@
-"""From cube to images: band images, factorisations, classes and unmixing."""
+"""From cube to images: band images, peak fits, factorisations, classes, unmixing, matching."""
 
-from .bands import band_image, band_integral
-from .factorise import NMFComponents
-from .segment import KMeansClasses
-from .unmix import ReferenceUnmixing, nnls_batch
+from .bands import band_centroid, band_height, band_image, band_integral, band_ratio_image
+from .endmembers import vca
+from .factorise import MCRALS, NMFComponents, PCAScores
+from .match import correlation, hit_quality_index, match_library
+from .peakfit import fit_peaks, peak_fit_map, silicon_stress, stress_result
+from .segment import KMeansClasses, class_domains, class_number_guidance
+from .unmix import ReferenceUnmixing, nnls_batch, unmix_spectra
 
-__all__ = ["band_integral", "band_image", "NMFComponents", "KMeansClasses",
-           "ReferenceUnmixing", "nnls_batch"]
+__all__ = ["band_integral", "band_height", "band_centroid", "band_image", "band_ratio_image",
+           "vca", "PCAScores", "NMFComponents", "MCRALS", "KMeansClasses", "class_domains",
+           "class_number_guidance", "ReferenceUnmixing", "nnls_batch", "unmix_spectra",
+           "fit_peaks", "peak_fit_map", "silicon_stress", "stress_result",
+           "hit_quality_index", "correlation", "match_library"]

@@ -1,4 +1,4 @@
-"""Segmentation of the map into spectral classes."""
+"""Segmentation of the map into spectral classes, guidance for their number, domains."""
 
 from __future__ import annotations
 
@@ -7,24 +7,71 @@ from sklearn.base import BaseEstimator, ClusterMixin
 
 from ..core.ramanmap import RamanMap
 from ..core.result import Axis, Field, Result
+from ..errors import MapkitError
 from ._common import check_components, good_spectra, image_axes, shift_axis, to_images
+
+METHODS = ("kmeans", "minibatch", "ward")
+#: Ward clustering needs O(n²) memory; above this many pixels it is fitted on a random
+#: sample and the other pixels join the class with the nearest centre.
+WARD_MAX_PIXELS = 15000
+
+
+def _scores(m: RamanMap, n_pca: int, smooth: float, random_state: int):
+    """PCA scores of the good pixels, optionally smoothed spatially (Gaussian, σ in pixels)."""
+    from scipy.ndimage import gaussian_filter
+    from sklearn.decomposition import PCA
+
+    X, good = good_spectra(m, what="classification")
+    n_pca = max(1, min(n_pca, X.shape[0], X.shape[1]))
+    pca = PCA(n_components=n_pca, random_state=random_state).fit(X)
+    S = pca.transform(X)
+    if smooth > 0:
+        ny, nx, _ = m.shape
+        weight = (~m.mask).astype(float)
+        wsm = gaussian_filter(weight, smooth, mode="nearest")
+        imgs = to_images(m, S, good, fill=0.0)
+        S = np.stack([(gaussian_filter(img, smooth, mode="nearest") /
+                       np.maximum(wsm, 1e-12)).ravel()[good] for img in imgs], axis=1)
+    return X, good, S
+
+
+def _cluster(S, n, method, random_state, n_init):
+    from sklearn.cluster import AgglomerativeClustering, KMeans, MiniBatchKMeans
+
+    if method == "kmeans":
+        return KMeans(n_clusters=n, n_init=n_init, random_state=random_state).fit_predict(S)
+    if method == "minibatch":
+        return MiniBatchKMeans(n_clusters=n, n_init=n_init, random_state=random_state,
+                               batch_size=2048).fit_predict(S)
+    rng = np.random.default_rng(random_state)
+    sample = (np.sort(rng.choice(S.shape[0], WARD_MAX_PIXELS, replace=False))
+              if S.shape[0] > WARD_MAX_PIXELS else np.arange(S.shape[0]))
+    lab = AgglomerativeClustering(n_clusters=n, linkage="ward").fit_predict(S[sample])
+    if sample.size == S.shape[0]:
+        return lab
+    centres = np.stack([S[sample][lab == k].mean(axis=0) for k in range(n)])
+    return np.argmin(((S[:, None, :] - centres[None]) ** 2).sum(axis=-1), axis=1)
 
 
 class KMeansClasses(ClusterMixin, BaseEstimator):
-    """k-means classes of the map's spectra, clustered on their leading PCA scores.
+    """Spectral classes of the map, clustered on the leading PCA scores of its spectra.
 
     Parameters
     ----------
     n_classes : int
+    method : {"kmeans", "minibatch", "ward"}
+        k-means, mini-batch k-means (large maps) or hierarchical clustering with Ward
+        linkage (fitted on at most 15 000 pixels; the rest join the nearest class centre).
     n_pca : int
-        Number of principal components kept before clustering (noise reduction).
-    random_state : int
-    n_init : int
+        Principal components kept before clustering (noise reduction).
+    smooth : float
+        Spatial Gaussian smoothing of the scores before clustering, σ in pixels (0: none).
+    random_state, n_init
 
     Attributes
     ----------
     labels_ : int array (ny, nx)
-        Class of each pixel, -1 where masked.
+        Class of each pixel, -1 where masked; classes are numbered by size, largest first.
     class_mean_, class_sd_ : arrays (n_classes, n_shift)
         Mean ± sd spectrum of each class.
     area_fraction_ : array (n_classes,)
@@ -38,24 +85,23 @@ class KMeansClasses(ClusterMixin, BaseEstimator):
     [0.5, 0.5]
     """
 
-    def __init__(self, n_classes: int = 4, n_pca: int = 8, random_state: int = 0, n_init: int = 10):
+    def __init__(self, n_classes: int = 4, method: str = "kmeans", n_pca: int = 8,
+                 smooth: float = 0.0, random_state: int = 0, n_init: int = 10):
         self.n_classes = n_classes
+        self.method = method
         self.n_pca = n_pca
+        self.smooth = smooth
         self.random_state = random_state
         self.n_init = n_init
 
     def fit(self, m: RamanMap, y=None):
-        from sklearn.cluster import KMeans
-        from sklearn.decomposition import PCA
-
-        X, good = good_spectra(m, what="k-means")
+        if self.method not in METHODS:
+            raise MapkitError(f"unknown classification method {self.method!r}", field="method",
+                              fix=f"use one of {', '.join(METHODS)}")
+        X, good, S = _scores(m, self.n_pca, self.smooth, self.random_state)
         check_components(self.n_classes, m, X.shape[0], name="n_classes")
-        n_pca = max(1, min(self.n_pca, X.shape[0], X.shape[1]))
-        scores = PCA(n_components=n_pca, random_state=self.random_state).fit_transform(X)
-        km = KMeans(n_clusters=self.n_classes, n_init=self.n_init,
-                    random_state=self.random_state).fit(scores)
-        raw = km.labels_
-        # order classes by size (largest first) so labels are stable and readable
+        raw = _cluster(S, self.n_classes, self.method, self.random_state, self.n_init)
+        # number classes by size (largest first) so labels are stable and readable
         order = np.argsort(-np.bincount(raw, minlength=self.n_classes), kind="stable")
         relabel = np.empty_like(order)
         relabel[order] = np.arange(self.n_classes)
@@ -64,7 +110,7 @@ class KMeansClasses(ClusterMixin, BaseEstimator):
         self.class_mean_ = np.stack([X[lab == k].mean(axis=0) for k in range(self.n_classes)])
         self.class_sd_ = np.stack([X[lab == k].std(axis=0) for k in range(self.n_classes)])
         self.area_fraction_ = np.bincount(lab, minlength=self.n_classes) / lab.size
-        self.inertia_ = float(km.inertia_)
+        self.pixel_size_ = m.pixel_size
         return self
 
     def fit_predict(self, m: RamanMap, y=None):
@@ -78,9 +124,83 @@ class KMeansClasses(ClusterMixin, BaseEstimator):
         spectra = Field("mean_spectrum", self.class_mean_, (cls, shift_axis(m)), "a.u.",
                         errors=self.class_sd_, long_name="class mean spectrum (errors: sd)")
         n_good = int((self.labels_ >= 0).sum())
+        domains = class_domains(self.labels_, (dy, dx))
         areas = {f"class {k + 1}": {"fraction_pct": float(100 * f),
-                                    "area_um2": float(f * n_good * dx * dy)}
+                                    "area_um2": float(f * n_good * dx * dy),
+                                    **domains[k]["summary"]}
                  for k, f in enumerate(self.area_fraction_)}
-        return Result(name, "kmeans", self.get_params(),
-                      {"labels": labels, "class_spectra": spectra},
-                      {"areas": areas, "inertia": self.inertia_})
+        domain_img = np.full(self.labels_.shape, -1, np.int32)
+        offset = 0
+        for k in range(self.n_classes):
+            lab = domains[k]["labels"]
+            domain_img[lab > 0] = lab[lab > 0] - 1 + offset
+            offset += domains[k]["summary"]["domains"]
+        return Result(name, self.method, self.get_params(),
+                      {"labels": labels, "class_spectra": spectra,
+                       "domains": Field("domain", domain_img, image_axes(m), "",
+                                        long_name="connected domain index (-1 masked)")},
+                      {"areas": areas})
+
+
+def class_domains(labels, pixel_size, *, connectivity: int = 1):
+    """Connected domains of each class and their sizes.
+
+    Returns, for each class k, ``{"labels": int image (0 = not in a domain of k),
+    "area_um2": array, "ecd_um": array, "summary": {...}}``. The equivalent circular
+    diameter is ECD = 2·√(A/π). ``connectivity`` 1 joins edge neighbours, 2 also
+    diagonal ones.
+
+    Examples
+    --------
+    >>> lab = np.array([[0, 0, 1], [0, 1, 1], [1, 1, 0]])
+    >>> d = class_domains(lab, (1.0, 1.0))
+    >>> d[0]["summary"]["domains"], d[1]["summary"]["domains"]
+    (2, 1)
+    """
+    from scipy.ndimage import generate_binary_structure, label
+
+    dy, dx = pixel_size
+    structure = generate_binary_structure(2, connectivity)
+    out = []
+    n_classes = int(labels.max()) + 1 if labels.size else 0
+    for k in range(n_classes):
+        lab, n = label(labels == k, structure=structure)
+        counts = np.bincount(lab.ravel(), minlength=n + 1)[1:]
+        area = counts * dx * dy
+        ecd = 2 * np.sqrt(area / np.pi)
+        summary = {"domains": int(n)}
+        if n:
+            summary.update({"ecd_median_um": float(np.median(ecd)),
+                            "ecd_mean_um": float(np.mean(ecd)),
+                            "ecd_p90_um": float(np.percentile(ecd, 90)),
+                            "largest_domain_um2": float(area.max())})
+        out.append({"labels": lab, "area_um2": area, "ecd_um": ecd, "summary": summary})
+    return out
+
+
+def class_number_guidance(m: RamanMap, k_values=range(2, 9), *, n_pca: int = 8,
+                          random_state: int = 0, sample: int = 5000) -> list[dict]:
+    """Scores that help choose the number of classes, for each k in ``k_values``.
+
+    k-means inertia (look for the elbow), mean silhouette (Rousseeuw 1987; higher is
+    better) and the Davies–Bouldin index (Davies & Bouldin 1979; lower is better), both
+    from scikit-learn, computed on at most ``sample`` pixels.
+    """
+    from sklearn.cluster import KMeans
+    from sklearn.metrics import davies_bouldin_score, silhouette_score
+
+    X, good, S = _scores(m, n_pca, 0.0, random_state)
+    rng = np.random.default_rng(random_state)
+    idx = rng.choice(S.shape[0], min(sample, S.shape[0]), replace=False)
+    rows = []
+    for k in k_values:
+        if k >= S.shape[0]:
+            break
+        km = KMeans(n_clusters=k, n_init=10, random_state=random_state).fit(S)
+        lab = km.labels_[idx]
+        if np.unique(lab).size < 2:
+            continue
+        rows.append({"k": int(k), "inertia": float(km.inertia_),
+                     "silhouette": float(silhouette_score(S[idx], lab)),
+                     "davies_bouldin": float(davies_bouldin_score(S[idx], lab))})
+    return rows

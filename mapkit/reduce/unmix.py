@@ -60,6 +60,70 @@ def nnls_batch(A, Y, *, max_sweeps: int = 2000, tol: float = 1e-10):
     return X
 
 
+def _project_simplex(V):
+    """Euclidean projection of each column of V onto the probability simplex
+    (Duchi, Shalev-Shwartz, Singer & Chandra 2008, ICML, algorithm 1)."""
+    k = V.shape[0]
+    U = -np.sort(-V, axis=0)
+    css = np.cumsum(U, axis=0) - 1.0
+    idx = np.arange(1, k + 1)[:, None]
+    cond = U - css / idx > 0
+    rho = k - 1 - np.argmax(cond[::-1], axis=0)
+    theta = css[rho, np.arange(V.shape[1])] / (rho + 1)
+    return np.maximum(V - theta, 0.0)
+
+
+def simplex_ls_batch(A, Y, *, max_iter: int = 5000, tol: float = 1e-12):
+    """min ‖A x − y‖ with x ≥ 0 and Σx = 1, for every column of ``Y`` (FISTA on the Gram form).
+
+    Accelerated projected gradient (Beck & Teboulle 2009) with the simplex projection of
+    Duchi et al. 2008; the problem is convex, so it converges to the same optimum as any
+    constrained solver (tests compare with scipy's SLSQP).
+    """
+    A = np.asarray(A, float)
+    Y = np.asarray(Y, float)
+    G = A.T @ A
+    H = A.T @ Y
+    step = 1.0 / max(np.linalg.eigvalsh(G).max(), 1e-300)
+    k, m = G.shape[0], Y.shape[1]
+    X = np.full((k, m), 1.0 / k)
+    Z, t = X.copy(), 1.0
+    for _ in range(max_iter):
+        X_new = _project_simplex(Z - step * (G @ Z - H))
+        t_new = 0.5 * (1 + np.sqrt(1 + 4 * t * t))
+        Z = X_new + ((t - 1) / t_new) * (X_new - X)
+        done = np.max(np.abs(X_new - X)) <= tol
+        X, t = X_new, t_new
+        if done:
+            break
+    return X
+
+
+def unmix_spectra(R, X, shift, baseline_order: int | None = None, *, sum_to_one: bool = False):
+    """Non-negative abundances of the rows of ``R`` (k, n) in each spectrum of ``X`` (m, n).
+
+    Polynomial baseline terms of ``baseline_order`` (None: none) are fitted jointly and
+    without sign constraint, by projecting data and references onto the orthogonal
+    complement of the polynomials. ``sum_to_one`` adds the fully constrained
+    least-squares condition Σa = 1 (FCLS, Heinz & Chang 2001, IEEE TGRS 39:529), solved
+    exactly on the simplex. Returns (abundances (k, m), residual RMS (m,)).
+    """
+    R = np.asarray(R, float)
+    X = np.asarray(X, float)
+    if baseline_order is None:
+        Rp, Xp = R.T, X.T
+    else:
+        Q = polynomial_basis(shift, baseline_order)
+        Rp = R.T - Q @ (Q.T @ R.T)
+        Xp = X.T - Q @ (Q.T @ X.T)
+    if sum_to_one:
+        A = simplex_ls_batch(Rp, Xp)
+    else:
+        A = nnls_batch(Rp, Xp)
+    rms = np.sqrt(np.mean((Xp - Rp @ A) ** 2, axis=0))
+    return A, rms
+
+
 def polynomial_basis(shift, order: int) -> np.ndarray:
     """Orthonormal basis (n, order+1) of polynomials on the shift axis (Legendre, QR'd)."""
     s = np.asarray(shift, float)
@@ -78,11 +142,16 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
     instead of being subtracted first. The polynomial part is eliminated
     exactly by projecting data and references onto its orthogonal complement.
 
+    With ``method="fcls"`` the abundances are also forced to sum to one (fully
+    constrained least squares, Heinz & Chang 2001); that only makes sense when spectra
+    and references share one intensity scale (e.g. both area-normalised).
+
     Parameters
     ----------
     references : list of mapkit.read.Spectrum
     baseline_order : int or None
         Polynomial order of the baseline terms; None for none.
+    method : {"nnls", "fcls"}
 
     Attributes
     ----------
@@ -93,11 +162,15 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
         True when the references were interpolated onto the map's axis.
     """
 
-    def __init__(self, references=(), baseline_order: int | None = 5):
+    def __init__(self, references=(), baseline_order: int | None = 5, method: str = "nnls"):
         self.references = references
         self.baseline_order = baseline_order
+        self.method = method
 
     def fit(self, m: RamanMap, y=None):
+        if self.method not in ("nnls", "fcls"):
+            raise MapkitError(f"unknown unmixing method {self.method!r}", field="method",
+                              fix="use nnls or fcls")
         refs = list(self.references)
         if not refs:
             raise MapkitError("no reference spectra given", field="references",
@@ -119,15 +192,7 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
         self.names_ = names
         self.references_ = R
         self.raman_shift_ = m.raman_shift.copy()
-        if self.baseline_order is None:
-            self.basis_ = np.zeros((m.shape[2], 0))
-        else:
-            self.basis_ = polynomial_basis(m.raman_shift, self.baseline_order)
         return self
-
-    def _project(self, Z):
-        Q = self.basis_
-        return Z - Q @ (Q.T @ Z)
 
     def transform(self, m: RamanMap):
         """Abundance images (k, ny, nx) and the residual RMS image (ny, nx); masked pixels NaN."""
@@ -135,19 +200,16 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
             raise MapkitError("the map's shift axis differs from the one the model was fitted on",
                               file=m.source, field="raman_shift", fix="fit on this map")
         X, good = good_spectra(m, what="unmixing")
-        Rp = self._project(self.references_.T)
-        Yp = self._project(X.T)
-        A = nnls_batch(Rp, Yp)
-        resid = Yp - Rp @ A
-        rms = np.sqrt(np.mean(resid ** 2, axis=0))
+        A, rms = unmix_spectra(self.references_, X, m.raman_shift, self.baseline_order,
+                               sum_to_one=self.method == "fcls")
         return to_images(m, A.T, good), to_images(m, rms[:, None], good)[0]
 
     def result(self, m: RamanMap, name: str = "unmixing") -> Result:
         abundance, rms = self.transform(m)
         comp = Axis("component", np.array(self.names_))
-        return Result(name, "nnls_unmixing",
+        return Result(name, f"{self.method}_unmixing",
                       {"references": self.names_, "baseline_order": self.baseline_order,
-                       "resampled": self.resampled_},
+                       "method": self.method, "resampled": self.resampled_},
                       {"abundance": Field("abundance", abundance, (comp, *image_axes(m)),
                                           "reference units",
                                           long_name="abundance of each reference"),

@@ -1,0 +1,280 @@
+"""Subcommands that run one reduction method on a map and write its results bundle.
+
+``mapkit components | classes | unmix | peaks | bands``: each opens the map, cleans it
+with a recipe, runs the method, prints a short report and writes ``results.h5``, TIFFs
+and figures (docs/file-layout.md names every dataset).
+"""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+import numpy as np
+
+from .errors import MapkitError
+
+
+def _range(text: str):
+    m = re.fullmatch(r"\s*([\d.]+)\s*-\s*([\d.]+)\s*", text)
+    if not m:
+        import argparse
+
+        raise argparse.ArgumentTypeError(f"{text!r} is not LO-HI in 1/cm (e.g. 500-540)")
+    return float(m.group(1)), float(m.group(2))
+
+
+def _common(p, default_recipe="default"):
+    p.add_argument("map", help="map file (.h5 mapkit layout, any HDF5 with --dataset, or text table)")
+    p.add_argument("--out", default="mapkit-output", help="folder for the outputs")
+    p.add_argument("--recipe", help=f"TOML recipe of cleaning steps (default: the {default_recipe} "
+                                    "recipe; 'none' for no cleaning)")
+    p.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    p.add_argument("--overwrite", action="store_true", help="replace existing outputs")
+    p.add_argument("--no-figures", action="store_true", help="skip PNG figures")
+
+
+def _prepare(a, minimal=False):
+    from .preprocess.recipe import Recipe
+    from .read import open_map
+
+    if a.recipe == "none":
+        recipe = None
+    elif a.recipe:
+        recipe = Recipe.from_file(a.recipe)
+    else:
+        recipe = Recipe.minimal() if minimal else Recipe.default()
+    library = None
+    if getattr(a, "library", None):
+        from .read import read_library
+
+        library = read_library(a.library)
+    from .cli import _open_kwargs
+
+    m = open_map(a.map, **_open_kwargs(a)).load()
+    if recipe is not None:
+        m, _ = recipe.apply(m)
+    return m, library
+
+
+def _write(a, m, results, lines):
+    from .core.provenance import Step
+    from .export.bundle import safe_name, write_bundle, write_summary
+
+    out = Path(a.out)
+    if out.exists() and not out.is_dir():
+        raise MapkitError("the output path is a file, not a folder", file=out,
+                          fix="give a folder for the outputs")
+    out.mkdir(parents=True, exist_ok=True)
+    final = m.derive(m.intensity, Step(a.command, {k: v for k, v in vars(a).items()
+                                                   if k not in ("func",)}))
+    written = write_bundle(out, final, results, stem=safe_name(Path(a.map).stem),
+                           overwrite=a.overwrite, figures=not a.no_figures,
+                           inputs={"map": a.map})
+    written.append(write_summary(out, {"map": str(a.map), "command": a.command,
+                                       "results": {r.name: r.summary for r in results}}))
+    for line in lines:
+        print(line)
+    print(f"wrote     {len(written)} files to {out}/ (results in {written[0]})")
+
+
+def cmd_components(a):
+    from .reduce import MCRALS, NMFComponents, PCAScores, match_library
+
+    m, library = _prepare(a)
+    if a.method == "pca":
+        est = PCAScores(n_components=a.n, random_state=a.seed).fit(m)
+        res = est.result(m)
+        cum = res.summary["cumulative_pct"]
+        lines = ["PCA explained variance (cumulative %): " +
+                 ", ".join(f"PC{i + 1} {v:.1f}" for i, v in enumerate(cum))]
+        return _write(a, m, [res], lines)
+    if a.method == "nmf":
+        est = NMFComponents(n_components=a.n, init=a.init, random_state=a.seed).fit(m)
+        res = est.result(m, est.fit_images_)
+        lines = [f"NMF: {a.n} components, {est.n_iter_} iterations"]
+    else:
+        est = MCRALS(n_components=a.n, init=a.init if a.init != "nndsvda" else "vca",
+                     closure=a.closure, random_state=a.seed).fit(m)
+        res = est.result(m, est.fit_images_)
+        lines = [f"MCR-ALS: {a.n} components, lack of fit {est.lack_of_fit_:.2f} %, explained "
+                 f"variance {est.explained_variance_:.2f} %, {est.n_iter_} iterations"]
+    if library:
+        names = [f"component {i + 1}" for i in range(a.n)]
+        matches = match_library(est.components_, m.raman_shift, library, names=names,
+                                min_score=a.min_score)
+        res.summary["identification"] = matches
+        lines += [f"  {r['spectrum']}: {r['match']} (HQI {r['score']:.3f}"
+                  + (f", best candidate {r['best_candidate']}" if r["match"] == "unmatched" else "")
+                  + ")" for r in matches]
+    return _write(a, m, [res], lines)
+
+
+def cmd_classes(a):
+    from .preprocess import normalise_map
+    from .reduce import KMeansClasses, class_number_guidance, match_library
+
+    m, library = _prepare(a)
+    normed = normalise_map(m, method="vector")
+    lines = []
+    if a.guide:
+        lo, hi = a.guide
+        rows = class_number_guidance(normed, range(lo, hi + 1), random_state=a.seed)
+        lines.append("   k   inertia  silhouette  Davies-Bouldin")
+        lines += [f"{r['k']:4d} {r['inertia']:9.3g} {r['silhouette']:11.3f} "
+                  f"{r['davies_bouldin']:15.3f}" for r in rows]
+        best = max(rows, key=lambda r: r["silhouette"])["k"] if rows else None
+        lines.append(f"highest silhouette at k = {best}")
+    km = KMeansClasses(n_classes=a.n, method=a.method, smooth=a.smooth,
+                       random_state=a.seed).fit(normed)
+    res = km.result(normed, name="classes")
+    for k, (name, v) in enumerate(res.summary["areas"].items()):
+        lines.append(f"{name}: {v['fraction_pct']:.1f} % ({v['area_um2']:.0f} um2), "
+                     f"{v['domains']} domains, median ECD {v.get('ecd_median_um', 0):.1f} um")
+    if library:
+        matches = match_library(km.class_mean_, normed.raman_shift, library,
+                                names=list(res.summary["areas"]), min_score=a.min_score)
+        res.summary["identification"] = matches
+        lines += [f"  {r['spectrum']}: {r['match']} (HQI {r['score']:.3f})" for r in matches]
+    return _write(a, m, [res], lines)
+
+
+def cmd_unmix(a):
+    import warnings
+
+    from .reduce import ReferenceUnmixing
+
+    m, library = _prepare(a)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        un = ReferenceUnmixing(library, baseline_order=None if a.baseline_order < 0
+                               else a.baseline_order, method=a.method).fit(m)
+    res = un.result(m)
+    ab = res.fields["abundance"].data
+    lines = [f"notice    {w.message}" for w in caught]
+    lines += [f"{n}: mean abundance {np.nanmean(ab[i]):.3g}" for i, n in enumerate(un.names_)]
+    lines.append(f"residual RMS median {np.nanmedian(res.fields['residual'].data):.3g} counts")
+    return _write(a, m, [res], lines)
+
+
+def cmd_peaks(a):
+    from .reduce import peak_fit_map, stress_result
+
+    m, _ = _prepare(a, minimal=True)
+    lo, hi = a.range
+    res = peak_fit_map(m, lo, hi, shape=a.shape, n_peaks=a.peaks, centres=a.centres,
+                       weights=a.weights)
+    results = [res]
+    c = res.fields["centre" if a.peaks == 1 else "centre_1"]
+    lines = [f"{a.shape} fit in {lo:g}-{hi:g} 1/cm: {res.summary['pixels']} pixels, "
+             f"{res.summary['not_converged']} not converged",
+             f"centre median {np.nanmedian(c.data):.3f} 1/cm, median standard error "
+             f"{np.nanmedian(c.errors):.3f} 1/cm"]
+    if a.stress:
+        if a.peaks != 1:
+            raise MapkitError("a stress map needs a single-peak fit", field="--stress",
+                              fix="fit the silicon band alone with --peaks 1")
+        st = stress_result(res, reference=a.reference, mode=a.stress)
+        results.append(st)
+        lines.append(f"{a.stress} stress median {np.nanmedian(st.fields['stress'].data):.3f} GPa "
+                     f"(reference {a.reference:g} 1/cm)")
+    return _write(a, m, results, lines)
+
+
+def cmd_bands(a):
+    from .reduce import band_image, band_ratio_image
+
+    m, _ = _prepare(a)
+    results, lines = [], []
+    for name, lo, hi in a.band or []:
+        r = band_image(m, lo, hi, name=name, measure=a.measure)
+        results.append(r)
+        lines.append(f"{name}: {a.measure} median {np.nanmedian(r.fields['image'].data):.4g} "
+                     f"{r.fields['image'].units}")
+    for i, text in enumerate(a.ratio or [], 1):
+        num, _, den = text.partition("/")
+        if not den:
+            raise MapkitError(f"ratio {text!r} is not LO-HI/LO-HI", field="--ratio",
+                              fix="for example --ratio 845-872/1080-1092")
+        r = band_ratio_image(m, _range(num), _range(den), name=f"ratio_{i}",
+                             measure=a.measure)
+        results.append(r)
+        lines.append(f"{r.name} {text}: median {np.nanmedian(r.fields['image'].data):.4g}, "
+                     f"{r.summary['masked_low_denominator']} pixels masked (denominator at noise)")
+    if not results:
+        raise MapkitError("no band or ratio given", field="--band",
+                          fix="for example --band api:845-872 or --ratio 845-872/1080-1092")
+    return _write(a, m, results, lines)
+
+
+def add_parsers(sub, add_read_options, band_type, positive_int):
+    c = sub.add_parser("components", help="component spectra and images (NMF, MCR-ALS, PCA)",
+                       description="Factorise the cleaned map into component spectra and images; "
+                                   "with --library, name each component.")
+    _common(c)
+    c.add_argument("--method", choices=("nmf", "mcr", "pca"), default="nmf")
+    c.add_argument("--n", type=positive_int, default=4, help="number of components (default 4)")
+    c.add_argument("--init", choices=("nndsvda", "vca", "nmf"), default="nndsvda",
+                   help="starting point (NMF: nndsvda or vca; MCR: vca or nmf)")
+    c.add_argument("--closure", action="store_true", help="MCR: concentrations sum to one")
+    c.add_argument("--library", help="folder of reference spectra to identify components")
+    c.add_argument("--min-score", type=float, default=0.9,
+                   help="lowest hit-quality index that counts as a match (default 0.9)")
+    add_read_options(c)
+    c.set_defaults(func=cmd_components)
+
+    k = sub.add_parser("classes", help="spectral classes (k-means, Ward), areas and domains",
+                       description="Segment the cleaned, normalised map into classes; report "
+                                   "area fractions and connected domains.")
+    _common(k)
+    k.add_argument("--method", choices=("kmeans", "minibatch", "ward"), default="kmeans")
+    k.add_argument("--n", type=positive_int, default=4, help="number of classes (default 4)")
+    k.add_argument("--smooth", type=float, default=0.0,
+                   help="spatial smoothing of the scores, sigma in pixels (default 0)")
+    k.add_argument("--guide", type=_range_int, metavar="KMIN-KMAX",
+                   help="print silhouette, Davies-Bouldin and inertia for each k in the range")
+    k.add_argument("--library", help="folder of reference spectra to identify the classes")
+    k.add_argument("--min-score", type=float, default=0.9)
+    add_read_options(k)
+    k.set_defaults(func=cmd_classes)
+
+    u = sub.add_parser("unmix", help="abundance maps against reference spectra (NNLS, FCLS)")
+    _common(u)
+    u.add_argument("--library", required=True, help="folder of reference spectra")
+    u.add_argument("--method", choices=("nnls", "fcls"), default="nnls")
+    u.add_argument("--baseline-order", type=int, default=5,
+                   help="polynomial baseline terms fitted with the references (-1: none)")
+    add_read_options(u)
+    u.set_defaults(func=cmd_unmix)
+
+    pk = sub.add_parser("peaks", help="peak-fit maps: centre, width, height, area, errors",
+                        description="Fit peaks in a window at every pixel (raw counts: only bad "
+                                    "pixels and spikes are cleaned by default).")
+    _common(pk, default_recipe="minimal (bad pixels, spikes)")
+    pk.add_argument("--range", type=_range, required=True, metavar="LO-HI",
+                    help="fit window in 1/cm, e.g. 500-540")
+    pk.add_argument("--shape", choices=("lorentzian", "gaussian", "pseudo_voigt"),
+                    default="lorentzian")
+    pk.add_argument("--peaks", type=positive_int, default=1)
+    pk.add_argument("--centres", type=float, nargs="+", help="starting centres, one per peak")
+    pk.add_argument("--weights", choices=("auto", "poisson", "uniform"), default="auto")
+    pk.add_argument("--stress", choices=("uniaxial", "biaxial"),
+                    help="also write a silicon stress map from the band centre")
+    pk.add_argument("--reference", type=float, default=520.7,
+                    help="unstrained silicon position, 1/cm (default 520.7)")
+    add_read_options(pk)
+    pk.set_defaults(func=cmd_peaks)
+
+    b = sub.add_parser("bands", help="band images (area, height, centroid) and ratios")
+    _common(b)
+    b.add_argument("--band", action="append", type=band_type, metavar="NAME:LO-HI")
+    b.add_argument("--ratio", action="append", metavar="LO-HI/LO-HI",
+                   help="band ratio image, masked where the denominator is at noise level")
+    b.add_argument("--measure", choices=("area", "height", "centroid"), default="area")
+    add_read_options(b)
+    b.set_defaults(func=cmd_bands)
+
+
+def _range_int(text: str):
+    lo, hi = _range(text)
+    return int(lo), int(hi)

@@ -1,0 +1,79 @@
+"""Write a set of results as one bundle: the NeXus results file, a TIFF per image, figures."""
+
+from __future__ import annotations
+
+import json
+import re
+from pathlib import Path
+
+from ..core.provenance import library_versions
+from ..core.result import Field
+from .atomic import atomic_path
+from .figures import save_image_figure, save_spectra_figure
+from .nexus import write_results_file
+from .tiff import write_tiff
+
+#: fields written to the results file only (3-D masks, per-pixel index images)
+_NO_IMAGE_FILES = ("replaced", "mask", "domains")
+
+
+def safe_name(name: str) -> str:
+    """A file-name-safe version of a label."""
+    return re.sub(r"[^A-Za-z0-9_.-]+", "_", str(name)).strip("_") or "map"
+
+
+def write_bundle(outdir, m, results, *, stem: str, overwrite: bool = False, figures: bool = True,
+                 inputs: dict | None = None, results_name: str = "results.h5") -> list[Path]:
+    """Write ``results`` of map ``m`` into ``outdir``; returns every path written.
+
+    - ``results.h5``: the map and every result (docs/file-layout.md);
+    - ``<stem>_<result>[_<field>].tif`` for every image field (stacks as multi-page TIFF),
+      plus ``*_uncertainty.tif`` where a field carries errors;
+    - with ``figures``, a PNG per image (per component for stacks) and per spectra field.
+    """
+    outdir = Path(outdir)
+    written = [write_results_file(outdir / results_name, m, results, overwrite=overwrite,
+                                  inputs=inputs)]
+    for r in results:
+        for fname, fld in r.fields.items():
+            if not fld.is_image or fld.data.ndim > 3 or fname in _NO_IMAGE_FILES:
+                continue
+            base = f"{stem}_{r.name}" + ("" if fname in ("image", r.name) else f"_{fname}")
+            written.append(write_tiff(outdir / f"{base}.tif", fld, overwrite=overwrite,
+                                      parameters=r.parameters))
+            if fld.errors is not None and fld.data.ndim == 2:
+                err = Field(f"{fld.signal}_uncertainty", fld.errors, fld.axes, fld.units,
+                            long_name=f"standard uncertainty of {fld.long_name or fld.signal}")
+                written.append(write_tiff(outdir / f"{base}_uncertainty.tif", err,
+                                          overwrite=overwrite))
+                if figures:
+                    written.append(save_image_figure(outdir / f"{base}_uncertainty.png", err,
+                                                     title=f"{r.name}: uncertainty",
+                                                     overwrite=overwrite))
+            if not figures:
+                continue
+            if fld.data.ndim == 3:
+                for k, label in enumerate(fld.axes[0].values):
+                    written.append(save_image_figure(
+                        outdir / f"{base}_{safe_name(label)}.png", fld, k,
+                        title=f"{r.name}: {label}", overwrite=overwrite))
+            else:
+                written.append(save_image_figure(outdir / f"{base}.png", fld, title=r.name,
+                                                 classes=fld.signal == "labels",
+                                                 overwrite=overwrite))
+        if figures:
+            for fname, fld in r.fields.items():
+                if fld.axis_names[-1] == "raman_shift" and fld.data.ndim == 2:
+                    written.append(save_spectra_figure(outdir / f"{stem}_{r.name}_{fname}.png",
+                                                       fld, title=f"{r.name}: {fname}",
+                                                       overwrite=overwrite))
+    return written
+
+
+def write_summary(outdir, summary: dict, name: str = "summary.json") -> Path:
+    """The run's numbers, settings and library versions as JSON (always replaced)."""
+    path = Path(outdir) / name
+    with atomic_path(path, overwrite=True) as tmp:
+        tmp.write_text(json.dumps({**summary, "versions": library_versions()}, indent=2,
+                                  default=str))
+    return path

@@ -1,0 +1,370 @@
+"""Peak-fit maps: Lorentzian, Gaussian or pseudo-Voigt bands fitted at every pixel at once.
+
+The fit is a Levenberg–Marquardt iteration vectorised across pixels: every pixel has its
+own parameters, damping and convergence, but each iteration is a handful of array
+operations over the whole block instead of one optimiser call per pixel. With
+``weights="poisson"`` the residuals are weighted by 1/μ (the model's expected counts,
+iteratively re-weighted), which is the maximum-likelihood fit for shot noise and reaches
+the Cramér–Rao bound (tests/test_peakfit.py).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ..core.ramanmap import RamanMap
+from ..core.result import Field, Result
+from ..errors import MapkitError
+from ..preprocess.axis import crop_indices
+from ._common import image_axes
+
+SHAPES = ("lorentzian", "gaussian", "pseudo_voigt")
+_LN2 = np.log(2.0)
+#: parameters of one peak, in order, followed by the two background terms
+PEAK_PARAMS = {"lorentzian": ("height", "centre", "fwhm"), "gaussian": ("height", "centre", "fwhm"),
+               "pseudo_voigt": ("height", "centre", "fwhm", "eta")}
+
+
+def _profiles(s, h, c, w):
+    """Lorentzian and Gaussian of height h, centre c, FWHM w; s (N,), params (P,)."""
+    u = 2.0 * (s[None, :] - c[:, None]) / w[:, None]
+    lor = 1.0 / (1.0 + u * u)
+    gau = np.exp(-_LN2 * u * u)
+    return u, lor, gau
+
+
+def model_and_jacobian(theta, s, shape: str, n_peaks: int, centre_of_window: float):
+    """Model μ (P, N) and Jacobian ∂μ/∂θ (P, N, K) for parameters θ (P, K)."""
+    per = len(PEAK_PARAMS[shape])
+    P, N = theta.shape[0], s.size
+    mu = np.zeros((P, N))
+    J = np.zeros((P, N, theta.shape[1]))
+    for k in range(n_peaks):
+        o = k * per
+        h, c, w = theta[:, o], theta[:, o + 1], theta[:, o + 2]
+        u, lor, gau = _profiles(s, h, c, w)
+        hh, ww = h[:, None], w[:, None]
+        if shape == "lorentzian":
+            f, dfdu = lor, -2.0 * u * lor * lor
+        elif shape == "gaussian":
+            f, dfdu = gau, -2.0 * _LN2 * u * gau
+        else:
+            eta = theta[:, o + 3][:, None]
+            f = eta * lor + (1 - eta) * gau
+            dfdu = eta * (-2.0 * u * lor * lor) + (1 - eta) * (-2.0 * _LN2 * u * gau)
+            J[:, :, o + 3] = hh * (lor - gau)
+        mu += hh * f
+        J[:, :, o] = f
+        J[:, :, o + 1] = hh * dfdu * (-2.0 / ww)
+        J[:, :, o + 2] = hh * dfdu * (-u / ww)
+    x = s - centre_of_window
+    mu += theta[:, -2][:, None] + theta[:, -1][:, None] * x[None, :]
+    J[:, :, -2] = 1.0
+    J[:, :, -1] = x[None, :]
+    return mu, J
+
+
+def peak_area(shape, h, w, eta=None):
+    """Integrated area of a peak of height h and FWHM w."""
+    lor = np.pi / 2 * h * w
+    gau = h * w * np.sqrt(np.pi / (4 * _LN2))
+    if shape == "lorentzian":
+        return lor
+    if shape == "gaussian":
+        return gau
+    return eta * lor + (1 - eta) * gau
+
+
+def _initial(s, y, shape, n_peaks, centres, mid):
+    P = y.shape[0]
+    per = len(PEAK_PARAMS[shape])
+    theta = np.zeros((P, per * n_peaks + 2))
+    slope = (y[:, -1] - y[:, 0]) / (s[-1] - s[0])
+    offset = 0.5 * (y[:, 0] + y[:, -1]) + slope * (mid - 0.5 * (s[0] + s[-1]))
+    resid = y - (offset[:, None] + slope[:, None] * (s - mid)[None, :])
+    step = float(np.median(np.abs(np.diff(s))))
+    if centres is None:
+        centres = [None] * n_peaks
+    for k in range(n_peaks):
+        o = k * per
+        if centres[k] is None:
+            i = np.argmax(resid, axis=1)
+            c0 = s[i]
+        else:
+            c0 = np.full(P, float(centres[k]))
+            i = np.abs(s[None, :] - c0[:, None]).argmin(axis=1)
+        h0 = np.maximum(resid[np.arange(P), i], 1e-6)
+        above = resid > 0.5 * h0[:, None]
+        w0 = np.maximum(above.sum(axis=1) * step, 2 * step) / max(n_peaks, 1)
+        theta[:, o], theta[:, o + 1], theta[:, o + 2] = h0, c0, w0
+        if shape == "pseudo_voigt":
+            theta[:, o + 3] = 0.5
+        if centres[k] is None and n_peaks > 1:   # remove this peak before looking for the next
+            u = 2 * (s[None, :] - c0[:, None]) / w0[:, None]
+            resid = resid - h0[:, None] / (1 + u * u)
+    theta[:, -2], theta[:, -1] = offset, slope
+    return theta
+
+
+def fit_peaks(block, shift, lo: float, hi: float, *, shape: str = "lorentzian", n_peaks: int = 1,
+              centres=None, weights: str = "auto", max_iter: int = 200, tol: float = 1e-7,
+              engine: str = "auto"):
+    """Fit ``n_peaks`` peaks plus a straight background in ``lo``-``hi`` cm⁻¹ to every spectrum.
+
+    Parameters
+    ----------
+    block : array (n_spectra, n_shift)
+    shift : array (n_shift,)
+    shape : {"lorentzian", "gaussian", "pseudo_voigt"}
+    centres : list of float, optional
+        Starting centres (cm⁻¹), one per peak; by default the tallest residual maxima.
+    weights : {"auto", "poisson", "uniform"}
+        ``"poisson"`` fits by maximum likelihood for counts (Fisher scoring, weights 1/μ);
+        ``"uniform"`` by least squares. ``"auto"`` picks Poisson when every value in the
+        window is non-negative (raw counts) and least squares otherwise (e.g. after
+        baseline subtraction).
+
+    Returns
+    -------
+    dict of arrays, one value per spectrum: ``theta`` (n, K) parameters, ``stderr`` (n, K),
+    ``chi2_reduced``, ``r2``, ``converged`` (bool), ``n_iter``, plus ``names`` (K,).
+
+    Examples
+    --------
+    >>> s = np.linspace(500, 540, 81)
+    >>> y = 100 + 1000 / (1 + ((s - 520.3) / 2.0) ** 2)
+    >>> fit = fit_peaks(y[None], s, 505, 535, weights="uniform")
+    >>> round(float(fit["theta"][0, 1]), 3), bool(fit["converged"][0])
+    (520.3, True)
+    """
+    if shape not in SHAPES:
+        raise MapkitError(f"unknown peak shape {shape!r}", field="shape",
+                          fix=f"use one of {', '.join(SHAPES)}")
+    if n_peaks < 1 or (centres is not None and len(centres) != n_peaks):
+        raise MapkitError("give one starting centre per peak", field="centres",
+                          fix=f"list {n_peaks} centres or none")
+    if weights not in ("poisson", "uniform", "auto"):
+        raise MapkitError(f"unknown weighting {weights!r}", field="weights",
+                          fix="use poisson, uniform or auto")
+    idx = crop_indices(shift, lo, hi)
+    s = np.asarray(shift, float)[idx]
+    y = np.atleast_2d(np.asarray(block, float))[:, idx]
+    if s[0] > s[-1]:
+        s, y = s[::-1], y[:, ::-1]
+    if weights == "auto":  # shot-noise weights only make sense on raw, non-negative counts
+        weights = "poisson" if np.nanmin(y) >= 0 else "uniform"
+    per = len(PEAK_PARAMS[shape])
+    K = per * n_peaks + 2
+    if s.size <= K:
+        raise MapkitError(f"{s.size} channels in {lo:g}-{hi:g} 1/cm cannot fit {K} parameters",
+                          field="range", fix="widen the window or fit fewer peaks")
+    mid = 0.5 * (s[0] + s[-1])
+    step = float(np.median(np.diff(s)))
+    theta = _initial(s, y, shape, n_peaks, centres, mid)
+    P = y.shape[0]
+    from ._peakfit_kernel import HAVE_NUMBA, SHAPE_CODES
+
+    if engine == "numba" or (engine == "auto" and HAVE_NUMBA):
+        from ._peakfit_kernel import lm_fit
+
+        theta, cost, n_iter, conv, A, ssr = lm_fit(
+            np.ascontiguousarray(y), np.ascontiguousarray(s), theta, SHAPE_CODES[shape],
+            n_peaks, mid, weights == "poisson", max_iter, tol, step)
+        return _finish(theta, cost, n_iter, ~conv, A, y, ssr, s, shape, n_peaks, per, K)
+
+    lam = np.full(P, 1e-3)
+    active = np.ones(P, bool)
+    n_iter = np.zeros(P, int)
+
+    poisson = weights == "poisson"
+
+    def weights_for(mu):
+        return 1.0 / np.maximum(mu, 1.0) if poisson else np.ones_like(mu)
+
+    def objective(yy, mu):
+        """Poisson deviance (maximum likelihood) or the sum of squares, per spectrum."""
+        if not poisson:
+            return np.sum((yy - mu) ** 2, axis=1)
+        m_ = np.maximum(mu, 1e-9)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            term = np.where(yy > 0, yy * np.log(yy / m_), 0.0)
+        return 2 * np.sum(m_ - yy + term, axis=1)
+
+    def clamp(t):
+        for k in range(n_peaks):
+            o = k * per
+            t[:, o + 2] = np.clip(t[:, o + 2], 0.25 * step, 4 * (s[-1] - s[0]))
+            t[:, o + 1] = np.clip(t[:, o + 1], s[0] - 0.5 * (s[-1] - s[0]), s[-1] + 0.5 * (s[-1] - s[0]))
+            if shape == "pseudo_voigt":
+                t[:, o + 3] = np.clip(t[:, o + 3], 0.0, 1.0)
+        return t
+
+    mu, J = model_and_jacobian(theta, s, shape, n_peaks, mid)
+    W = weights_for(mu)
+    cost = objective(y, mu)
+    for _ in range(max_iter):
+        a = np.flatnonzero(active)
+        if a.size == 0:
+            break
+        Ja, Wa, ra = J[a], W[a], (y[a] - mu[a])
+        JtW = (Ja * Wa[:, :, None]).transpose(0, 2, 1)
+        A = JtW @ Ja
+        g = (JtW @ ra[:, :, None])[..., 0]
+        diag = np.einsum("pkk->pk", A)
+        A_damped = A + (lam[a][:, None] * np.maximum(diag, 1e-12))[:, :, None] * np.eye(K)
+        if shape == "pseudo_voigt":  # η held at a bound it is pushing against stays there
+            for k in range(n_peaks):
+                e = k * per + 3
+                held = (((theta[a, e] >= 1) & (g[:, e] > 0)) | ((theta[a, e] <= 0) & (g[:, e] < 0)))
+                A_damped[held, e, :] = 0.0
+                A_damped[held, :, e] = 0.0
+                A_damped[held, e, e] = 1.0
+                g[held, e] = 0.0
+        try:
+            delta = np.linalg.solve(A_damped, g[..., None])[..., 0]
+        except np.linalg.LinAlgError:
+            delta = np.stack([np.linalg.lstsq(A_damped[i], g[i], rcond=None)[0]
+                              for i in range(a.size)])
+        trial = clamp(theta[a] + delta)
+        mu_t, J_t = model_and_jacobian(trial, s, shape, n_peaks, mid)
+        W_t = weights_for(mu_t)
+        cost_t = objective(y[a], mu_t)
+        better = np.isfinite(cost_t) & (cost_t <= cost[a])
+        acc = a[better]
+        rel = np.abs(cost[acc] - cost_t[better]) / np.maximum(cost[acc], 1e-300)
+        theta[acc], mu[acc], J[acc], W[acc], cost[acc] = (trial[better], mu_t[better],
+                                                          J_t[better], W_t[better], cost_t[better])
+        lam[acc] = np.maximum(lam[acc] / 3.0, 1e-12)
+        lam[a[~better]] *= 4.0
+        n_iter[a] += 1
+        done = np.zeros(P, bool)
+        done[acc[rel < tol]] = True
+        done[a[~better][lam[a[~better]] > 1e12]] = True
+        active &= ~done
+    A = np.einsum("pnk,pn,pnl->pkl", J, W, J)
+    ssr = np.sum((y - mu) ** 2, axis=1)
+    cost = np.sum(W * (y - mu) ** 2, axis=1)      # Pearson chi-square at the optimum
+    return _finish(theta, cost, n_iter, active, A, y, ssr, s, shape, n_peaks, per, K)
+
+
+def _finish(theta, cost, n_iter, active, A, y, ssr, s, shape, n_peaks, per, K):
+    """Standard errors, fit quality and convergence flags from the final state."""
+    P = theta.shape[0]
+    dof = s.size - K
+    chi2 = cost / dof
+    cov = np.full((P, K, K), np.nan)
+    ok = np.isfinite(A).all(axis=(1, 2))
+    ok[ok] = np.linalg.det(A[ok]) > 0          # the information matrix must be invertible
+    cov[ok] = np.linalg.inv(A[ok])
+    stderr = np.sqrt(np.clip(np.einsum("pkk->pk", cov), 0, None) * chi2[:, None])
+    ss_tot = np.sum((y - y.mean(axis=1, keepdims=True)) ** 2, axis=1)
+    r2 = 1 - ssr / np.maximum(ss_tot, 1e-300)
+    inside = np.ones(P, bool)
+    for k in range(n_peaks):
+        inside &= (theta[:, k * per + 1] >= s[0]) & (theta[:, k * per + 1] <= s[-1])
+    names = [f"{p}_{k + 1}" if n_peaks > 1 else p for k in range(n_peaks)
+             for p in PEAK_PARAMS[shape]] + ["background", "background_slope"]
+    return {"theta": theta, "stderr": stderr, "cov": cov, "chi2_reduced": chi2, "r2": r2,
+            "converged": ~active & inside & ok, "n_iter": n_iter, "names": names}
+
+
+def peak_fit_map(m: RamanMap, lo: float, hi: float, *, shape: str = "lorentzian",
+                 n_peaks: int = 1, centres=None, weights: str = "auto",
+                 name: str = "peakfit", block: int = 4096) -> Result:
+    """Maps of centre, FWHM, height and area (with standard errors) and the fit quality.
+
+    Fields: for each peak ``centre``, ``fwhm``, ``height``, ``area`` (signal with
+    ``*_errors``), and ``chi2_reduced``, ``r2`` and ``converged`` (0/1 quality mask:
+    a pixel whose fit did not converge, or whose centre left the window, reads 0).
+    """
+    ny, nx, ns = m.shape
+    flat = np.asarray(m.load().intensity, float).reshape(-1, ns)
+    good = np.flatnonzero(~m.mask.ravel())
+    if good.size == 0:
+        raise MapkitError("every pixel is masked; nothing to fit", file=m.source, field="mask",
+                          fix="check the map's bad-pixel mask")
+    parts = [fit_peaks(flat[good[i:i + block]], m.raman_shift, lo, hi, shape=shape,
+                       n_peaks=n_peaks, centres=centres, weights=weights)
+             for i in range(0, good.size, block)]
+    fit = {k: (np.concatenate([p[k] for p in parts]) if k != "names" else parts[0][k])
+           for k in parts[0]}
+    per = len(PEAK_PARAMS[shape])
+
+    def image(values, fill=np.nan):
+        out = np.full(ny * nx, fill, dtype=float)
+        out[good] = values
+        return out.reshape(ny, nx)
+
+    axes = image_axes(m)
+    fields = {}
+    for k in range(n_peaks):
+        o = k * per
+        tag = f"_{k + 1}" if n_peaks > 1 else ""
+        h, c, w = fit["theta"][:, o], fit["theta"][:, o + 1], fit["theta"][:, o + 2]
+        eh, ec, ew = fit["stderr"][:, o], fit["stderr"][:, o + 1], fit["stderr"][:, o + 2]
+        eta = fit["theta"][:, o + 3] if shape == "pseudo_voigt" else None
+        area = peak_area(shape, h, w, eta)
+        # area error by the delta method on (h, w[, eta]) with their covariance
+        grad = np.zeros((h.size, fit["theta"].shape[1]))
+        grad[:, o] = area / np.where(h == 0, 1, h)
+        grad[:, o + 2] = area / np.where(w == 0, 1, w)
+        if shape == "pseudo_voigt":
+            grad[:, o + 3] = peak_area("lorentzian", h, w) - peak_area("gaussian", h, w)
+        var = np.einsum("pk,pkl,pl->p", grad, fit["cov"], grad) * fit["chi2_reduced"]
+        earea = np.sqrt(np.clip(var, 0, None))
+        for key, val, err, units in (("centre", c, ec, "1/cm"), ("fwhm", w, ew, "1/cm"),
+                                     ("height", h, eh, "counts"),
+                                     ("area", area, earea, "counts*1/cm")):
+            fields[f"{key}{tag}"] = Field(key, image(val), axes, units, errors=image(err),
+                                          long_name=f"peak {key}{tag} ({shape})")
+        if shape == "pseudo_voigt":
+            fields[f"eta{tag}"] = Field("eta", image(eta), axes, "",
+                                        long_name="Lorentzian fraction")
+    fields["chi2_reduced"] = Field("chi2_reduced", image(fit["chi2_reduced"]), axes, "",
+                                   long_name="reduced chi-square")
+    fields["r2"] = Field("r2", image(fit["r2"]), axes, "", long_name="coefficient of determination")
+    conv = image(fit["converged"].astype(float), fill=0).astype(np.uint8)
+    fields["converged"] = Field("converged", conv, axes, "", long_name="1 = fit converged")
+    summary = {"pixels": int(good.size), "not_converged": int((~fit["converged"]).sum()),
+               "median_iterations": float(np.median(fit["n_iter"]))}
+    return Result(name, f"peak_fit_{shape}", {"lo": lo, "hi": hi, "shape": shape,
+                                               "n_peaks": n_peaks, "centres": centres,
+                                               "weights": weights}, fields, summary)
+
+
+#: Raman shift of the silicon phonon per unit stress, cm⁻¹/GPa: uniaxial ≈ −2.3 (σ =
+#: −434 MPa·Δω), equibiaxial ≈ −4.6 (σ = −217 MPa·Δω); tensile stress shifts the band
+#: down. De Wolf 1996, Semicond. Sci. Technol. 11:139 (coefficients from memory).
+SILICON_SHIFT_PER_GPA = {"uniaxial": -2.3, "biaxial": -4.6}
+
+
+def silicon_stress(centre, *, reference: float = 520.7, mode: str = "uniaxial"):
+    """Stress in GPa from the silicon band centre (cm⁻¹); tensile positive.
+
+    ``reference`` is the unstrained position measured on the same instrument (520.7 is
+    the usual lab value; Itoh & Shirono 2020 give 520.45 ± 0.28 cm⁻¹).
+
+    Examples
+    --------
+    >>> round(float(silicon_stress(520.7 - 2.3)), 6)
+    1.0
+    """
+    if mode not in SILICON_SHIFT_PER_GPA:
+        raise MapkitError(f"unknown stress mode {mode!r}", field="mode",
+                          fix="use uniaxial or biaxial")
+    return (np.asarray(centre, float) - reference) / SILICON_SHIFT_PER_GPA[mode]
+
+
+def stress_result(fit: Result, *, reference: float = 520.7, mode: str = "uniaxial",
+                  name: str = "silicon_stress") -> Result:
+    """Stress map (GPa, with uncertainty) from a peak-fit result of the silicon band."""
+    c = fit.fields["centre"]
+    k = abs(SILICON_SHIFT_PER_GPA[mode])
+    stress = silicon_stress(c.data, reference=reference, mode=mode)
+    err = None if c.errors is None else c.errors / k
+    return Result(name, "silicon_stress", {"reference": reference, "mode": mode,
+                                           "shift_per_GPa": SILICON_SHIFT_PER_GPA[mode],
+                                           "source": "De Wolf 1996, Semicond. Sci. Technol. "
+                                                     "11:139 (from memory)"},
+                  {"stress": Field("stress", stress, c.axes, "GPa", errors=err,
+                                   long_name=f"{mode} stress (tensile positive)")})
