@@ -35,19 +35,21 @@ def _positive_int(text: str) -> int:
     return v
 
 
-def _add_read_options(p):
+def _add_read_options(p, laser: bool = True):
     g = p.add_argument_group("reading a cube from any HDF5 file")
     g.add_argument("--dataset", help="path of the intensity cube inside the HDF5 file")
     g.add_argument("--axes", help="the cube's axis order, e.g. y,x,raman_shift")
-    g.add_argument("--shift", help="path of the Raman shift dataset (cm-1)")
+    g.add_argument("--shift-dataset", dest="shift_path",
+                   help="path of the Raman shift dataset (cm-1)")
     g.add_argument("--x", dest="x_path", help="path of the x positions dataset (um)")
     g.add_argument("--y", dest="y_path", help="path of the y positions dataset (um)")
     g.add_argument("--pixel-size", type=float, help="step in um when no position datasets exist")
-    p.add_argument("--laser", type=float, help="excitation wavelength in nm, if the file lacks it")
+    if laser:
+        p.add_argument("--laser", type=float, help="excitation wavelength in nm, if the file lacks it")
 
 
 def _open_kwargs(a) -> dict:
-    return {"dataset": a.dataset, "axes": a.axes, "shift": a.shift, "x": a.x_path,
+    return {"dataset": a.dataset, "axes": a.axes, "shift": a.shift_path, "x": a.x_path,
             "y": a.y_path, "pixel_size": a.pixel_size, "laser_wavelength": a.laser}
 
 
@@ -64,9 +66,27 @@ def _add_analysis_options(p, default_out="mapkit-output"):
     p.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
     p.add_argument("--recipe", help="TOML recipe of cleaning steps (default: mask bad pixels, "
                                     "despike, arPLS baseline; see 'mapkit steps')")
+    q = p.add_argument_group("quantification")
+    q.add_argument("--model-file", help="saved quantification model (from 'mapkit calibrate')")
+    q.add_argument("--calibration-model", choices=("linear", "quadratic", "pls"),
+                   default="linear", help="model fitted to --standards (default linear)")
+    q.add_argument("--weighting", choices=("none", "replicates"), default="none",
+                   help="least-squares weighting of the standards (default none)")
+    q.add_argument("--response-band", type=_range_arg, metavar="LO-HI",
+                   help="use a band area as response instead of the unmixing fraction")
+    q.add_argument("--internal-standard", type=_range_arg, metavar="LO-HI",
+                   help="divide the response band by this band's area")
+    q.add_argument("--region", action="append", metavar="NAME:X,Y;X,Y;X,Y",
+                   help="polygon (um) for separate content statistics (repeatable)")
     p.add_argument("--overwrite", action="store_true", help="replace existing outputs")
     p.add_argument("--no-figures", action="store_true", help="skip PNG figures")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
+
+
+def _range_arg(text):
+    from .cli_reduce import _range
+
+    return _range(text)
 
 
 def _recipe(a):
@@ -80,13 +100,21 @@ def _run_analysis(a, map_path, library, standards, bands):
 
     recipe = _recipe(a)  # checked before any data is read
 
+    from .quantify import QuantModel
+    from .quantify.regions import parse_region
+
     s = Settings(n_components=a.components, n_classes=a.classes, seed=a.seed,
-                 analyte=a.analyte)
+                 analyte=a.analyte, calibration_model=a.calibration_model,
+                 weighting=a.weighting, response_band=a.response_band,
+                 internal_standard=a.internal_standard)
     if bands:
         s.bands = bands
+    model = QuantModel.load(a.model_file) if a.model_file else None
+    regions = dict(parse_region(r) for r in a.region or [])
     out = analyse(map_path, a.out, library=library, standards=standards, settings=s,
                   overwrite=a.overwrite, progress=not a.quiet, figures=not a.no_figures,
-                  open_kwargs=_open_kwargs(a) if hasattr(a, "dataset") else None, recipe=recipe)
+                  open_kwargs=_open_kwargs(a) if hasattr(a, "dataset") else None, recipe=recipe,
+                  model=model, regions=regions)
     summ = out["summary"]
     print(f"map       {map_path}  ({summ['shape'][0]} x {summ['shape'][1]} pixels, "
           f"{summ['shape'][2]} channels)")
@@ -109,14 +137,15 @@ def _run_analysis(a, map_path, library, standards, bands):
     conc = summ["results"].get("concentration")
     if conc:
         cal = conc["calibration"]
-        print(f"calibration {cal['analyte']}: r = {cal['r']:.4f}, LOD {cal['lod']:.2f} "
+        fit = f"r = {cal['r']:.4f}" if "r" in cal else f"R² = {cal['r2']:.4f}"
+        print(f"calibration {cal['analyte']} ({cal['model']}): {fit}, LOD {cal['lod']:.2f} "
               f"{cal['unit']}, LOQ {cal['loq']:.2f} {cal['unit']}")
         print(f"content   mean {conc['mean']:.2f} {conc['unit']}, median "
               f"{conc['percentiles'][50]:.2f}; {conc['below_loq']} of {conc['pixels']} pixels "
               f"below LOQ, {conc['outside_range']} outside the calibrated range")
     print(f"wrote     {len(out['written'])} files to {Path(a.out)}/")
     for p in out["written"]:
-        if p.suffix in (".h5", ".json"):
+        if p.suffix in (".h5", ".json", ".html"):
             print(f"          {p}")
     return out
 
@@ -129,6 +158,9 @@ def cmd_demo(a):
         a.out, a.overwrite = "mapkit-output/demo", True
     if a.recipe is None and (here / "tablet_recipe.toml").exists():
         a.recipe = str(here / "tablet_recipe.toml")
+    if a.model_file is None and a.calibration_model == "linear":
+        # the unmixing fraction of the invented standards curves: a quadratic fits it
+        a.calibration_model = "quadratic"
     print("demo: invented tablet cross-section (synthetic data, see sample_maps/README.md)")
     bands = a.band or [("acetaminophen_858", 845.0, 872.0), ("calcite_1086", 1080.0, 1092.0),
                        ("anatase_144", 125.0, 165.0)]
@@ -307,9 +339,10 @@ def build_parser() -> argparse.ArgumentParser:
     _add_read_options(s)
     s.set_defaults(func=cmd_spectrum)
 
-    from .cli_reduce import add_parsers
+    from . import cli_quantify, cli_reduce
 
-    add_parsers(sub, _add_read_options, _band, _positive_int)
+    cli_reduce.add_parsers(sub, _add_read_options, _band, _positive_int)
+    cli_quantify.add_parsers(sub, _add_read_options, _range_arg)
 
     pp = sub.add_parser("preprocess", help="clean one map or every map in a folder with a recipe",
                         description="Apply a recipe of cleaning steps and write *_clean.h5 maps.")

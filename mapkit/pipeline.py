@@ -14,7 +14,6 @@ from pathlib import Path
 import numpy as np
 
 from .core.provenance import Step, library_versions
-from .core.ramanmap import RamanMap
 from .core.result import Axis, Field, Result
 from .errors import MapkitError
 
@@ -30,6 +29,10 @@ class Settings:
     seed: int = 0
     unmix_baseline_order: int = 5
     analyte: str | None = None
+    calibration_model: str = "linear"
+    weighting: str = "none"
+    response_band: tuple | None = None
+    internal_standard: tuple | None = None
     memory_fraction: float = 0.5
 
 
@@ -44,32 +47,48 @@ def _memory_available() -> int:
     return 8 << 30
 
 
-def calibrate_from_standards(standards_path, unmixer, analyte=None):
-    """Fit a straight-line calibration of the analyte's response fraction against the standards."""
-    from .quantify import LinearCalibration, response_fraction
-    from .read.calibration_set import read_calibration_set
-    from .read.reference import Spectrum
+def _sha(path):
+    from .export.nexus import file_sha256
 
-    cs = read_calibration_set(standards_path)
-    analyte = analyte or cs.analyte
-    shift = unmixer.raman_shift_
-    spectra = np.stack([Spectrum(n, cs.raman_shift, s, {"source": cs.source}).on_axis(shift)
-                        for n, s in zip(cs.names, cs.spectra)])
-    std_map = RamanMap(spectra[:, None, :], raman_shift=shift, x=[0.0],
-                       y=np.arange(len(cs.names), dtype=float), source=cs.source)
-    abundance, _ = unmixer.transform(std_map)
-    response = response_fraction(abundance[:, :, 0], unmixer.names_, analyte)
-    return LinearCalibration(analyte=analyte, unit=cs.unit).fit(cs.concentration, response), cs
+    return file_sha256(path)
+
+
+def quantification_model(standards, library, recipe, settings):
+    """Fit the quantification model the settings ask for from a standards file."""
+    from .quantify import QuantModel, Response
+    from .read.calibration_set import read_calibration_set
+
+    cs = read_calibration_set(standards)
+    analyte = settings.analyte or cs.analyte
+    if settings.calibration_model == "pls":
+        response = Response("spectrum", analyte)
+    elif settings.response_band is not None:
+        response = Response("band", analyte, band=tuple(settings.response_band),
+                            internal_standard=None if settings.internal_standard is None
+                            else tuple(settings.internal_standard))
+    else:
+        if library is None:
+            raise MapkitError("calibration standards need a reference library to unmix against",
+                              field="--standards", fix="pass --library too, or --response-band")
+        response = Response("unmix_fraction", analyte, references=tuple(r.name for r in library),
+                            baseline_order=settings.unmix_baseline_order)
+    return QuantModel.fit(cs, response, model=settings.calibration_model,
+                          weighting=settings.weighting, library=library, recipe=recipe)
 
 
 def analyse(map_path, outdir, *, library=None, standards=None, settings: Settings | None = None,
             overwrite: bool = False, progress: bool = True, figures: bool = True,
-            open_kwargs: dict | None = None, recipe=None) -> dict:
+            open_kwargs: dict | None = None, recipe=None, model=None,
+            regions: dict | None = None) -> dict:
     """Run the whole path on one map file and write every output into ``outdir``.
 
     ``recipe`` (a :class:`~mapkit.preprocess.recipe.Recipe`, default: mask bad pixels,
     despike, arPLS baseline) cleans the map before every reduction. Returns a dict with the
     paths written and a summary of the results.
+
+    Content maps come from ``model`` (a saved :class:`~mapkit.quantify.QuantModel`) or from
+    a model fitted to ``standards``; ``regions`` (name → polygon vertices in µm) get their
+    own statistics, as do the classes.
     """
     from .preprocess.recipe import Recipe
     from tqdm.auto import tqdm
@@ -77,7 +96,7 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     from .export.bundle import safe_name, write_bundle, write_summary
     from .preprocess import normalise_map
     from .preprocess.quality import snr
-    from .quantify import concentration_map, response_fraction
+    from .quantify import class_regions, polygon_mask, region_statistics
     from .read import open_map, read_library
     from .reduce import (KMeansClasses, NMFComponents, ReferenceUnmixing, band_image,
                          match_library)
@@ -96,11 +115,18 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     def stage(name):
         bar.set_postfix_str(name)
 
-    # library and standards are read before the cube, so their errors come first
+    # library, standards and model are read before the cube, so their errors come first
     refs = read_library(library) if library is not None else None
-    if standards is not None and refs is None:
-        raise MapkitError("calibration standards need a reference library to unmix against",
-                          field="--standards", fix="pass --library too")
+    if model is not None and standards is not None:
+        raise MapkitError("give either standards to fit a model or a saved model, not both",
+                          field="--model-file", fix="drop one of --standards and --model-file")
+    if standards is not None:
+        model = quantification_model(standards, refs, recipe, s)
+    if model is not None:
+        model.check_recipe(recipe)
+        if s.analyte and s.analyte != model.analyte:
+            raise MapkitError(f"the model quantifies {model.analyte!r}, not {s.analyte!r}",
+                              field="--analyte", fix="use a model made for that analyte")
 
     stage("read")
     raw = open_map(map_path, **(open_kwargs or {}))
@@ -162,13 +188,15 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
             km.class_mean_, corrected.raman_shift, refs, names=list(km_result.summary["areas"]))
     bar.update()
     stage("concentration")
-    if refs is not None and standards is not None:
-        calibration, cs = calibrate_from_standards(standards, unmixer, s.analyte)
-        response = response_fraction(unmix_result.fields["abundance"].data, unmixer.names_,
-                                     calibration.analyte)
-        axes = (Axis("y", corrected.y, "um"), Axis("x", corrected.x, "um"))
-        results.append(concentration_map(response, calibration, axes, mask=corrected.mask))
-        calibration.save(outdir / "calibration.json")
+    if model is not None:
+        conc = model.apply(corrected, refs)
+        calibration = model.calibration
+        region_masks = class_regions(km.labels_, list(km_result.summary["areas"]))
+        for name, verts in (regions or {}).items():
+            region_masks[name] = polygon_mask(corrected.x, corrected.y, verts)
+        conc.summary["regions"] = region_statistics(conc.fields["concentration"].data,
+                                                    conc.fields["flags"].data, region_masks)
+        results.append(conc)
     bar.update()
 
     img_axes = (Axis("y", corrected.y, "um"), Axis("x", corrected.x, "um"))
@@ -202,6 +230,8 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     inputs = {"map": map_path}
     if standards is not None:
         inputs["standards"] = standards
+    if model is not None:
+        written_model = model.save(outdir / "quant_model.json", overwrite=True)
     written = write_bundle(outdir, final, results, stem=safe_name(Path(map_path).stem),
                            overwrite=overwrite, figures=figures, inputs=inputs)
     summary = {"map": str(map_path), "shape": list(raw.shape), "bad_pixels": bad_report,
@@ -209,7 +239,15 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
                "results": {r.name: r.summary for r in results if r.summary},
                "settings": asdict(s), "versions": library_versions()}
     written.append(write_summary(outdir, summary))
+    from .export.report import write_report
+
+    written.append(write_report(
+        outdir / "report.html", map_name=Path(map_path).name, summary=summary, results=results,
+        model=model, recipe_text=recipe.text, provenance=final.provenance,
+        inputs={role: {"path": Path(p).name, "sha256": _sha(p)} for role, p in inputs.items()}))
     bar.update()
     bar.close()
+    if model is not None:
+        written.append(written_model)
     return {"written": [Path(p) for p in written], "summary": summary, "results": results,
-            "calibration": calibration}
+            "calibration": calibration, "model": model}

@@ -150,6 +150,31 @@ def _smooth(rng, shape, sigma):
     return (f - f.min()) / (f.max() - f.min())
 
 
+def _blend_spectra(rng, w_api):
+    """Spectra of powder blends: acetaminophen at mass fractions ``w_api`` in cellulose and
+    calcite 3:1, with the same focus, background and noise model as the standards."""
+    pure = {c: pure_spectrum(c, SHIFT) for c in COMPONENTS}
+    w = np.asarray(w_api, float)[:, None]
+    mix = w * pure["acetaminophen"] + (1 - w) * (0.75 * pure["cellulose"]
+                                                 + 0.25 * pure["calcite"])
+    focus = rng.uniform(0.9, 1.1, (w.shape[0], 1))
+    bg = rng.uniform(300, 1200, (w.shape[0], 1)) * fluorescence_shape(SHIFT) + 60
+    return np.round(rng.poisson(focus * mix + bg) + rng.normal(0, 4.0, mix.shape))
+
+
+BLEND_SHAPE = (32, 40)
+
+
+def make_blend_map(seed: int = SEED + 2, shape=BLEND_SHAPE):
+    """An invented blend-uniformity map: acetaminophen 3-47 % w/w varying smoothly over a
+    cellulose/calcite 3:1 matrix, measured like the calibration standards. Returns
+    (counts (ny, nx, n), true content in % w/w (ny, nx))."""
+    rng = np.random.default_rng(seed)
+    content = 3.0 + 44.0 * _smooth(rng, shape, 5)
+    spectra = _blend_spectra(rng, content.ravel() / 100)
+    return spectra.reshape(*shape, SHIFT.size).astype(np.float32), content
+
+
 def calibration_standards(seed: int = SEED + 1):
     """Spectra of standards with known acetaminophen content (% w/w), 3 replicates each.
 
@@ -158,19 +183,8 @@ def calibration_standards(seed: int = SEED + 1):
     """
     rng = np.random.default_rng(seed)
     levels = np.array([0.0, 5.0, 10.0, 20.0, 30.0, 40.0, 50.0])
-    conc, spectra = [], []
-    pure = {c: pure_spectrum(c, SHIFT) for c in COMPONENTS}
-    for level in levels:
-        for _rep in range(3):
-            wa = level / 100
-            mix = wa * pure["acetaminophen"] + (1 - wa) * (0.75 * pure["cellulose"]
-                                                           + 0.25 * pure["calcite"])
-            focus = rng.uniform(0.9, 1.1)
-            bg = rng.uniform(300, 1200) * fluorescence_shape(SHIFT) + 60
-            s = rng.poisson(focus * mix + bg) + rng.normal(0, 4.0, SHIFT.size)
-            conc.append(level)
-            spectra.append(np.round(s))
-    return np.array(conc), np.array(spectra)
+    conc = np.repeat(levels, 3)
+    return conc, _blend_spectra(rng, conc / 100)
 
 
 def write_jcamp(path, title, shift, intensity, per_line: int = 8):
@@ -205,6 +219,15 @@ def write_samples(outdir) -> list[Path]:
     written = [write_map(out / "tablet_map.h5", m, overwrite=True, compression="gzip")]
     np.savez_compressed(out / "tablet_truth.npz", **truth)
     written.append(out / "tablet_truth.npz")
+    blend, content = make_blend_map()
+    by, bx = BLEND_SHAPE
+    bm = RamanMap(blend, raman_shift=SHIFT, x=np.arange(bx) * 5.0, y=np.arange(by) * 5.0,
+                  laser_wavelength=LASER_NM,
+                  provenance=(Step("synthesise", {"seed": SEED + 2, "scenario": "invented blend"},
+                                   timestamp="2026-12-02T00:00:00+00:00"),))
+    written.append(write_map(out / "blend_map.h5", bm, overwrite=True, compression="gzip"))
+    np.savez_compressed(out / "blend_truth.npz", acetaminophen_pct=content.astype(np.float32))
+    written.append(out / "blend_truth.npz")
     fine = np.arange(100.0, 1850.01, 0.5)
     for name in COMPONENTS:
         spec = pure_spectrum(name, fine) / PURE_HEIGHT[name] * 1000.0

@@ -26,7 +26,8 @@ def test_demo_writes_everything(demo_out):
     assert rc == 0
     assert before == after, "inputs must never be modified"
     names = {p.name for p in out.iterdir()}
-    for expected in ("results.h5", "summary.json", "calibration.json",
+    for expected in ("results.h5", "summary.json", "quant_model.json", "report.html",
+                     "tablet_map_maps.csv",
                      "tablet_map_kmeans_labels.tif", "tablet_map_kmeans_labels.png",
                      "tablet_map_concentration.tif", "tablet_map_concentration_uncertainty.tif",
                      "tablet_map_nmf_images.tif", "tablet_map_unmixing_abundance.tif"):

@@ -37,15 +37,6 @@ def test_against_scipy_linregress():
     assert cal.slope_ == pytest.approx(ref.slope) and cal.r_ == pytest.approx(ref.rvalue)
 
 
-def test_save_and_load(tmp_path):
-    cal = LinearCalibration("api", "mg/mL").fit(X, Y)
-    back = LinearCalibration.load(cal.save(tmp_path / "cal.json"))
-    assert back.unit == "mg/mL" and back.slope_ == pytest.approx(cal.slope_)
-    (tmp_path / "other.json").write_text('{"kind": "something"}')
-    with pytest.raises(MapkitError, match="not a mapkit calibration"):
-        LinearCalibration.load(tmp_path / "other.json")
-
-
 @pytest.mark.parametrize("x, y, words", [
     ([1, 2], [1, 2], "distinct concentration levels"),
     ([1, 1, 2, 2], [1, 2, 3, 4], "distinct concentration levels"),
@@ -60,7 +51,9 @@ def test_bad_calibrations(x, y, words):
 def test_concentration_map_flags():
     cal = LinearCalibration().fit(X, Y)
     resp = np.array([[2.0, 12.6], [40.0, np.nan]])
-    r = concentration_map(resp, cal, (Axis("y", np.arange(2.0), "um"), Axis("x", np.arange(2.0), "um")))
+    x0, s_x0 = cal.inverse(resp)
+    axes = (Axis("y", np.arange(2.0), "um"), Axis("x", np.arange(2.0), "um"))
+    r = concentration_map(x0, s_x0, cal, axes)
     flags = r.fields["flags"].data
     assert flags[0, 0] & 1 and flags[0, 0] & 2          # below LOD and LOQ
     assert flags[0, 1] == 0                            # inside
@@ -68,3 +61,121 @@ def test_concentration_map_flags():
     assert flags[1, 1] & 8                             # masked / no response
     assert np.isnan(r.fields["concentration"].data[1, 1])
     assert r.fields["concentration"].errors[0, 1] > 0
+    assert r.summary["pixels"] == 3 and r.summary["quantifiable"] == 1
+
+
+def test_quadratic_and_weighted_fits_match_numpy_polyfit():
+    from mapkit.quantify import PolynomialCalibration
+
+    x = np.repeat([0.0, 5, 10, 20, 30, 40], 3)
+    rng = np.random.default_rng(3)
+    y = 0.1 + 0.02 * x - 1.5e-4 * x ** 2 + rng.normal(0, 0.002 + 0.0002 * x)
+    quad = PolynomialCalibration(2).fit(x, y)
+    np.testing.assert_allclose(quad.coef_, np.polyfit(x, y, 2)[::-1], rtol=1e-9)
+    wls = PolynomialCalibration(1, weighting="replicates").fit(x, y)
+    # numpy.polyfit weights multiply the residuals: w = 1/sigma = sqrt(weight)
+    np.testing.assert_allclose(wls.coef_, np.polyfit(x, y, 1, w=np.sqrt(wls.w_))[::-1],
+                               rtol=1e-9)
+    # the quadratic reads its own standards back
+    x0, s_x0 = quad.inverse(quad.predict(np.array([5.0, 25.0])))
+    np.testing.assert_allclose(x0, [5.0, 25.0], atol=1e-9)
+    assert np.all(s_x0 > 0)
+
+
+def test_quadratic_inverse_error_matches_monte_carlo():
+    """The delta-method s_x0 agrees with the scatter of repeated calibrations (simulation)."""
+    from mapkit.quantify import PolynomialCalibration
+
+    rng = np.random.default_rng(0)
+    x = np.repeat([0.0, 10, 20, 30, 40, 50], 3)
+    truth = lambda v: 0.05 + 0.03 * v - 2e-4 * v ** 2  # noqa: E731
+    x_true, sd = 22.0, 0.01
+    estimates, predicted = [], []
+    for _ in range(400):
+        cal = PolynomialCalibration(2).fit(x, truth(x) + rng.normal(0, sd, x.size))
+        x0, s = cal.inverse(truth(x_true) + rng.normal(0, sd))
+        estimates.append(float(x0))
+        predicted.append(float(s))
+    assert np.std(estimates) == pytest.approx(np.median(predicted), rel=0.15)
+
+
+# --- coverage on the invented blend map, whose true content is known
+def test_content_map_covers_truth_within_its_stated_uncertainty(sample_dir):
+    import warnings
+
+    from mapkit.preprocess.recipe import Recipe
+    from mapkit.quantify import QuantModel, Response
+    from mapkit.read import open_map, read_library
+    from mapkit.read.calibration_set import read_calibration_set
+
+    lib = read_library(sample_dir / "library")
+    recipe = Recipe.from_file(sample_dir / "tablet_recipe.toml")
+    response = Response("unmix_fraction", "acetaminophen", references=tuple(r.name for r in lib))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        model = QuantModel.fit(read_calibration_set(sample_dir / "calibration_standards.csv"),
+                               response, model="quadratic", library=lib, recipe=recipe)
+        clean, _ = recipe.apply(open_map(sample_dir / "blend_map.h5").load())
+        r = model.apply(clean, lib)
+    truth = np.load(sample_dir / "blend_truth.npz")["acetaminophen_pct"]
+    x0 = r.fields["concentration"].data
+    half = model.calibration.t95_ * r.fields["concentration"].errors
+    coverage = np.mean(np.abs(x0 - truth) <= half)
+    assert 0.90 <= coverage <= 0.99, coverage
+
+
+def test_pls_calibration_matches_sklearn_and_predicts(sample_dir):
+    from sklearn.cross_decomposition import PLSRegression
+
+    from mapkit.preprocess.recipe import Recipe
+    from mapkit.quantify import PLSCalibration
+    from mapkit.quantify.model import _clean
+    from mapkit.quantify.response import Response
+    from mapkit.read.calibration_set import read_calibration_set
+
+    cs = read_calibration_set(sample_dir / "calibration_standards.csv")
+    spectra, shift = _clean(cs.spectra, cs.raman_shift, Recipe.default(), cs.source)
+    X = Response("spectrum", "acetaminophen").compute(spectra, shift)
+    groups = [n.rsplit("-", 1)[0] for n in cs.names]
+    pls = PLSCalibration(max_components=6).fit(X, cs.concentration, groups)
+    ref = PLSRegression(n_components=pls.n_components_, scale=False).fit(X, cs.concentration)
+    np.testing.assert_allclose(pls.predict(X), ref.predict(X).ravel(), rtol=1e-9)
+    assert pls.rmsecv_.size == 6 and pls.r2_ > 0.99
+
+
+# --- physics: anti-Stokes/Stokes thermometry and the Cancado crystallite size
+def test_boltzmann_ratio_for_silicon_and_back():
+    from mapkit.quantify import stokes_antistokes_ratio, temperature_from_ratio
+
+    # computed from the Boltzmann factor with scipy.constants (shared/REFERENCE_VALUES.md):
+    # Si 520.7 1/cm, 532 nm, 298.15 K -> 0.1012 with the nu^4 term, 0.0957 with nu^3
+    r4 = stokes_antistokes_ratio(298.15, 520.7, 532.0, exponent=4)
+    r3 = stokes_antistokes_ratio(298.15, 520.7, 532.0, exponent=3)
+    assert r4 == pytest.approx(0.1012, abs=5e-5) and r3 == pytest.approx(0.0957, abs=5e-5)
+    assert temperature_from_ratio(r4, 520.7, 532.0, 4) == pytest.approx(298.15, abs=1e-9)
+    assert temperature_from_ratio(r3, 520.7, 532.0, 3) == pytest.approx(298.15, abs=1e-9)
+
+
+def test_cancado_crystallite_size():
+    from mapkit.quantify import crystallite_size
+
+    # Cancado et al. 2006, Appl. Phys. Lett. 88:163106: L_a = 2.4e-10 lambda^4 / (I_D/I_G)
+    assert crystallite_size(1.0, 532.0) == pytest.approx(19.2, abs=0.05)
+    assert crystallite_size(1.0, 514.5) == pytest.approx(16.8, abs=0.05)
+    assert crystallite_size(2.0, 532.0) == pytest.approx(19.22 / 2, abs=0.05)
+
+
+def test_region_statistics():
+    from mapkit.quantify import class_regions, polygon_mask, region_statistics
+
+    values = np.arange(20.0).reshape(4, 5)
+    flags = np.zeros((4, 5), np.uint8)
+    flags[0, 0] = 8
+    labels = (values >= 10).astype(int)
+    stats = region_statistics(values, flags, class_regions(labels))
+    assert stats["class 1"]["pixels"] == 9 and stats["class 1"]["mean"] == pytest.approx(5.0)
+    assert stats["class 2"]["mean"] == pytest.approx(14.5)
+    poly = polygon_mask(np.arange(5.0), np.arange(4.0), [(1.5, 0.5), (3.5, 0.5), (3.5, 2.5),
+                                                        (1.5, 2.5)])
+    # pixel centres (2, 1), (3, 1), (2, 2), (3, 2) hold 7, 8, 12, 13
+    assert poly.sum() == 4 and region_statistics(values, flags, {"p": poly})["p"]["mean"] == 10.0

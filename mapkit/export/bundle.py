@@ -23,17 +23,28 @@ def safe_name(name: str) -> str:
 
 
 def write_bundle(outdir, m, results, *, stem: str, overwrite: bool = False, figures: bool = True,
-                 inputs: dict | None = None, results_name: str = "results.h5") -> list[Path]:
+                 inputs: dict | None = None, results_name: str = "results.h5",
+                 formats=("png",)) -> list[Path]:
     """Write ``results`` of map ``m`` into ``outdir``; returns every path written.
 
     - ``results.h5``: the map and every result (docs/file-layout.md);
     - ``<stem>_<result>[_<field>].tif`` for every image field (stacks as multi-page TIFF),
       plus ``*_uncertainty.tif`` where a field carries errors;
-    - with ``figures``, a PNG per image (per component for stacks) and per spectra field.
+    - ``<stem>_maps.csv``: long-form table of every image value per pixel;
+    - with ``figures``, a figure per image (per component for stacks) and per spectra field,
+      in each of ``formats`` (``png``, ``svg``).
     """
+    from .table import write_long_csv
+
     outdir = Path(outdir)
     written = [write_results_file(outdir / results_name, m, results, overwrite=overwrite,
                                   inputs=inputs)]
+    written.append(write_long_csv(outdir / f"{stem}_maps.csv", m, results, overwrite=overwrite))
+
+    def each_format(save, base, *args, **kw):
+        for ext in formats:
+            written.append(save(outdir / f"{base}.{ext}", *args, overwrite=overwrite, **kw))
+
     for r in results:
         for fname, fld in r.fields.items():
             if not fld.is_image or fld.data.ndim > 3 or fname in _NO_IMAGE_FILES:
@@ -47,26 +58,22 @@ def write_bundle(outdir, m, results, *, stem: str, overwrite: bool = False, figu
                 written.append(write_tiff(outdir / f"{base}_uncertainty.tif", err,
                                           overwrite=overwrite))
                 if figures:
-                    written.append(save_image_figure(outdir / f"{base}_uncertainty.png", err,
-                                                     title=f"{r.name}: uncertainty",
-                                                     overwrite=overwrite))
+                    each_format(save_image_figure, f"{base}_uncertainty", err,
+                                title=f"{r.name}: uncertainty")
             if not figures:
                 continue
             if fld.data.ndim == 3:
                 for k, label in enumerate(fld.axes[0].values):
-                    written.append(save_image_figure(
-                        outdir / f"{base}_{safe_name(label)}.png", fld, k,
-                        title=f"{r.name}: {label}", overwrite=overwrite))
+                    each_format(save_image_figure, f"{base}_{safe_name(label)}", fld, k,
+                                title=f"{r.name}: {label}")
             else:
-                written.append(save_image_figure(outdir / f"{base}.png", fld, title=r.name,
-                                                 classes=fld.signal == "labels",
-                                                 overwrite=overwrite))
+                each_format(save_image_figure, base, fld, title=r.name,
+                            classes=fld.signal == "labels")
         if figures:
             for fname, fld in r.fields.items():
                 if fld.axis_names[-1] == "raman_shift" and fld.data.ndim == 2:
-                    written.append(save_spectra_figure(outdir / f"{stem}_{r.name}_{fname}.png",
-                                                       fld, title=f"{r.name}: {fname}",
-                                                       overwrite=overwrite))
+                    each_format(save_spectra_figure, f"{stem}_{r.name}_{fname}", fld,
+                                title=f"{r.name}: {fname}")
     return written
 
 

@@ -105,3 +105,59 @@ def save_spectra_figure(path, field: Field, *, title: str = "", classes: bool = 
     with atomic_path(path, overwrite=overwrite) as tmp:
         fig.savefig(tmp, dpi=dpi, format=str(path).rsplit(".", 1)[-1])
     return path
+
+
+def save_calibration_figure(path, calibration, *, overwrite: bool = False, dpi: int = 150):
+    """Calibration curve with its standards, LOD/LOQ, and the residuals beneath.
+
+    For PLS: predicted against known content, and RMSECV against the number of latent
+    variables.
+    """
+    fig = _figure(figsize=(6.4, 5.6), layout="constrained")
+    top, bottom = fig.subplots(2, 1, height_ratios=(3, 1.4))
+    unit = calibration.unit
+    if hasattr(calibration, "coef_"):
+        x, y = calibration.x_, calibration.y_
+        xs = np.linspace(min(0.0, x.min()), x.max() * 1.05, 200)
+        top.plot(x, y, "o", color=CLASS_COLOURS[0], ms=4, label="standards")
+        top.plot(xs, calibration.predict(xs), color="black", lw=1,
+                 label=f"{'linear' if calibration.degree == 1 else 'quadratic'} fit, "
+                       f"r² = {calibration.r2_:.4f}")
+        for value, name, style in ((calibration.lod_, "LOD", ":"), (calibration.loq_, "LOQ", "--")):
+            top.axvline(value, color=CLASS_COLOURS[5], ls=style, lw=1,
+                        label=f"{name} {value:.3g} {unit}")
+        top.set_ylabel("response")
+        bottom.axhline(0, color="black", lw=0.8)
+        bottom.plot(x, calibration.residuals_, "o", color=CLASS_COLOURS[0], ms=3)
+        bottom.set_ylabel("residual")
+        bottom.set_xlabel(f"{calibration.analyte} ({unit})")
+        top.set_xlabel(f"{calibration.analyte} ({unit})")
+    else:  # PLS
+        fitted = calibration.y_ - calibration.residuals_
+        top.plot(calibration.y_, fitted, "o", color=CLASS_COLOURS[0], ms=4, label="standards")
+        lim = [calibration.y_.min(), calibration.y_.max()]
+        top.plot(lim, lim, color="black", lw=1, label="ideal")
+        top.set_xlabel(f"known {calibration.analyte} ({unit})")
+        top.set_ylabel(f"predicted ({unit})")
+        k = np.arange(1, calibration.rmsecv_.size + 1)
+        bottom.plot(k, calibration.rmsecv_, "o-", color=CLASS_COLOURS[1], ms=3)
+        bottom.axvline(calibration.n_components_, color="grey", ls=":")
+        bottom.set_xlabel("latent variables")
+        bottom.set_ylabel(f"RMSECV ({unit})")
+    top.legend(fontsize=7)
+    with atomic_path(path, overwrite=overwrite) as tmp:
+        fig.savefig(tmp, dpi=dpi, format=str(path).rsplit(".", 1)[-1])
+    return path
+
+
+def save_histogram_figure(path, values, *, label: str, overwrite: bool = False, dpi: int = 150):
+    """Histogram of the finite values of an image."""
+    fig = _figure(figsize=(5.2, 3.2), layout="constrained")
+    ax = fig.add_subplot()
+    v = np.asarray(values, float)
+    ax.hist(v[np.isfinite(v)], bins=30, color=CLASS_COLOURS[0])
+    ax.set_xlabel(label)
+    ax.set_ylabel("pixels")
+    with atomic_path(path, overwrite=overwrite) as tmp:
+        fig.savefig(tmp, dpi=dpi, format=str(path).rsplit(".", 1)[-1])
+    return path

@@ -111,6 +111,10 @@ class Recipe:
         meta = doc.get("recipe", {})
         return cls(tuple(steps), str(meta.get("name", "")), text, source, tuple(lines))
 
+    def fingerprint(self):
+        """The steps and parameters alone (comments and names ignored), for comparisons."""
+        return [[name, dict(sorted(params.items()))] for name, params in self.steps]
+
     @classmethod
     def from_file(cls, path) -> "Recipe":
         path = Path(path)
@@ -127,12 +131,19 @@ class Recipe:
         """Bad pixels and spikes only: for fits that model the background themselves."""
         return cls.from_text(MINIMAL_RECIPE, "minimal recipe")
 
-    def apply(self, m, *, progress=None):
-        """Run every step on map ``m``; returns (map, by-products of each step by name)."""
+    def apply(self, m, *, progress=None, spectra_only: bool = False):
+        """Run every step on map ``m``; returns (map, by-products of each step by name).
+
+        ``spectra_only`` skips steps that compare a pixel with its neighbours (spatial
+        despiking, binning): for stacks of separate spectra such as calibration standards.
+        """
         extras = {}
         m = m.derive(m.intensity, Step("recipe", {"name": self.name, "source": self.source,
                                                    "text": self.text}))
         for name, params in self.steps:
+            if spectra_only and (name == "bin" or (name == "despike"
+                                                   and params.get("method") == "neighbours")):
+                continue
             if progress:
                 progress(name)
             m, extra = get_step(name).run(m, **params)

@@ -1,9 +1,12 @@
-"""Straight-line calibration with the statistics an analytical lab reports."""
+"""Calibration models with the statistics an analytical lab reports.
+
+Univariate: a straight line or a quadratic of the response against the known content of
+standards, by ordinary or weighted least squares, read back (inverse prediction) with its
+standard error. Multivariate: partial least squares on whole spectra, with the number of
+latent variables chosen by cross-validation (in :mod:`mapkit.quantify.pls`).
+"""
 
 from __future__ import annotations
-
-import json
-from pathlib import Path
 
 import numpy as np
 from scipy import stats
@@ -11,25 +14,192 @@ from sklearn.base import BaseEstimator, RegressorMixin
 
 from ..errors import MapkitError
 
+WEIGHTINGS = ("none", "replicates")
 
-class LinearCalibration(RegressorMixin, BaseEstimator):
-    """Ordinary least-squares line y = a + b·x from standards, and inverse prediction.
 
-    Statistics follow the usual treatment of analytical calibration (Miller &
-    Miller, *Statistics and Chemometrics for Analytical Chemistry*): residual
-    standard deviation s_y/x with n − 2 degrees of freedom, and the standard
-    error of a concentration read back from m replicate responses y₀::
+class PolynomialCalibration(RegressorMixin, BaseEstimator):
+    """Response y = b₀ + b₁x (+ b₂x²) fitted to standards, and inverse prediction.
 
-        s_x0 = (s_y/x / b) · √(1/m + 1/n + (y₀ − ȳ)² / (b² Σ(xᵢ − x̄)²))
+    The statistics follow the usual treatment of analytical calibration (Miller & Miller,
+    *Statistics and Chemometrics for Analytical Chemistry*): residual standard deviation
+    s_y/x with n − p degrees of freedom, and the standard error of a content read back
+    from the mean y₀ of m responses by the delta method,
 
-    Detection and quantitation limits follow ICH Q2(R2) (2023) with σ = s_y/x
-    and S = b: LOD = 3.3σ/S, LOQ = 10σ/S.
+        s_x0² = (s²/(m·w(x₀)) + gᵀ Cov(b) g) / f′(x₀)²,   g = (1, x₀[, x₀²]),
+
+    which for a straight unweighted line is the textbook
+    s_x0 = (s_y/x / b)·√(1/m + 1/n + (y₀ − ȳ)²/(b² Σ(xᵢ − x̄)²)).
+    Detection and quantitation limits follow ICH Q2(R2) (2023) with σ = the response
+    standard deviation at zero content and S = the slope there: LOD = 3.3σ/S, LOQ = 10σ/S.
+
+    Parameters
+    ----------
+    degree : {1, 2}
+    weighting : {"none", "replicates"}
+        ``"replicates"``: weighted least squares with weights 1/σ²(x), where σ²(x) is a
+        straight line fitted to the variances of replicate responses at each level
+        (heteroscedastic responses, e.g. shot noise growing with content).
+    analyte, unit : str
 
     Attributes
     ----------
-    slope_, intercept_, r_, s_yx_, lod_, loq_ : float
+    coef_ : array (degree + 1,)
+        b₀, b₁[, b₂].
+    slope_, intercept_, r_, r2_, s_yx_, lod_, loq_ : float
     x_range_ : (float, float)
-        Lowest and highest standard.
+        Lowest and highest standard: results outside are flagged.
+    residuals_ : array
+    """
+
+    def __init__(self, degree: int = 1, weighting: str = "none", analyte: str = "analyte",
+                 unit: str = "% w/w"):
+        self.degree = degree
+        self.weighting = weighting
+        self.analyte = analyte
+        self.unit = unit
+
+    # -- fitting ------------------------------------------------------------------------
+    def _variance_function(self, x, y):
+        """Per-point weights from replicate variances (1 for unweighted fits)."""
+        if self.weighting == "none":
+            self.var_coef_ = None
+            return np.ones_like(x)
+        levels = np.unique(x)
+        var = np.array([np.var(y[x == lv], ddof=1) if (x == lv).sum() > 1 else np.nan
+                        for lv in levels])
+        ok = np.isfinite(var)
+        if ok.sum() < 2:
+            raise MapkitError("weighting by replicates needs at least two levels measured more "
+                              "than once", field="weighting", fix="add replicates or use none")
+        coef = np.polyfit(levels[ok], var[ok], 1)
+        floor = max(np.min(var[ok][var[ok] > 0]) if np.any(var[ok] > 0) else 1e-12, 1e-300)
+        self.var_coef_ = coef
+        self.var_floor_ = float(floor)
+        return 1.0 / self._variance_at(x)
+
+    def _variance_at(self, x):
+        if self.var_coef_ is None:
+            return np.ones_like(np.asarray(x, float))
+        return np.maximum(np.polyval(self.var_coef_, np.asarray(x, float)), self.var_floor_)
+
+    def fit(self, x, y):
+        x = np.asarray(x, float).ravel()
+        y = np.asarray(y, float).ravel()
+        if self.degree not in (1, 2):
+            raise MapkitError(f"degree {self.degree} is not 1 (linear) or 2 (quadratic)",
+                              field="model", fix="use linear or quadratic")
+        if self.weighting not in WEIGHTINGS:
+            raise MapkitError(f"unknown weighting {self.weighting!r}", field="weighting",
+                              fix=f"use one of {', '.join(WEIGHTINGS)}")
+        if x.size != y.size:
+            raise MapkitError(f"{x.size} concentrations but {y.size} responses",
+                              field="standards", fix="give one response per standard")
+        if not (np.all(np.isfinite(x)) and np.all(np.isfinite(y))):
+            raise MapkitError("a concentration or response is missing or not finite",
+                              field="standards", fix="remove or repeat that standard")
+        n_levels = np.unique(x).size
+        if n_levels < 3 or n_levels < self.degree + 2:
+            raise MapkitError(f"only {n_levels} distinct concentration levels for a degree-"
+                              f"{self.degree} model", field="standards",
+                              fix="measure at least three levels (ICH Q2(R2) asks for five)")
+        p = self.degree + 1
+        n = x.size
+        w = self._variance_function(x, y)
+        X = np.vander(x, p, increasing=True)
+        XtW = X.T * w
+        XtWX = XtW @ X
+        try:
+            beta = np.linalg.solve(XtWX, XtW @ y)
+        except np.linalg.LinAlgError:
+            raise MapkitError("the calibration design is singular", field="standards",
+                              fix="use standards at distinct concentrations") from None
+        resid = y - X @ beta
+        s2 = float(np.sum(w * resid ** 2) / (n - p))
+        self.coef_ = beta
+        self.cov_ = s2 * np.linalg.inv(XtWX)
+        self.s2_ = s2
+        self.n_ = n
+        self.dof_ = n - p
+        self.x_, self.y_, self.w_ = x, y, w
+        self.residuals_ = resid
+        self.x_range_ = (float(x.min()), float(x.max()))
+        self.t95_ = float(stats.t.ppf(0.975, n - p))
+        slope0 = self.derivative(0.0)
+        # a response that barely changes over the calibrated range is no calibration
+        change = abs(self.predict(x.max()) - self.predict(x.min()))
+        if not np.isfinite(change) or change < 2 * np.sqrt(s2 / w.mean()) or change == 0:
+            raise MapkitError(f"the response does not change with concentration (slope "
+                              f"{beta[1]:.3g})", field="standards",
+                              fix="check that the response band belongs to the analyte")
+        ss_tot = float(np.sum(w * (y - np.average(y, weights=w)) ** 2))
+        self.r2_ = 1 - float(np.sum(w * resid ** 2)) / ss_tot if ss_tot > 0 else 1.0
+        self.r_ = float(np.corrcoef(x, y)[0, 1]) if self.degree == 1 else float(
+            np.sqrt(max(self.r2_, 0)))
+        self.intercept_ = float(beta[0])
+        self.slope_ = float(beta[1])
+        self.s_yx_ = float(np.sqrt(s2))
+        sigma0 = float(np.sqrt(s2 * self._variance_at(0.0)))
+        self.sigma_blank_ = sigma0
+        self.lod_ = 3.3 * sigma0 / abs(slope0)
+        self.loq_ = 10.0 * sigma0 / abs(slope0)
+        self.x_mean_ = float(np.average(x))
+        self.y_mean_ = float(np.average(y))
+        self.sxx_ = float(np.sum((x - x.mean()) ** 2))
+        return self
+
+    # -- using ----------------------------------------------------------------------------
+    def predict(self, x):
+        """Expected response at content ``x``."""
+        return np.polynomial.polynomial.polyval(np.asarray(x, float), self.coef_)
+
+    def derivative(self, x):
+        return np.polynomial.polynomial.polyval(np.asarray(x, float),
+                                                np.polynomial.polynomial.polyder(self.coef_))
+
+    def _solve(self, y0):
+        b = self.coef_
+        if self.degree == 1:
+            return (y0 - b[0]) / b[1]
+        # quadratic: the root on the branch that passes through the calibrated range
+        a2, a1, a0 = b[2], b[1], b[0] - y0
+        disc = a1 * a1 - 4 * a2 * a0
+        sq = np.sqrt(np.where(disc >= 0, disc, np.nan))
+        r1 = (-a1 + sq) / (2 * a2)
+        r2 = (-a1 - sq) / (2 * a2)
+        mid = 0.5 * sum(self.x_range_)
+        pick_r1 = np.abs(r1 - mid) <= np.abs(r2 - mid)
+        return np.where(np.isnan(r1), r2, np.where(np.isnan(r2), r1, np.where(pick_r1, r1, r2)))
+
+    def inverse(self, y0, m: int = 1):
+        """Content x₀ and its standard error s_x0 from the mean of ``m`` responses ``y0``."""
+        y0 = np.asarray(y0, float)
+        x0 = self._solve(y0)
+        g = np.stack([np.ones_like(x0), x0, x0 ** 2][: self.degree + 1])
+        var_pred = np.einsum("i...,ij,j...->...", g, self.cov_, g)
+        var_y0 = self.s2_ * self._variance_at(x0) / m
+        s_x0 = np.sqrt(var_y0 + var_pred) / np.abs(self.derivative(x0))
+        return x0, s_x0
+
+    def summary(self) -> dict:
+        return {"analyte": self.analyte, "unit": self.unit, "model": "linear" if self.degree == 1
+                else "quadratic", "weighting": self.weighting, "coefficients":
+                [float(c) for c in self.coef_], "slope": self.slope_, "intercept": self.intercept_,
+                "r": self.r_, "r2": self.r2_, "s_yx": self.s_yx_, "n": self.n_, "lod": self.lod_,
+                "loq": self.loq_, "range": list(self.x_range_), "t95": self.t95_,
+                "residuals": [float(r) for r in self.residuals_]}
+
+    def to_dict(self) -> dict:
+        return {"kind": "polynomial", "degree": self.degree, "weighting": self.weighting,
+                "analyte": self.analyte, "unit": self.unit, "x": self.x_.tolist(),
+                "y": self.y_.tolist()}
+
+    @classmethod
+    def from_dict(cls, d: dict) -> "PolynomialCalibration":
+        return cls(d["degree"], d["weighting"], d["analyte"], d["unit"]).fit(d["x"], d["y"])
+
+
+class LinearCalibration(PolynomialCalibration):
+    """Ordinary least-squares straight line (``PolynomialCalibration`` with degree 1).
 
     Examples
     --------
@@ -38,87 +208,8 @@ class LinearCalibration(RegressorMixin, BaseEstimator):
     (1.98, 1.03)
     """
 
-    def __init__(self, analyte: str = "analyte", unit: str = "% w/w"):
-        self.analyte = analyte
-        self.unit = unit
+    def __init__(self, analyte: str = "analyte", unit: str = "% w/w", weighting: str = "none"):
+        super().__init__(1, weighting, analyte, unit)
 
-    def fit(self, x, y):
-        x = np.asarray(x, float).ravel()
-        y = np.asarray(y, float).ravel()
-        if x.size != y.size:
-            raise MapkitError(f"{x.size} concentrations but {y.size} responses",
-                              field="standards", fix="give one response per standard")
-        if not (np.all(np.isfinite(x)) and np.all(np.isfinite(y))):
-            raise MapkitError("a concentration or response is missing or not finite",
-                              field="standards", fix="remove or repeat that standard")
-        if np.unique(x).size < 3:
-            raise MapkitError(f"only {np.unique(x).size} distinct concentration levels",
-                              field="standards",
-                              fix="measure at least three levels (ICH Q2(R2) asks for five)")
-        n = x.size
-        xm, ym = x.mean(), y.mean()
-        sxx = float(((x - xm) ** 2).sum())
-        b = float(((x - xm) * (y - ym)).sum() / sxx)
-        a = float(ym - b * xm)
-        resid = y - (a + b * x)
-        s_yx = float(np.sqrt((resid ** 2).sum() / (n - 2)))
-        if not np.isfinite(b) or abs(b) <= 1e-12 * max(abs(ym), 1.0) or (
-                s_yx > 0 and abs(b) * np.sqrt(sxx) < 2 * s_yx):
-            raise MapkitError(f"the response does not change with concentration (slope {b:.3g})",
-                              field="standards",
-                              fix="check that the response band belongs to the analyte")
-        syy = float(((y - ym) ** 2).sum())
-        self.slope_, self.intercept_ = b, a
-        self.r_ = float(b * np.sqrt(sxx / syy)) if syy > 0 else 1.0
-        self.s_yx_ = s_yx
-        self.n_ = n
-        self.x_mean_, self.y_mean_, self.sxx_ = float(xm), float(ym), sxx
-        self.residuals_ = resid
-        self.x_, self.y_ = x, y
-        self.lod_ = 3.3 * s_yx / abs(b)
-        self.loq_ = 10.0 * s_yx / abs(b)
-        self.x_range_ = (float(x.min()), float(x.max()))
-        self.t95_ = float(stats.t.ppf(0.975, n - 2))
-        return self
-
-    def predict(self, x):
-        """Expected response at concentration ``x``."""
-        return self.intercept_ + self.slope_ * np.asarray(x, float)
-
-    def inverse(self, y0, m: int = 1):
-        """Concentration x₀ and its standard error s_x0 from the mean of ``m`` responses ``y0``."""
-        y0 = np.asarray(y0, float)
-        x0 = (y0 - self.intercept_) / self.slope_
-        s_x0 = (self.s_yx_ / abs(self.slope_)) * np.sqrt(
-            1.0 / m + 1.0 / self.n_ + (y0 - self.y_mean_) ** 2 / (self.slope_ ** 2 * self.sxx_))
-        return x0, s_x0
-
-    def summary(self) -> dict:
-        return {"analyte": self.analyte, "unit": self.unit, "slope": self.slope_,
-                "intercept": self.intercept_, "r": self.r_, "s_yx": self.s_yx_, "n": self.n_,
-                "lod": self.lod_, "loq": self.loq_, "range": list(self.x_range_),
-                "x_mean": self.x_mean_, "y_mean": self.y_mean_, "sxx": self.sxx_,
-                "t95": self.t95_}
-
-    def save(self, path) -> Path:
-        """Write the calibration as JSON (atomically) so it can be applied to other maps."""
-        from ..core.provenance import library_versions
-        from ..export.atomic import atomic_path
-
-        with atomic_path(path, overwrite=True) as tmp:
-            tmp.write_text(json.dumps({"kind": "mapkit linear calibration", **self.summary(),
-                                       "x": self.x_.tolist(), "y": self.y_.tolist(),
-                                       "versions": library_versions()}, indent=2))
-        return Path(path)
-
-    @classmethod
-    def load(cls, path) -> "LinearCalibration":
-        path = Path(path)
-        try:
-            d = json.loads(path.read_text())
-            if d.get("kind") != "mapkit linear calibration":
-                raise KeyError("kind")
-            return cls(d["analyte"], d["unit"]).fit(d["x"], d["y"])
-        except (OSError, ValueError, KeyError) as exc:
-            raise MapkitError(f"not a mapkit calibration file ({exc})", file=path,
-                              fix="save one with 'mapkit calibrate'") from None
+    def get_params(self, deep=True):
+        return {"analyte": self.analyte, "unit": self.unit, "weighting": self.weighting}

@@ -38,7 +38,8 @@ def open_map(path, *, dataset: str | None = None, axes=None, shift: str | None =
     if dataset is not None:
         if axes is None or shift is None:
             raise MapkitError("reading a cube by dataset path needs its axis order and shift axis",
-                              file=p, field=dataset, fix="pass --axes (e.g. y,x,raman_shift) and --shift PATH")
+                              file=p, field=dataset,
+                              fix="pass --axes (e.g. y,x,raman_shift) and --shift-dataset PATH")
         return read_hdf5_dataset(p, dataset, axes=axes, shift_path=shift, x_path=x, y_path=y,
                                  pixel_size=pixel_size, laser_wavelength=laser_wavelength)
     if p.suffix.lower() in _TEXT:

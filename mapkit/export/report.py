@@ -1,0 +1,213 @@
+"""A self-contained HTML report of one analysis: every figure embedded, no external files."""
+
+from __future__ import annotations
+
+import base64
+import datetime as _dt
+import html
+import tempfile
+from pathlib import Path
+
+
+from ..core.provenance import library_versions
+from .atomic import atomic_path
+from .figures import (save_calibration_figure, save_histogram_figure, save_image_figure,
+                      save_spectra_figure)
+
+CAUTIONS = (
+    "Laser safety: Raman microscopes usually carry Class 3B, sometimes Class 4 lasers "
+    "(IEC 60825-1). Direct and specularly reflected beams injure the eye; follow the "
+    "instrument's interlocks and the laser safety officer's rules when acquiring maps.",
+    "Content maps are estimates that depend on the calibration: standards must match the "
+    "samples' matrix and cover the working range. Pixels below the LOD or LOQ, or outside "
+    "the calibrated range, are flagged and must not be reported as values. Results used for "
+    "regulated, clinical, forensic or food decisions must be validated against a reference "
+    "method under the applicable local rules and licensed practice (e.g. ICH Q2(R2)).",
+)
+
+_CSS = """
+body{font-family:system-ui,-apple-system,'Segoe UI',sans-serif;max-width:1100px;margin:2em auto;
+color:#1d2330;line-height:1.45;padding:0 1em}
+h1{font-size:1.6em;border-bottom:3px solid #0072B2;padding-bottom:.2em}
+h2{font-size:1.2em;margin-top:2em;color:#0b4f7c}
+table{border-collapse:collapse;margin:.6em 0;font-size:.92em}
+td,th{border:1px solid #c9ced8;padding:.25em .6em;text-align:left}
+th{background:#eef2f7}
+.figs{display:flex;flex-wrap:wrap;gap:.6em}
+.figs img{max-width:330px;border:1px solid #e2e5ea}
+img.wide{max-width:640px}
+pre{background:#f5f6f8;padding:.6em;overflow-x:auto;font-size:.85em}
+.note{background:#fff8e1;border-left:4px solid #E69F00;padding:.5em .8em}
+.lead{font-size:1.05em}
+"""
+
+
+def _img(path, cls=""):
+    data = base64.b64encode(Path(path).read_bytes()).decode()
+    return f'<img class="{cls}" src="data:image/png;base64,{data}" alt="{html.escape(Path(path).stem)}">'
+
+
+def _table(rows, header):
+    head = "".join(f"<th>{html.escape(str(h))}</th>" for h in header)
+    body = "".join("<tr>" + "".join(f"<td>{html.escape(_fmt(c))}</td>" for c in r) + "</tr>"
+                   for r in rows)
+    return f"<table><tr>{head}</tr>{body}</table>"
+
+
+def _fmt(v):
+    if isinstance(v, float):
+        return f"{v:.4g}"
+    return "" if v is None else str(v)
+
+
+def write_report(path, *, map_name: str, summary: dict, results, model=None, recipe_text="",
+                 inputs: dict | None = None, provenance=(), overwrite: bool = True) -> Path:
+    """Write the HTML report of an analysis (see ``mapkit analyse``)."""
+    res = {r.name: r for r in results}
+    parts = []
+    with tempfile.TemporaryDirectory() as tmpdir:
+        tmp = Path(tmpdir)
+        n = [0]
+
+        def fig(func, *args, **kw):
+            n[0] += 1
+            p = tmp / f"f{n[0]}.png"
+            func(p, *args, overwrite=True, dpi=110, **kw)
+            return p
+
+        parts.append(_overview(map_name, summary, res))
+        parts.append(_inputs(summary, inputs or {}, recipe_text))
+        if "nmf" in res:
+            r = res["nmf"]
+            imgs = r.fields["images"]
+            figs = [_img(fig(save_spectra_figure, r.fields["spectra"], title="component spectra"),
+                         "wide")]
+            figs += [_img(fig(save_image_figure, imgs, k, title=str(lbl)))
+                     for k, lbl in enumerate(imgs.axes[0].values)]
+            ident = r.summary.get("identification", [])
+            table = _table([(i["spectrum"], i["match"], i["score"], i.get("runner_up", ""))
+                            for i in ident], ["component", "identified as", "HQI",
+                                              "runner-up"]) if ident else ""
+            parts.append("<h2>Components (NMF)</h2><p>Each component is a spectrum and an "
+                         "image of where it sits; identification against the reference "
+                         "library uses the hit-quality index (1 = same shape).</p>"
+                         + table + f'<div class="figs">{"".join(figs)}</div>')
+        if "kmeans" in res:
+            r = res["kmeans"]
+            names = {i["spectrum"]: i["match"] for i in r.summary.get("identification", [])}
+            rows = [(k, names.get(k, ""), v["fraction_pct"], v["area_um2"], v.get("domains"),
+                     v.get("ecd_median_um")) for k, v in r.summary["areas"].items()]
+            parts.append("<h2>Spectral classes (k-means)</h2>" + _table(
+                rows, ["class", "identified as", "area %", "area (µm²)", "domains",
+                       "median ECD (µm)"]) + '<div class="figs">'
+                + _img(fig(save_image_figure, r.fields["labels"], title="classes",
+                           classes=True))
+                + _img(fig(save_spectra_figure, r.fields["class_spectra"],
+                           title="class mean ± sd"), "wide") + "</div>")
+        if "unmixing" in res:
+            ab = res["unmixing"].fields["abundance"]
+            figs = [_img(fig(save_image_figure, ab, k, title=str(lbl)))
+                    for k, lbl in enumerate(ab.axes[0].values)]
+            parts.append("<h2>Unmixing against the reference spectra</h2><p>Non-negative "
+                         "least squares with polynomial baseline terms.</p>"
+                         f'<div class="figs">{"".join(figs)}</div>')
+        if model is not None:
+            parts.append(_calibration(model, fig))
+        if "concentration" in res:
+            parts.append(_concentration(res["concentration"], fig))
+        parts.append("<h2>Provenance</h2>" + _table(
+            [(s.name, _short(s.parameters)) for s in provenance], ["step", "parameters"])
+            + _table(sorted(library_versions().items()), ["library", "version"]))
+        parts.append("<h2>Cautions</h2>" + "".join(f'<p class="note">{html.escape(c)}</p>'
+                                                   for c in CAUTIONS))
+    title = f"mapkit report: {html.escape(map_name)}"
+    doc = (f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>{title}</title>"
+           f"<style>{_CSS}</style></head><body><h1>{title}</h1>"
+           f"<p>Written {_dt.datetime.now(_dt.timezone.utc):%Y-%m-%d %H:%M} UTC by mapkit "
+           f"{library_versions().get('mapkit')}.</p>" + "".join(parts) + "</body></html>")
+    with atomic_path(path, overwrite=overwrite) as tmp_path:
+        tmp_path.write_text(doc, encoding="utf-8")
+    return Path(path)
+
+
+def _short(params, limit=160):
+    text = ", ".join(f"{k}={v}" for k, v in params.items() if k != "text")
+    return text if len(text) <= limit else text[:limit] + "…"
+
+
+def _overview(map_name, summary, res):
+    lines = []
+    shape = summary.get("shape")
+    if shape:
+        lines.append(f"The map holds {shape[0]} × {shape[1]} spectra of {shape[2]} channels.")
+    ident = res.get("nmf").summary.get("identification", []) if "nmf" in res else []
+    found = sorted({i["match"] for i in ident if i["match"] != "unmatched"})
+    if found:
+        lines.append("Its components were identified as " + ", ".join(found) + ".")
+    if "kmeans" in res:
+        names = {i["spectrum"]: i["match"] for i in res["kmeans"].summary.get("identification", [])}
+        parts = [f"{names.get(k, k)} {v['fraction_pct']:.1f} %"
+                 for k, v in res["kmeans"].summary["areas"].items()]
+        lines.append("Area fractions of the spectral classes: " + "; ".join(parts) + ".")
+    if "concentration" in res:
+        c = res["concentration"].summary
+        if c.get("mean") is not None:
+            lines.append(f"{c['analyte']} content: mean {c['mean']:.2f} {c['unit']} "
+                         f"(sd {c['sd']:.2f}); {c['quantifiable']} of {c['pixels']} pixels "
+                         f"are quantifiable (at or above LOQ and inside the calibrated range).")
+    return f'<p class="lead">{html.escape(" ".join(lines))}</p>'
+
+
+def _inputs(summary, inputs, recipe_text):
+    rows = [(role, v.get("path", ""), v.get("sha256", "")) for role, v in inputs.items()]
+    bp = summary.get("bad_pixels", {})
+    sp = summary.get("spikes", {})
+    clean = (f"<p>Masked pixels: {bp.get('nonfinite', 0)} non-finite, {bp.get('dead', 0)} dead, "
+             f"{bp.get('saturated', 0)} saturated. Cosmic-ray spikes: "
+             f"{sp.get('channels_replaced', 0)} channels replaced in "
+             f"{sp.get('spectra_touched', 0)} spectra.</p>")
+    notices = "".join(f'<p class="note">{html.escape(n)}</p>' for n in summary.get("notices", []))
+    return ("<h2>Inputs and cleaning</h2>" + _table(rows, ["role", "file", "SHA-256"]) + clean
+            + notices + f"<p>Recipe:</p><pre>{html.escape(recipe_text)}</pre>")
+
+
+def _calibration(model, fig):
+    cal = model.calibration
+    s = cal.summary()
+    rows = [("model", s["model"]), ("response", model.response.kind),
+            ("standards", f"{s['n']} spectra, {s['range'][0]:g}-{s['range'][1]:g} {s['unit']}")]
+    if s["model"] == "pls":
+        rows += [("latent variables", s["n_components"]),
+                 ("RMSECV", cal.rmsecv_[cal.n_components_ - 1]), ("RMSEC", s["rmsec"]),
+                 ("R²", s["r2"])]
+    else:
+        rows += [("coefficients b0, b1(, b2)", ", ".join(f"{c:.5g}" for c in s["coefficients"])),
+                 ("r" if s["model"] == "linear" else "R", s["r"]), ("s_y/x", s["s_yx"])]
+    rows += [("LOD (ICH Q2(R2), 3.3σ/S)", f"{s['lod']:.3g} {s['unit']}"),
+             ("LOQ (ICH Q2(R2), 10σ/S)", f"{s['loq']:.3g} {s['unit']}")]
+    return ("<h2>Calibration</h2>" + _table(rows, ["quantity", "value"])
+            + _img(fig(save_calibration_figure, cal), "wide"))
+
+
+def _concentration(r, fig):
+    f = r.fields["concentration"]
+    s = r.summary
+    from ..core.result import Field
+
+    err = Field("uncertainty", f.errors, f.axes, f.units, long_name="standard uncertainty")
+    figs = [_img(fig(save_image_figure, f, title=f"{s['analyte']} content")),
+            _img(fig(save_image_figure, err, title="standard uncertainty")),
+            _img(fig(save_histogram_figure, f.data, label=f"{s['analyte']} ({s['unit']})"))]
+    stats = [("pixels", s["pixels"]), ("mean", s.get("mean")), ("sd", s.get("sd")),
+             ("RSD %", s.get("rsd_pct"))]
+    stats += [(f"percentile {p}", v) for p, v in s.get("percentiles", {}).items()]
+    stats += [("below LOD", s["below_lod"]), ("below LOQ", s["below_loq"]),
+              ("outside calibrated range", s["outside_range"]),
+              ("quantifiable", s["quantifiable"])]
+    regions = s.get("regions", {})
+    rtable = _table([(name, v["pixels"], v.get("mean"), v.get("sd"), v.get("rsd_pct"),
+                      v["quantifiable"]) for name, v in regions.items()],
+                    ["region", "pixels", "mean", "sd", "RSD %", "quantifiable"]) if regions else ""
+    return (f"<h2>{html.escape(s['analyte'])} content map ({html.escape(s['unit'])})</h2>"
+            f'<div class="figs">{"".join(figs)}</div>' + _table(stats, ["statistic", "value"])
+            + ("<p>By region (classes and drawn regions):</p>" + rtable if rtable else ""))

@@ -1,0 +1,47 @@
+"""Long-form CSV export: one row per pixel, its position in µm, then every image value."""
+
+from __future__ import annotations
+
+import csv
+
+import numpy as np
+
+from ..core.provenance import library_versions
+from .atomic import atomic_path
+
+
+def image_columns(results):
+    """(column name, 2-D array) for every image in the results, stacks split by component."""
+    cols = []
+    for r in results:
+        for fname, fld in r.fields.items():
+            if not fld.is_image or fld.data.ndim > 3:
+                continue
+            unit = f" [{fld.units}]" if fld.units else ""
+            base = r.name if fname in ("image", r.name) else f"{r.name}.{fname}"
+            if fld.data.ndim == 3:
+                for k, label in enumerate(fld.axes[0].values):
+                    cols.append((f"{base}.{label}{unit}", fld.data[k]))
+            else:
+                cols.append((f"{base}{unit}", fld.data))
+                if fld.errors is not None:
+                    cols.append((f"{base}.uncertainty{unit}", fld.errors))
+    return cols
+
+
+def write_long_csv(path, m, results, *, overwrite: bool = False):
+    """Write x (µm), y (µm), mask and every image value per pixel; a comment line records
+    the library versions. Masked or undefined values are empty cells."""
+    cols = image_columns(results)
+    yy, xx = np.meshgrid(m.y, m.x, indexing="ij")
+    with atomic_path(path, overwrite=overwrite) as tmp:
+        with open(tmp, "w", newline="") as fh:
+            fh.write("# mapkit long-form export; versions: " + ", ".join(
+                f"{k} {v}" for k, v in library_versions().items()) + "\n")
+            w = csv.writer(fh)
+            w.writerow(["x [um]", "y [um]", "masked"] + [c[0] for c in cols])
+            flat = [c[1].ravel() for c in cols]
+            for i, (x, y, bad) in enumerate(zip(xx.ravel(), yy.ravel(), m.mask.ravel())):
+                w.writerow([f"{x:.6g}", f"{y:.6g}", int(bad)]
+                           + ["" if not np.isfinite(v[i]) else f"{v[i]:.6g}" for v in flat])
+    return path
