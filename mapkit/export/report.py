@@ -152,9 +152,13 @@ def _overview(map_name, summary, res):
     if "concentration" in res:
         c = res["concentration"].summary
         if c.get("mean") is not None:
-            lines.append(f"{c['analyte']} content: mean {c['mean']:.2f} {c['unit']} "
-                         f"(sd {c['sd']:.2f}); {c['quantifiable']} of {c['pixels']} pixels "
-                         f"are quantifiable (at or above LOQ and inside the calibrated range).")
+            qm = c.get("quantifiable_mean")
+            lines.append(f"{c['quantifiable']} of {c['pixels']} pixels have a quantifiable "
+                         f"{c['analyte']} content (at or above LOQ and inside the calibrated "
+                         f"range)" + (f", mean {qm:.2f} {c['unit']} over those" if qm is not None
+                                      else "") + f"; the mean over all pixels is "
+                         f"{c['mean']:.2f} {c['unit']} (sd {c['sd']:.2f}), flagged values "
+                         "included.")
     return f'<p class="lead">{html.escape(" ".join(lines))}</p>'
 
 
@@ -199,7 +203,7 @@ def _concentration(r, fig):
             _img(fig(save_image_figure, err, title="standard uncertainty")),
             _img(fig(save_histogram_figure, f.data, label=f"{s['analyte']} ({s['unit']})"))]
     stats = [("pixels", s["pixels"]), ("mean", s.get("mean")), ("sd", s.get("sd")),
-             ("RSD %", s.get("rsd_pct"))]
+             ("RSD %", s.get("rsd_pct")), ("mean of quantifiable pixels", s.get("quantifiable_mean"))]
     stats += [(f"percentile {p}", v) for p, v in s.get("percentiles", {}).items()]
     stats += [("below LOD", s["below_lod"]), ("below LOQ", s["below_loq"]),
               ("outside calibrated range", s["outside_range"]),

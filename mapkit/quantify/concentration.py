@@ -54,6 +54,9 @@ def summarise(values, flags) -> dict:
         sd = float(np.std(vals, ddof=1)) if vals.size > 1 else 0.0
         out.update(mean=mean, sd=sd, rsd_pct=100 * sd / abs(mean) if mean else None,
                    percentiles={p: float(np.percentile(vals, p)) for p in (5, 25, 50, 75, 95)})
+        ok = ((flags & (BELOW_LOQ | OUTSIDE_RANGE)) == 0) & good
+        if ok.any():
+            out["quantifiable_mean"] = float(np.mean(values[ok]))
         counts, edges = np.histogram(vals, bins=20)
         out["histogram"] = {"counts": counts.tolist(), "edges": edges.tolist()}
     return out
