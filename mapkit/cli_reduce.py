@@ -78,81 +78,65 @@ def _write(a, m, results, lines):
     print(f"wrote     {len(written)} files to {out}/ (results in {written[0]})")
 
 
+def _identified(res):
+    return [f"  {r['spectrum']}: {r['match']} (HQI {r['score']:.3f}"
+            + (f", best candidate {r['best_candidate']}" if r["match"] == "unmatched" else "")
+            + ")" for r in res.summary.get("identification", [])]
+
+
 def cmd_components(a):
-    from .reduce import MCRALS, NMFComponents, PCAScores, match_library
+    from .pipeline import run_method
 
     m, library = _prepare(a)
+    res = run_method(m, a.method, n=a.n, seed=a.seed, library=library, init=a.init,
+                     closure=a.closure, min_score=a.min_score)[0]
+    s = res.summary
     if a.method == "pca":
-        est = PCAScores(n_components=a.n, random_state=a.seed).fit(m)
-        res = est.result(m)
-        cum = res.summary["cumulative_pct"]
         lines = ["PCA explained variance (cumulative %): " +
-                 ", ".join(f"PC{i + 1} {v:.1f}" for i, v in enumerate(cum))]
-        return _write(a, m, [res], lines)
-    if a.method == "nmf":
-        est = NMFComponents(n_components=a.n, init=a.init, random_state=a.seed).fit(m)
-        res = est.result(m, est.fit_images_)
-        lines = [f"NMF: {a.n} components, {est.n_iter_} iterations"]
+                 ", ".join(f"PC{i + 1} {v:.1f}" for i, v in enumerate(s["cumulative_pct"]))]
+    elif a.method == "nmf":
+        lines = [f"NMF: {a.n} components, {s['n_iter']} iterations"]
     else:
-        est = MCRALS(n_components=a.n, init=a.init if a.init != "nndsvda" else "vca",
-                     closure=a.closure, random_state=a.seed).fit(m)
-        res = est.result(m, est.fit_images_)
-        lines = [f"MCR-ALS: {a.n} components, lack of fit {est.lack_of_fit_:.2f} %, explained "
-                 f"variance {est.explained_variance_:.2f} %, {est.n_iter_} iterations"]
-    if library:
-        names = [f"component {i + 1}" for i in range(a.n)]
-        matches = match_library(est.components_, m.raman_shift, library, names=names,
-                                min_score=a.min_score)
-        res.summary["identification"] = matches
-        lines += [f"  {r['spectrum']}: {r['match']} (HQI {r['score']:.3f}"
-                  + (f", best candidate {r['best_candidate']}" if r["match"] == "unmatched" else "")
-                  + ")" for r in matches]
-    return _write(a, m, [res], lines)
+        lines = [f"MCR-ALS: {a.n} components, lack of fit {s['lack_of_fit_pct']:.2f} %, "
+                 f"explained variance {s['explained_variance_pct']:.2f} %, {s['n_iter']} "
+                 "iterations"]
+    return _write(a, m, [res], lines + _identified(res))
 
 
 def cmd_classes(a):
     from .preprocess import normalise_map
-    from .reduce import KMeansClasses, class_number_guidance, match_library
+    from .reduce import class_number_guidance
+    from .pipeline import run_method
 
     m, library = _prepare(a)
-    normed = normalise_map(m, method="vector")
     lines = []
     if a.guide:
         lo, hi = a.guide
-        rows = class_number_guidance(normed, range(lo, hi + 1), random_state=a.seed)
+        rows = class_number_guidance(normalise_map(m, method="vector"), range(lo, hi + 1),
+                                     random_state=a.seed)
         lines.append("   k   inertia  silhouette  Davies-Bouldin")
         lines += [f"{r['k']:4d} {r['inertia']:9.3g} {r['silhouette']:11.3f} "
                   f"{r['davies_bouldin']:15.3f}" for r in rows]
         best = max(rows, key=lambda r: r["silhouette"])["k"] if rows else None
         lines.append(f"highest silhouette at k = {best}")
-    km = KMeansClasses(n_classes=a.n, method=a.method, smooth=a.smooth,
-                       random_state=a.seed).fit(normed)
-    res = km.result(normed, name="classes")
-    for k, (name, v) in enumerate(res.summary["areas"].items()):
+    res = run_method(m, a.method, n=a.n, seed=a.seed, library=library, smooth=a.smooth,
+                     min_score=a.min_score)[0]
+    for name, v in res.summary["areas"].items():
         lines.append(f"{name}: {v['fraction_pct']:.1f} % ({v['area_um2']:.0f} um2), "
                      f"{v['domains']} domains, median ECD {v.get('ecd_median_um', 0):.1f} um")
-    if library:
-        matches = match_library(km.class_mean_, normed.raman_shift, library,
-                                names=list(res.summary["areas"]), min_score=a.min_score)
-        res.summary["identification"] = matches
-        lines += [f"  {r['spectrum']}: {r['match']} (HQI {r['score']:.3f})" for r in matches]
-    return _write(a, m, [res], lines)
+    return _write(a, m, [res], lines + _identified(res))
 
 
 def cmd_unmix(a):
-    import warnings
-
-    from .reduce import ReferenceUnmixing
+    from .pipeline import run_method
 
     m, library = _prepare(a)
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
-        un = ReferenceUnmixing(library, baseline_order=None if a.baseline_order < 0
-                               else a.baseline_order, method=a.method).fit(m)
-    res = un.result(m)
+    res = run_method(m, "fcls" if a.method == "fcls" else "unmix", library=library,
+                     baseline_order=None if a.baseline_order < 0 else a.baseline_order)[0]
     ab = res.fields["abundance"].data
-    lines = [f"notice    {w.message}" for w in caught]
-    lines += [f"{n}: mean abundance {np.nanmean(ab[i]):.3g}" for i, n in enumerate(un.names_)]
+    names = [str(v) for v in res.fields["abundance"].axes[0].values]
+    lines = [f"notice    {w}" for w in res.summary.get("notices", [])]
+    lines += [f"{n}: mean abundance {np.nanmean(ab[i]):.3g}" for i, n in enumerate(names)]
     lines.append(f"residual RMS median {np.nanmedian(res.fields['residual'].data):.3g} counts")
     return _write(a, m, [res], lines)
 

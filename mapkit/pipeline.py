@@ -251,3 +251,64 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
         written.append(written_model)
     return {"written": [Path(p) for p in written], "summary": summary, "results": results,
             "calibration": calibration, "model": model}
+
+
+METHODS = ("nmf", "mcr", "pca", "kmeans", "minibatch", "ward", "unmix", "fcls", "content")
+
+
+def run_method(m, method: str, *, n: int = 4, seed: int = 0, library=None, model=None,
+               init: str = "nndsvda", closure: bool = False, smooth: float = 0.0,
+               baseline_order: int | None = 5, min_score: float = 0.9):
+    """Run one reduction or quantification method on a cleaned map; returns its Results.
+
+    The command line's ``components``, ``classes`` and ``unmix`` subcommands and the
+    napari analysis panel all call this, so they give the same numbers.
+    """
+    import warnings
+
+    from .preprocess import normalise_map
+    from .reduce import MCRALS, KMeansClasses, NMFComponents, PCAScores, ReferenceUnmixing
+    from .reduce import match_library
+
+    if method not in METHODS:
+        raise MapkitError(f"unknown method {method!r}", field="method",
+                          fix=f"use one of {', '.join(METHODS)}")
+    names = [f"component {i + 1}" for i in range(n)]
+    if method == "pca":
+        return [PCAScores(n_components=n, random_state=seed).fit(m).result(m)]
+    if method in ("nmf", "mcr"):
+        if method == "nmf":
+            est = NMFComponents(n_components=n, init=init, random_state=seed).fit(m)
+        else:
+            est = MCRALS(n_components=n, init=init if init != "nndsvda" else "vca",
+                         closure=closure, random_state=seed).fit(m)
+        res = est.result(m, est.fit_images_)
+        if library:
+            res.summary["identification"] = match_library(est.components_, m.raman_shift,
+                                                          library, names=names,
+                                                          min_score=min_score)
+        return [res]
+    if method in ("kmeans", "minibatch", "ward"):
+        normed = normalise_map(m, method="vector")
+        km = KMeansClasses(n_classes=n, method=method, smooth=smooth, random_state=seed)
+        res = km.fit(normed).result(normed, name="classes")
+        if library:
+            res.summary["identification"] = match_library(km.class_mean_, m.raman_shift, library,
+                                                          names=list(res.summary["areas"]),
+                                                          min_score=min_score)
+        return [res]
+    if method in ("unmix", "fcls"):
+        if not library:
+            raise MapkitError("unmixing needs reference spectra", field="library",
+                              fix="choose a library folder")
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            un = ReferenceUnmixing(library, baseline_order=baseline_order,
+                                   method="fcls" if method == "fcls" else "nnls").fit(m)
+        res = un.result(m)
+        res.summary["notices"] = [str(w.message) for w in caught]
+        return [res]
+    if model is None:
+        raise MapkitError("a content map needs a quantification model", field="model",
+                          fix="make one with 'mapkit calibrate' and choose its file")
+    return [model.apply(m, library)]

@@ -88,3 +88,141 @@ def test_screenshot_is_not_blank(make_napari_viewer, sample_map_path, tmp_path, 
     from imageio import imwrite
 
     imwrite(tmp_path / "viewer.png", img)
+
+
+def _viewer_with_map(make_napari_viewer, path):
+    viewer = make_napari_viewer()
+    viewer.open(str(path), plugin="mapkit-napari")
+    return viewer
+
+
+def test_baseline_overlay_comes_from_the_library(make_napari_viewer, sample_map_path, sample_map):
+    from mapkit.preprocess.baseline import arpls_baseline
+    from mapkit_napari._panel import SpectrumPanel
+
+    viewer = _viewer_with_map(make_napari_viewer, sample_map_path)
+    panel = SpectrumPanel(viewer)
+    panel.show_baseline.setChecked(True)
+    panel.show_corrected.setChecked(True)
+    viewer.cursor.position = (sample_map.y[10], sample_map.x[20])
+    spec = sample_map.intensity[10, 20].astype(float)
+    base = arpls_baseline(spec, sample_map.raman_shift, lam=1e6)
+    np.testing.assert_allclose(panel.baseline_line.get_ydata(), base)
+    np.testing.assert_allclose(panel.corrected_line.get_ydata(), spec - base)
+
+
+def test_dragged_range_makes_a_band_image(make_napari_viewer, sample_map_path, sample_map):
+    from mapkit.reduce import band_image
+    from mapkit_napari._panel import SpectrumPanel
+
+    viewer = _viewer_with_map(make_napari_viewer, sample_map_path)
+    panel = SpectrumPanel(viewer)
+    layer = panel.band_from_range(845.0, 872.0)
+    expected = band_image(sample_map, 845.0, 872.0).fields["image"].data
+    np.testing.assert_allclose(layer.data, expected.astype(np.float32), rtol=1e-6)
+    np.testing.assert_allclose(layer.scale, (2.0, 2.0))
+
+
+def test_region_mean_spectrum(make_napari_viewer, sample_map_path, sample_map):
+    from mapkit.reduce import region_spectrum
+    from mapkit_napari._panel import SpectrumPanel
+
+    viewer = _viewer_with_map(make_napari_viewer, sample_map_path)
+    panel = SpectrumPanel(viewer)
+    labels = np.zeros((48, 64), np.int32)
+    labels[10:20, 30:40] = 3
+    lab_layer = viewer.add_labels(labels, scale=(2.0, 2.0))
+    lab_layer.selected_label = 3
+    viewer.layers.selection.active = lab_layer
+    mean, sd, n = panel.plot_region()
+    ref_mean, ref_sd, ref_n = region_spectrum(sample_map, labels == 3)
+    assert n == ref_n == 100
+    np.testing.assert_allclose(mean, ref_mean)
+
+
+def test_analysis_panel_runs_in_a_worker_and_exports(make_napari_viewer, sample_map_path,
+                                                     sample_dir, qtbot, tmp_path):
+    from mapkit.read.nexus import read_result_objects
+    from mapkit_napari._analysis import AnalysisPanel
+
+    viewer = _viewer_with_map(make_napari_viewer, sample_map_path)
+    panel = AnalysisPanel(viewer)
+    panel.method.setCurrentText("Components: NMF")
+    panel.library.setText(str(sample_dir / "library"))
+    worker = panel.run()
+    with qtbot.waitSignal(worker.finished, timeout=120000):
+        pass
+    names = [layer.name for layer in viewer.layers]
+    for k in range(1, 5):
+        assert f"nmf: component {k}" in names
+    assert "acetaminophen" in panel.status.text()
+    layer = viewer.layers["nmf: component 1"]
+    np.testing.assert_allclose(layer.scale, (2.0, 2.0))
+    written = panel.export_results(tmp_path)
+    assert (tmp_path / "results.h5") in written
+    res = {r.name: r for r in read_result_objects(tmp_path / "results.h5")}
+    np.testing.assert_array_equal(res["nmf"].fields["images"].data[0],
+                                  panel.last[1][0].fields["images"].data[0])
+
+
+def test_worker_errors_reach_the_user(make_napari_viewer, sample_map_path, qtbot):
+    from mapkit_napari._analysis import AnalysisPanel
+
+    viewer = _viewer_with_map(make_napari_viewer, sample_map_path)
+    panel = AnalysisPanel(viewer)
+    panel.method.setCurrentText("Content map (saved model)")
+    worker = panel.run()
+    with qtbot.waitSignal(worker.finished, timeout=60000):
+        pass
+    assert panel.status.text().startswith("failed:")
+    assert "a content map needs a quantification model" in panel.status.text()
+    assert "\n" not in panel.status.text()
+    assert panel.run_button.isEnabled()
+
+
+def test_writer_keeps_the_scale(make_napari_viewer, sample_map_path, tmp_path):
+    import tifffile
+
+    viewer = _viewer_with_map(make_napari_viewer, sample_map_path)
+    out = viewer.layers[0].save(str(tmp_path / "mean.tif"), plugin="mapkit-napari")
+    with tifffile.TiffFile(out[0] if isinstance(out, list) else out) as tif:
+        xres = tif.pages[0].tags["XResolution"].value
+        assert xres[0] / xres[1] == pytest.approx(0.5)
+
+
+def test_reader_opens_text_tables(make_napari_viewer, tmp_path):
+    rows = ["x,y,100,200,300"] + [f"{ix},{iy},1,{ix + iy},3" for iy in range(3) for ix in range(4)]
+    (tmp_path / "scan.csv").write_text("\n".join(rows) + "\n")
+    viewer = make_napari_viewer()
+    layers = viewer.open(str(tmp_path / "scan.csv"), plugin="mapkit-napari")
+    assert layers[0].data.shape == (3, 4)
+
+
+def test_screenshot_with_both_panels(make_napari_viewer, sample_map_path, sample_dir, qtbot,
+                                     tmp_path):
+    from mapkit_napari._analysis import AnalysisPanel
+    from mapkit_napari._panel import SpectrumPanel
+
+    viewer = make_napari_viewer(show=True)
+    viewer.open(str(sample_map_path), plugin="mapkit-napari")
+    spectra = SpectrumPanel(viewer)
+    analysis = AnalysisPanel(viewer)
+    viewer.window.add_dock_widget(spectra, area="right", name="Pixel spectra")
+    viewer.window.add_dock_widget(analysis, area="right", name="Map analysis")
+    viewer.window._qt_window.resize(1500, 950)
+    analysis.method.setCurrentText("Classes: k-means")
+    analysis.library.setText(str(sample_dir / "library"))
+    worker = analysis.run()
+    with qtbot.waitSignal(worker.finished, timeout=120000):
+        pass
+    viewer.cursor.position = (40.0, 60.0)
+    qtbot.wait(300)
+    img = viewer.screenshot(canvas_only=False, flash=False)
+    assert img.std() > 10
+    from imageio import imwrite
+
+    import os
+
+    imwrite(tmp_path / "viewer.png", img)
+    if os.environ.get("MAPKIT_SCREENSHOT_DIR"):
+        imwrite(os.path.join(os.environ["MAPKIT_SCREENSHOT_DIR"], "viewer_panels.png"), img)

@@ -138,6 +138,12 @@ class Recipe:
         despiking, binning): for stacks of separate spectra such as calibration standards.
         """
         extras = {}
+        for name, m, extra in self.iter_apply(m, spectra_only=spectra_only, progress=progress):
+            extras[name] = extra
+        return m, extras
+
+    def iter_apply(self, m, *, spectra_only: bool = False, progress=None):
+        """Run the steps one by one, yielding (step name, map after it, by-products)."""
         m = m.derive(m.intensity, Step("recipe", {"name": self.name, "source": self.source,
                                                    "text": self.text}))
         for name, params in self.steps:
@@ -147,8 +153,7 @@ class Recipe:
             if progress:
                 progress(name)
             m, extra = get_step(name).run(m, **params)
-            extras[name] = extra
-        return m, extras
+            yield name, m, extra
 
 
 def _line_of(text, pattern):

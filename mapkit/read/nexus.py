@@ -99,3 +99,27 @@ def read_results(path) -> dict[str, dict]:
                           "parameters": json.loads(rgroup.attrs.get("parameters", "{}")),
                           "fields": fields}
     return out
+
+
+def read_result_objects(path) -> list:
+    """The results of a file as :class:`~mapkit.core.result.Result` objects (axes, units, errors)."""
+    from ..core.result import Axis, Field, Result
+
+    out = []
+    for name, r in read_results(path).items():
+        fields = {}
+        for fname, f in r["fields"].items():
+            axes = []
+            for aname, values in f["axes"].items():
+                vals = np.array([v.decode() if isinstance(v, bytes) else v for v in values]) \
+                    if values.dtype.kind in "SO" else values
+                axes.append(Axis(aname, vals, "um" if aname in ("x", "y") else
+                                 "1/cm" if aname == "raman_shift" else ""))
+            units = f["units"].decode() if isinstance(f["units"], bytes) else str(f["units"])
+            try:
+                fields[fname] = Field(f["signal"], f["data"], tuple(axes), units,
+                                      errors=f["errors"])
+            except ValueError:
+                continue  # a group whose axes are not all stored: not an image or spectrum
+        out.append(Result(name, str(r["method"]), r["parameters"], fields))
+    return out

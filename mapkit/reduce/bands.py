@@ -80,9 +80,18 @@ def band_centroid(block, shift, lo: float, hi: float, *, local_baseline: bool = 
 
 
 def _measure(m: RamanMap, lo, hi, measure, local_baseline):
-    cube = np.asarray(m.load().intensity, dtype=np.float64)
     func = {"area": band_integral, "height": band_height, "centroid": band_centroid}[measure]
-    img = func(cube, m.raman_shift, lo, hi, local_baseline=local_baseline)
+    crop_indices(m.raman_shift, lo, hi)   # fail before reading if the band is outside
+    shift = m.raman_shift
+    if m.is_lazy:  # chunk by chunk: a band image of a cube larger than memory
+        data = m.intensity.rechunk({2: -1})
+        img = data.map_blocks(lambda b: func(np.asarray(b, np.float64), shift, lo, hi,
+                                             local_baseline=local_baseline),
+                              drop_axis=2, dtype=np.float64).compute()
+    else:
+        img = func(np.asarray(m.intensity, dtype=np.float64), shift, lo, hi,
+                   local_baseline=local_baseline)
+    img = np.array(img, dtype=np.float64)
     img[m.mask] = np.nan
     return img
 

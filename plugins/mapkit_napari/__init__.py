@@ -8,11 +8,13 @@ def open_with_panels(path):
     """Open ``path`` in a new napari viewer with the mapkit panels docked; returns the viewer."""
     import napari
 
+    from ._analysis import AnalysisPanel
     from ._panel import SpectrumPanel
 
     viewer = napari.Viewer(title="mapkit")
     viewer.open(str(path), plugin="mapkit-napari")
     viewer.window.add_dock_widget(SpectrumPanel(viewer), name="Pixel spectra", area="right")
+    viewer.window.add_dock_widget(AnalysisPanel(viewer), name="Map analysis", area="right")
     viewer.scale_bar.visible = True
     return viewer
 

@@ -1,15 +1,17 @@
-"""Dock panel: the spectrum of the pixel under the cursor, and pinned spectra to compare.
+"""Dock panel: the spectrum under the cursor, pinned spectra, baseline overlays, region means,
+and band images made by dragging a range on the plot.
 
-The panel reads spectra through :meth:`mapkit.RamanMap.spectrum` (one pixel at
-a time from the lazily opened file) and only draws them.
+The panel reads spectra through :meth:`mapkit.RamanMap.spectrum` (one pixel at a time from the
+lazily opened file); baselines, band images and region statistics come from the mapkit library.
 """
 
 from __future__ import annotations
 
 import numpy as np
-from qtpy.QtWidgets import QHBoxLayout, QLabel, QPushButton, QVBoxLayout, QWidget
+from qtpy.QtWidgets import (QCheckBox, QHBoxLayout, QLabel, QPushButton, QVBoxLayout, QWidget)
 
 _PIN_COLOURS = ("#E69F00", "#56B4E9", "#009E73", "#F0E442", "#CC79A7", "#D55E00")
+_BG, _FG = "#262930", "#d0d3d8"   # close to napari's dark theme
 
 
 class SpectrumPanel(QWidget):
@@ -19,39 +21,58 @@ class SpectrumPanel(QWidget):
         super().__init__(parent)
         from matplotlib.backends.backend_qtagg import FigureCanvasQTAgg
         from matplotlib.figure import Figure
+        from matplotlib.widgets import SpanSelector
 
         self.viewer = napari_viewer
         self._maps: dict[str, object] = {}
-        self.current = None          # (layer name, iy, ix) under the cursor
+        self.current = None          # (layer, iy, ix) under the cursor
         self.pinned: list[tuple] = []
+        self.region_lines: list = []
 
         self.figure = Figure(figsize=(4, 3), layout="constrained")
         self.canvas = FigureCanvasQTAgg(self.figure)
         self.ax = self.figure.add_subplot()
         self.line, = self.ax.plot([], [], color="#f0f0f0", lw=1.0, label="under cursor")
-        self.status = QLabel("Move the cursor over a map layer.")
+        self.baseline_line, = self.ax.plot([], [], color="#E69F00", lw=1.0, ls="--",
+                                           label="baseline (arPLS)")
+        self.corrected_line, = self.ax.plot([], [], color="#56B4E9", lw=1.0,
+                                            label="after baseline")
+        self.span = SpanSelector(self.ax, self.band_from_range, "horizontal", useblit=False,
+                                 props={"alpha": 0.25, "facecolor": "#009E73"},
+                                 interactive=False, minspan=1.0)
+        self.status = QLabel("Move the cursor over a map layer; drag on the plot to make a "
+                             "band image.")
+        self.status.setWordWrap(True)
+        self.show_baseline = QCheckBox("Baseline")
+        self.show_corrected = QCheckBox("After baseline")
+        for box in (self.show_baseline, self.show_corrected):
+            box.toggled.connect(lambda _=None: self._on_cursor())
+        self.region_button = QPushButton("Region mean ± sd")
+        self.region_button.setToolTip("Mean spectrum of the selected label, or of the last "
+                                      "shape drawn in the selected shapes layer")
+        self.region_button.clicked.connect(self.plot_region)
         self.clear_button = QPushButton("Clear pinned")
         self.clear_button.clicked.connect(self.clear_pinned)
         row = QHBoxLayout()
-        row.addWidget(self.status, 1)
-        row.addWidget(self.clear_button)
+        for w in (self.show_baseline, self.show_corrected, self.region_button, self.clear_button):
+            row.addWidget(w)
         layout = QVBoxLayout(self)
         layout.addWidget(self.canvas, 1)
         layout.addLayout(row)
+        layout.addWidget(self.status)
         self._style()
         napari_viewer.cursor.events.position.connect(self._on_cursor)
         napari_viewer.mouse_drag_callbacks.append(self._on_click)
 
     # -- appearance -----------------------------------------------------------
     def _style(self):
-        bg, fg = "#262930", "#d0d3d8"   # close to napari's dark theme
-        self.figure.set_facecolor(bg)
-        self.ax.set_facecolor(bg)
+        self.figure.set_facecolor(_BG)
+        self.ax.set_facecolor(_BG)
         for spine in self.ax.spines.values():
-            spine.set_color(fg)
-        self.ax.tick_params(colors=fg, labelsize=8)
-        self.ax.set_xlabel("Raman shift (cm⁻¹)", color=fg, fontsize=9)
-        self.ax.set_ylabel("intensity (counts)", color=fg, fontsize=9)
+            spine.set_color(_FG)
+        self.ax.tick_params(colors=_FG, labelsize=8)
+        self.ax.set_xlabel("Raman shift (cm⁻¹)", color=_FG, fontsize=9)
+        self.ax.set_ylabel("intensity (counts)", color=_FG, fontsize=9)
 
     # -- data -----------------------------------------------------------------
     def _map_layer(self):
@@ -66,7 +87,7 @@ class SpectrumPanel(QWidget):
                 return layer
         return None
 
-    def _map(self, layer):
+    def map_for(self, layer):
         from mapkit.read import open_map
 
         path = layer.metadata["mapkit_path"]
@@ -86,7 +107,7 @@ class SpectrumPanel(QWidget):
         return layer, iy, ix
 
     def spectrum(self, layer, iy, ix):
-        m = self._map(layer)
+        m = self.map_for(layer)
         return m.raman_shift, m.spectrum(iy, ix), m
 
     # -- events ---------------------------------------------------------------
@@ -96,8 +117,17 @@ class SpectrumPanel(QWidget):
             return
         layer, iy, ix = hit
         shift, spec, m = self.spectrum(layer, iy, ix)
-        self.current = (layer.name, iy, ix)
+        self.current = (layer, iy, ix)
         self.line.set_data(shift, spec)
+        base = None
+        if self.show_baseline.isChecked() or self.show_corrected.isChecked():
+            from mapkit.preprocess.baseline import arpls_baseline
+
+            base = arpls_baseline(spec, shift, lam=1e6)
+        self.baseline_line.set_data((shift, base) if self.show_baseline.isChecked()
+                                    else ([], []))
+        self.corrected_line.set_data((shift, spec - base) if self.show_corrected.isChecked()
+                                     else ([], []))
         flag = "  (masked pixel)" if m.mask[iy, ix] else ""
         self.status.setText(f"x = {m.x[ix]:.1f} µm, y = {m.y[iy]:.1f} µm  "
                             f"(column {ix}, row {iy}){flag}")
@@ -121,13 +151,88 @@ class SpectrumPanel(QWidget):
         for *_, line in self.pinned:
             line.remove()
         self.pinned.clear()
+        for artist in self.region_lines:
+            artist.remove()
+        self.region_lines.clear()
         self._redraw()
+
+    def region_mask(self):
+        """Boolean (ny, nx) region from the selected labels or shapes layer, or None."""
+        from napari.layers import Labels, Shapes
+
+        from mapkit.quantify import polygon_mask
+
+        layer = self.viewer.layers.selection.active
+        target = self._map_layer_excluding(layer)
+        if target is None:
+            return None, None
+        m = self.map_for(target)
+        if isinstance(layer, Labels):
+            if layer.data.shape != m.mask.shape:
+                return None, None
+            return layer.data == layer.selected_label, f"{layer.name} label {layer.selected_label}"
+        if isinstance(layer, Shapes) and len(layer.data):
+            verts = np.asarray(layer.data[-1])[:, -2:]
+            world = np.array([layer.data_to_world(v) for v in verts])[:, -2:]
+            return polygon_mask(m.x, m.y, world[:, ::-1]), f"{layer.name} shape"
+        return None, None
+
+    def _map_layer_excluding(self, layer):
+        for candidate in self.viewer.layers:
+            if candidate is not layer and "mapkit_path" in candidate.metadata \
+                    and candidate.data.ndim == 2:
+                return candidate
+        return self._map_layer()
+
+    def plot_region(self):
+        from mapkit.errors import MapkitError
+        from mapkit.reduce import region_spectrum
+
+        region, label = self.region_mask()
+        if region is None:
+            self.status.setText("Select a labels layer (with a label picked) or a shapes layer "
+                                "with a drawn shape first.")
+            return None
+        m = self.map_for(self._map_layer_excluding(self.viewer.layers.selection.active))
+        try:
+            mean, sd, n = region_spectrum(m, region)
+        except MapkitError as exc:
+            self.status.setText(str(exc))
+            return None
+        colour = _PIN_COLOURS[(len(self.pinned) + len(self.region_lines)) % len(_PIN_COLOURS)]
+        line, = self.ax.plot(m.raman_shift, mean, color=colour, lw=1.2,
+                             label=f"{label}: mean of {n}")
+        band = self.ax.fill_between(m.raman_shift, mean - sd, mean + sd, color=colour, alpha=0.25)
+        self.region_lines += [line, band]
+        self._redraw()
+        return mean, sd, n
+
+    def band_from_range(self, lo, hi):
+        """Make a band-integral image layer from a shift range dragged on the plot."""
+        from mapkit.reduce import band_image
+
+        layer = self._map_layer()
+        if layer is None or hi - lo <= 0:
+            return None
+        m = self.map_for(layer)
+        r = band_image(m, float(lo), float(hi), name=f"band {lo:.0f}-{hi:.0f}")
+        from ._layers import common_kwargs, result_layers
+
+        data, kw, kind = result_layers([r], common_kwargs(m, layer.metadata["mapkit_path"]),
+                                       visible=True)[0]
+        new = self.viewer.add_image(data, **kw)
+        self.status.setText(f"band image {lo:.0f}-{hi:.0f} cm⁻¹ added (local linear baseline)")
+        return new
 
     def _redraw(self):
         self.ax.relim()
         self.ax.autoscale_view()
-        handles = [self.line] + [p[-1] for p in self.pinned]
-        legend = self.ax.legend(handles=handles, fontsize=7, loc="upper right", framealpha=0.3)
-        for text in legend.get_texts():
-            text.set_color("#d0d3d8")
+        handles = [h for h in (self.line, self.baseline_line, self.corrected_line)
+                   if len(h.get_xdata())] + [p[-1] for p in self.pinned] + \
+            [a for a in self.region_lines if hasattr(a, "get_xdata")]
+        if handles:
+            legend = self.ax.legend(handles=handles, fontsize=7, loc="upper right",
+                                    framealpha=0.3)
+            for text in legend.get_texts():
+                text.set_color(_FG)
         self.canvas.draw_idle()

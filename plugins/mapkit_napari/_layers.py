@@ -1,0 +1,71 @@
+"""Turn mapkit maps and Results into napari layer data (physical scale in µm).
+
+Only arranging: every number comes from the mapkit library.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+
+def robust_limits(img):
+    """Display range from the 1st to 99th percentile, so one hot pixel doesn't wash out the map."""
+    finite = np.asarray(img)[np.isfinite(img)]
+    if finite.size == 0:
+        return (0.0, 1.0)
+    lo, hi = np.percentile(finite, [1, 99])
+    return (float(lo), float(hi if hi > lo else lo + 1))
+
+
+def common_kwargs(m, path):
+    dy, dx = m.pixel_size
+    return {"scale": (dy, dx), "translate": (float(m.y[0]), float(m.x[0])), "units": ("um", "um"),
+            "metadata": {"mapkit_path": str(path)}}
+
+
+def mean_image_layer(m, path, name):
+    # the mean over the shift axis is computed chunk-wise by Dask (the cube stays on disk)
+    mean = np.asarray(m.intensity.mean(axis=-1).compute() if m.is_lazy
+                      else m.intensity.mean(axis=-1), dtype=np.float32)
+    return (mean, {**common_kwargs(m, path), "name": f"{name}: mean intensity",
+                   "colormap": "gray", "contrast_limits": robust_limits(mean)}, "image")
+
+
+def result_layers(results, common, *, visible: bool = False):
+    """Layer data for every image field of the given Results."""
+    layers = []
+    for r in results:
+        for fname, f in r.fields.items():
+            if not f.is_image or f.signal in ("flags", "domain", "replaced", "bad_pixel"):
+                continue
+            suffix = f" ({f.units})" if f.units else ""
+            meta = {**common.get("metadata", {}), "mapkit_result": r.name,
+                    "mapkit_field": fname, "units": f.units}
+            kw = {**common, "metadata": meta, "visible": visible}
+            if f.data.ndim == 3:   # a stack: one layer per component
+                for k, label in enumerate(f.axes[0].values):
+                    plane = np.asarray(f.data[k], np.float32)
+                    layers.append((plane, {**kw, "name": f"{r.name}: {label}",
+                                           "colormap": "viridis",
+                                           "contrast_limits": robust_limits(plane)}, "image"))
+            elif f.signal == "labels":  # napari labels: 0 is background, so shift by one
+                from mapkit.export.figures import CLASS_COLOURS
+
+                data = (np.asarray(f.data) + 1).astype(np.int32)
+                # the same colour-blind-safe colours as mapkit's class figures
+                colours = {None: "transparent", 0: "transparent"}
+                colours.update({k + 1: CLASS_COLOURS[k % len(CLASS_COLOURS)]
+                                for k in range(int(data.max()))})
+                layers.append((data, {**kw, "name": f"{r.name}: classes", "opacity": 0.7,
+                                      "colormap": colours}, "labels"))
+            else:
+                img = np.asarray(f.data, np.float32)
+                layers.append((img, {**kw, "name": f"{r.name}: {fname}{suffix}",
+                                     "colormap": "viridis",
+                                     "contrast_limits": robust_limits(img)}, "image"))
+                if f.errors is not None:
+                    err = np.asarray(f.errors, np.float32)
+                    layers.append((err, {**kw, "name": f"{r.name}: {fname} uncertainty{suffix}",
+                                         "colormap": "magma",
+                                         "contrast_limits": robust_limits(err)}, "image"))
+    return layers
