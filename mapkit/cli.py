@@ -66,6 +66,12 @@ def _add_analysis_options(p, default_out="mapkit-output"):
     p.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
     p.add_argument("--recipe", help="TOML recipe of cleaning steps (default: mask bad pixels, "
                                     "despike, arPLS baseline; see 'mapkit steps')")
+    big = p.add_argument_group("maps larger than memory")
+    big.add_argument("--chunked", action="store_true",
+                     help="process chunk by chunk even if the map would fit in memory")
+    big.add_argument("--workers", type=_positive_int,
+                     help="run on a local Dask cluster of this many worker processes")
+    big.add_argument("--scheduler", help="address of a running Dask scheduler (tcp://host:port)")
     q = p.add_argument_group("quantification")
     q.add_argument("--model-file", help="saved quantification model (from 'mapkit calibrate')")
     q.add_argument("--calibration-model", choices=("linear", "quadratic", "pls"),
@@ -111,6 +117,10 @@ def _run_analysis(a, map_path, library, standards, bands):
         s.bands = bands
     model = QuantModel.load(a.model_file) if a.model_file else None
     regions = dict(parse_region(r) for r in a.region or [])
+    mode = _choose_mode(a, map_path)
+    if mode:
+        return _run_large(a, map_path, recipe, mode, library, standards, model)
+    print("mode      in memory (the map fits comfortably)")
     out = analyse(map_path, a.out, library=library, standards=standards, settings=s,
                   overwrite=a.overwrite, progress=not a.quiet, figures=not a.no_figures,
                   open_kwargs=_open_kwargs(a) if hasattr(a, "dataset") else None, recipe=recipe,
@@ -147,6 +157,43 @@ def _run_analysis(a, map_path, library, standards, bands):
     for p in out["written"]:
         if p.suffix in (".h5", ".json", ".html"):
             print(f"          {p}")
+    return out
+
+
+def _choose_mode(a, map_path):
+    """None for the in-memory path, else the reason to go chunk-wise."""
+    from .read import open_map
+    from .stream import fits_in_memory
+
+    if getattr(a, "workers", None) or getattr(a, "scheduler", None):
+        return "a Dask cluster was asked for"
+    if getattr(a, "chunked", False):
+        return "--chunked"
+    m = open_map(map_path, **_open_kwargs(a)) if hasattr(a, "dataset") else open_map(map_path)
+    if not fits_in_memory(m):
+        return (f"the cube ({m.n_pixels * m.shape[2] * 4 / 2**30:.1f} GiB) would not fit "
+                "comfortably in memory")
+    return None
+
+
+def _run_large(a, map_path, recipe, reason, library, standards, model):
+    from .stream import analyse_large
+
+    if library or standards or model or a.band:
+        raise MapkitError("chunk-wise runs do not yet unmix, quantify or make band images",
+                          field="--library/--standards/--model-file/--band",
+                          fix="run those on a cropped or binned map, or drop the options")
+    print(f"mode      chunk-wise ({reason})")
+    out = analyse_large(map_path, a.out, recipe=recipe, n_components=a.components,
+                        n_classes=a.classes, seed=a.seed, workers=a.workers,
+                        address=a.scheduler, overwrite=a.overwrite, figures=not a.no_figures,
+                        progress=not a.quiet)
+    s = out["summary"]
+    print(f"scheduler {s['scheduler']}, bands of {s['band_rows']} rows, {s['seconds']:.1f} s")
+    areas = s["results"].get("kmeans", {}).get("areas", {})
+    if areas:
+        print("classes   " + ", ".join(f"{k} {v['fraction_pct']:.1f} %" for k, v in areas.items()))
+    print(f"wrote     {len(out['written'])} files to {Path(a.out)}/")
     return out
 
 

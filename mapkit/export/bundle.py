@@ -24,7 +24,7 @@ def safe_name(name: str) -> str:
 
 def write_bundle(outdir, m, results, *, stem: str, overwrite: bool = False, figures: bool = True,
                  inputs: dict | None = None, results_name: str = "results.h5",
-                 formats=("png",)) -> list[Path]:
+                 formats=("png",), write_h5: bool = True, csv: bool = True) -> list[Path]:
     """Write ``results`` of map ``m`` into ``outdir``; returns every path written.
 
     - ``results.h5``: the map and every result (docs/file-layout.md);
@@ -37,9 +37,13 @@ def write_bundle(outdir, m, results, *, stem: str, overwrite: bool = False, figu
     from .table import write_long_csv
 
     outdir = Path(outdir)
-    written = [write_results_file(outdir / results_name, m, results, overwrite=overwrite,
-                                  inputs=inputs)]
-    written.append(write_long_csv(outdir / f"{stem}_maps.csv", m, results, overwrite=overwrite))
+    written = []
+    if write_h5:
+        written.append(write_results_file(outdir / results_name, m, results, overwrite=overwrite,
+                                          inputs=inputs))
+    if csv:
+        written.append(write_long_csv(outdir / f"{stem}_maps.csv", m, results,
+                                      overwrite=overwrite))
 
     def each_format(save, base, *args, **kw):
         for ext in formats:

@@ -48,25 +48,27 @@ def file_sha256(path) -> str:
     return h.hexdigest()
 
 
-def _write_cube(f, m: RamanMap, compression):
-    """Write the cube tile by tile, so a lazy map never has to fit in memory."""
+def _write_cube_from(f, m: RamanMap, bands, compression=None):
+    """Create the map group and fill the cube from an iterator of (first row, block)."""
+    g = _map_group(f, m)
+    ny, nx, ns = m.shape
+    d = g.create_dataset("intensity", shape=(ny, nx, ns), dtype="float32",
+                         chunks=layout.pixel_tile(ny, nx, ns), compression=compression,
+                         shuffle=compression is not None)
+    d.attrs["units"] = "counts"
+    d.attrs["long_name"] = "Raman intensity"
+    for y0, block in bands:
+        d[y0:y0 + block.shape[0]] = block
+    return d
+
+
+def _map_group(f, m: RamanMap):
     g = f.require_group(layout.MAP)
     g.attrs["NX_class"] = "NXdata"
     g.attrs["signal"] = "intensity"
     g.attrs["axes"] = list(layout.AXES)
     for i, name in enumerate(layout.AXES):
         g.attrs[f"{name}_indices"] = i
-    ny, nx, ns = m.shape
-    chunks = layout.pixel_tile(ny, nx, ns)
-    d = g.create_dataset("intensity", shape=(ny, nx, ns), dtype="float32", chunks=chunks,
-                         compression=compression, shuffle=compression is not None)
-    d.attrs["units"] = "counts"
-    d.attrs["long_name"] = "Raman intensity"
-    ty, tx, _ = chunks
-    for y0 in range(0, ny, ty):
-        for x0 in range(0, nx, tx):
-            d[y0:y0 + ty, x0:x0 + tx] = np.asarray(m.intensity[y0:y0 + ty, x0:x0 + tx, :],
-                                                   dtype=np.float32)
     _write_axis(g, "y", m.y, "um")
     _write_axis(g, "x", m.x, "um")
     _write_axis(g, "raman_shift", m.raman_shift, "1/cm")
@@ -77,6 +79,19 @@ def _write_cube(f, m: RamanMap, compression):
         inst.attrs["NX_class"] = "NXinstrument"
         lw = inst.create_dataset("laser_wavelength", data=float(m.laser_wavelength))
         lw.attrs["units"] = "nm"
+    return g
+
+
+def _write_cube(f, m: RamanMap, compression):
+    """Write the cube tile by tile, so a lazy map never has to fit in memory."""
+    ny, nx, ns = m.shape
+    ty = layout.pixel_tile(ny, nx, ns)[0]
+
+    def bands():
+        for y0 in range(0, ny, ty):
+            yield y0, np.asarray(m.intensity[y0:y0 + ty], dtype=np.float32)
+
+    _write_cube_from(f, m, bands(), compression)
 
 
 def _write_result(f, result: Result):

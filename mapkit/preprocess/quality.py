@@ -5,7 +5,8 @@ from __future__ import annotations
 import numpy as np
 
 
-def bad_pixel_mask(block, *, saturation: float | None = None) -> dict[str, np.ndarray]:
+def bad_pixel_mask(block, *, saturation: float | None = None,
+                   ceiling: float | None = None) -> dict[str, np.ndarray]:
     """Flag non-finite, dead and saturated spectra in a block ``(n_pixels, n_shift)``.
 
     Returns boolean vectors ``nonfinite``, ``dead`` (constant spectrum: a dead
@@ -18,7 +19,8 @@ def bad_pixel_mask(block, *, saturation: float | None = None) -> dict[str, np.nd
     safe = np.where(np.isfinite(b), b, 0.0)
     dead = np.ptp(safe, axis=-1) == 0
     if saturation is None:
-        top = float(safe.max()) if safe.size else 0.0
+        # the ceiling of the whole map when known (chunk-wise use), else of this block
+        top = ceiling if ceiling is not None else (float(safe.max()) if safe.size else 0.0)
         at_top = (safe == top).sum(axis=-1)
         saturated = (at_top >= 3) & (top > 0)
     else:

@@ -144,9 +144,27 @@ def _spectral(m, name, params, func, n_out=None, raman_shift=None):
                 low=0, high=1))
 def _mask_bad_pixels(m, saturation, max_fraction):
     """Mask non-finite, dead (constant) and saturated pixels; their values become 0."""
-    cube = np.asarray(m.load().intensity)
-    ny, nx, ns = cube.shape
-    flags = _quality.bad_pixel_mask(cube.reshape(-1, ns), saturation=saturation or None)
+    ny, nx, ns = m.shape
+    kinds = ("nonfinite", "dead", "saturated")
+    if m.is_lazy:  # two passes: the map's ceiling, then per-chunk flags (a small 2-D result)
+        import dask.array as da
+
+        data = m.intensity.rechunk({2: -1})
+        ceiling = None
+        if not saturation:
+            ceiling = float(da.where(da.isfinite(data), data, -np.inf).max().compute())
+
+        def on_chunk(b):
+            f = _quality.bad_pixel_mask(np.asarray(b).reshape(-1, b.shape[2]),
+                                        saturation=saturation or None, ceiling=ceiling)
+            return np.stack([f[k] for k in kinds], axis=-1).reshape(b.shape[0], b.shape[1], 3)
+
+        stacked = data.map_blocks(on_chunk, chunks=data.chunks[:2] + ((3,),),
+                                  dtype=bool).compute()
+        flags = {k: stacked[..., i].ravel() for i, k in enumerate(kinds)}
+    else:
+        cube = np.asarray(m.intensity)
+        flags = _quality.bad_pixel_mask(cube.reshape(-1, ns), saturation=saturation or None)
     bad = m.mask.copy()
     for v in flags.values():
         bad |= v.reshape(ny, nx)
@@ -155,7 +173,14 @@ def _mask_bad_pixels(m, saturation, max_fraction):
         raise MapkitError(f"{bad.sum()} of {bad.size} pixels are non-finite, dead or saturated "
                           f"({report})", file=m.source, field="intensity",
                           fix="check the export; NaN/Inf or constant spectra cannot be analysed")
-    clean = np.where(bad[..., None] | ~np.isfinite(cube), 0.0, cube).astype(np.float32)
+    if m.is_lazy:
+        import dask.array as da
+
+        badd = da.from_array(bad[..., None], chunks=m.intensity.chunks[:2] + ((1,),))
+        clean = da.where(badd | ~da.isfinite(m.intensity), np.float32(0),
+                         m.intensity).astype(np.float32)
+    else:
+        clean = np.where(bad[..., None] | ~np.isfinite(cube), 0.0, cube).astype(np.float32)
     step = Step("mask_bad_pixels", {"saturation": saturation, "max_fraction": max_fraction,
                                     **report})
     return m.derive(clean, step, mask=bad), {"report": report}

@@ -71,7 +71,8 @@ def _nanmedian_first(a):
     return np.where(k > 0, med, np.nan)
 
 
-def spatial_spike_mask(cube, mask=None, *, threshold: float = 8.0, grow: float = 3.0):
+def spatial_spike_mask(cube, mask=None, *, threshold: float = 8.0, grow: float = 3.0,
+                       engine: str = "auto"):
     """Spike channels of a map cube ``(ny, nx, n_shift)`` found against spatial neighbours.
 
     For each pixel the neighbours are scaled to its overall level (ratio of
@@ -91,6 +92,14 @@ def spatial_spike_mask(cube, mask=None, *, threshold: float = 8.0, grow: float =
     cube = np.asarray(cube, dtype=np.float64)
     ny, nx, n = cube.shape
     mask = np.zeros((ny, nx), bool) if mask is None else np.asarray(mask, bool)
+    from ._spikes_kernel import HAVE_NUMBA
+
+    if engine == "numba" or (engine == "auto" and HAVE_NUMBA):
+        from ._spikes_kernel import spatial_spikes
+
+        level = np.median(cube, axis=-1)
+        return spatial_spikes(np.ascontiguousarray(cube), np.ascontiguousarray(mask), level,
+                              float(threshold), float(grow))
     nb = _neighbours(cube, mask)
     level = np.median(cube, axis=-1)                      # (ny, nx)
     nb_level = _neighbours(level[..., None], mask)[..., 0]  # (8, ny, nx), NaN off the map

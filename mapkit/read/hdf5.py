@@ -43,8 +43,21 @@ def dataset(f, name: str, *, source, hint: str):
     return obj
 
 
+def _read_chunk(path, name, block_info=None):
+    """Read one chunk of an HDF5 dataset by file path (picklable: works on any Dask worker)."""
+    import h5py
+
+    loc = block_info[None]["array-location"]
+    with h5py.File(path, "r", rdcc_nbytes=layout.CHUNK_CACHE_BYTES) as f:
+        return f[name][tuple(slice(a, b) for a, b in loc)]
+
+
 def lazy_cube(dset, *, source, field: str):
-    """A Dask array over an HDF5 dataset: nothing is read until asked."""
+    """A Dask array over an HDF5 dataset: nothing is read until asked.
+
+    Each chunk task opens the file by path and reads its slice, so the array can be
+    computed by threads or by the worker processes of a Dask cluster alike.
+    """
     import dask.array as da
 
     if dset.dtype.kind not in "iuf":
@@ -56,7 +69,10 @@ def lazy_cube(dset, *, source, field: str):
     chunks = dset.chunks or layout.pixel_tile(*dset.shape[:2], dset.shape[-1])
     if len(dset.shape) == 3:
         chunks = (chunks[0], chunks[1], dset.shape[2])
-    return da.from_array(dset, chunks=chunks, lock=True, asarray=True)
+    normalized = da.core.normalize_chunks(chunks, dset.shape)
+    return da.map_blocks(_read_chunk, str(Path(dset.file.filename).resolve()), dset.name,
+                         chunks=normalized, dtype=dset.dtype,
+                         meta=np.empty((0,) * len(dset.shape), dset.dtype))
 
 
 def parse_axes(axes) -> tuple[str, str, str]:
@@ -95,7 +111,13 @@ def read_hdf5_dataset(path, dataset_path: str, *, axes, shift_path: str,
         (µm) must be given and positions start at 0.
     """
     order = parse_axes(axes)
-    f = open_h5(path)
+    with open_h5(path) as f:
+        return _read_dataset(f, path, dataset_path, order, shift_path, x_path, y_path,
+                             pixel_size, laser_wavelength)
+
+
+def _read_dataset(f, path, dataset_path, order, shift_path, x_path, y_path, pixel_size,
+                  laser_wavelength):
     hint = "give the path of a dataset inside the file (see h5ls -r)"
     cube_ds = dataset(f, dataset_path, source=path, hint=hint)
     if cube_ds.ndim != 3:

@@ -27,9 +27,14 @@ def is_nexus_map(path) -> bool:
 def read_nexus_map(path) -> RamanMap:
     """Open a map file lazily: axes are read, the cube stays on disk.
 
-    The file is opened read-only. Errors name the dataset path that is wrong.
+    The file is opened read-only and closed again; chunks are read on demand.
+    Errors name the dataset path that is wrong.
     """
-    f = open_h5(path)
+    with open_h5(path) as f:
+        return _read_nexus(f, path)
+
+
+def _read_nexus(f, path):
     hint = ("write the map in the mapkit layout (docs/file-layout.md), or read the cube by "
             "path with --dataset and --axes")
     cube_ds = dataset(f, layout.INTENSITY, source=path, hint=hint)

@@ -1,0 +1,96 @@
+"""Maps larger than memory: the chunk-wise path against the in-memory one, threads and cluster."""
+
+import h5py
+import numpy as np
+import pytest
+from scipy.optimize import linear_sum_assignment
+from sklearn.metrics import adjusted_rand_score
+
+from mapkit.cli import main
+from mapkit.preprocess.recipe import Recipe
+
+
+def _cos(est, true):
+    e = est / np.linalg.norm(est, axis=1, keepdims=True)
+    t = true / np.linalg.norm(true, axis=1, keepdims=True)
+    c = e @ t.T
+    r, k = linear_sum_assignment(-c)
+    return np.sort(c[r, k])
+
+
+@pytest.fixture(scope="module")
+def recipe(sample_dir):
+    return Recipe.from_file(sample_dir / "tablet_recipe.toml")
+
+
+def test_chunkwise_cleaning_is_bit_identical(sample_map_path, sample_map, recipe, tmp_path):
+    from mapkit.stream import analyse_large
+
+    analyse_large(sample_map_path, tmp_path, recipe=recipe, band_bytes=1 << 20, progress=False,
+                  figures=False)
+    in_memory, _ = recipe.apply(sample_map)
+    with h5py.File(tmp_path / "results.h5") as f:
+        np.testing.assert_array_equal(f["/entry/map/intensity"][...], in_memory.intensity)
+        np.testing.assert_array_equal(f["/entry/map/mask"][...].astype(bool), in_memory.mask)
+
+
+def test_streamed_fits_match_the_in_memory_quality(sample_map_path, sample_map, recipe, truth,
+                                                   tmp_path, monkeypatch):
+    import mapkit.stream as stream
+    from mapkit.preprocess import normalise_map
+    from mapkit.reduce import KMeansClasses, NMFComponents
+
+    monkeypatch.setattr(stream, "SAMPLE_PIXELS", 600)   # force the mini-batch refinement
+    out = stream.analyse_large(sample_map_path, tmp_path, recipe=recipe, band_bytes=1 << 20,
+                               progress=False, figures=False)
+    res = {r.name: r for r in out["results"]}
+    clean, _ = recipe.apply(sample_map)
+    nmf = NMFComponents(4).fit(clean)
+    km = KMeansClasses(4).fit(normalise_map(clean))
+    pure = truth["pure_spectra"]
+    cos_stream = _cos(res["nmf"].fields["spectra"].data, pure)
+    cos_memory = _cos(nmf.components_, pure)
+    assert np.all(cos_stream >= cos_memory - 0.01), (cos_stream, cos_memory)
+    good = truth["labels"] >= 0
+    ari_stream = adjusted_rand_score(truth["labels"][good], res["kmeans"].fields["labels"].data[good])
+    ari_memory = adjusted_rand_score(truth["labels"][good], km.labels_[good])
+    assert ari_stream >= ari_memory - 0.01, (ari_stream, ari_memory)
+
+
+def test_two_worker_cluster_gives_identical_results(sample_map_path, recipe, tmp_path):
+    pytest.importorskip("distributed")
+    from mapkit.stream import analyse_large
+
+    analyse_large(sample_map_path, tmp_path / "threads", recipe=recipe, band_bytes=1 << 20,
+                  progress=False, figures=False)
+    out = analyse_large(sample_map_path, tmp_path / "cluster", recipe=recipe,
+                        band_bytes=1 << 20, progress=False, figures=False, workers=2)
+    assert "LocalCluster" in out["summary"]["scheduler"]
+    with h5py.File(tmp_path / "threads" / "results.h5") as a, \
+            h5py.File(tmp_path / "cluster" / "results.h5") as b:
+        for path in ("/entry/map/intensity", "/entry/results/nmf/images/abundance",
+                     "/entry/results/nmf/spectra/spectrum", "/entry/results/kmeans/labels/labels"):
+            np.testing.assert_array_equal(a[path][...], b[path][...])
+
+
+def test_cli_says_which_mode(sample_map_path, tmp_path, capsys, monkeypatch):
+    import mapkit.stream as stream
+
+    assert main(["analyse", str(sample_map_path), "--out", str(tmp_path / "a"), "--quiet",
+                 "--no-figures", "--components", "3", "--classes", "3"]) == 0
+    assert "mode      in memory" in capsys.readouterr().out
+    # a machine with little memory: the same command goes chunk-wise by itself
+    monkeypatch.setattr(stream, "memory_available", lambda: 10 << 20)
+    assert main(["analyse", str(sample_map_path), "--out", str(tmp_path / "b"), "--quiet",
+                 "--no-figures", "--components", "3", "--classes", "3"]) == 0
+    out = capsys.readouterr().out
+    assert "mode      chunk-wise (the cube" in out and "would not fit" in out
+
+
+def test_in_memory_path_refuses_a_cube_that_will_not_fit(sample_map_path, tmp_path, monkeypatch):
+    import mapkit.pipeline as pipeline
+    from mapkit import MapkitError
+
+    monkeypatch.setattr(pipeline, "_memory_available", lambda: 10 << 20)
+    with pytest.raises(MapkitError, match="GiB to process in memory"):
+        pipeline.analyse(sample_map_path, tmp_path, progress=False)
