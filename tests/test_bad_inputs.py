@@ -1,0 +1,237 @@
+"""The bad-input corpus: every case runs the command line on a damaged or unusual input.
+
+Each case states its expected outcome: a one-line error that names the file or field and
+what to do, exit status 2 and no traceback; or, where a practitioner expects the tool to
+cope (a few dead pixels, negative values after background subtraction, an irregular axis),
+a documented graceful behaviour with exit status 0. Inputs are checked unchanged after
+every command.
+"""
+
+import hashlib
+import shutil
+
+import h5py
+import numpy as np
+import pytest
+
+from mapkit.cli import main
+from mapkit.samples import write_jcamp
+
+SHIFT = np.linspace(200.0, 1800.0, 60)
+
+
+def _h5(path, cube=None, shift=SHIFT, x=None, y=None, units=("um", "um", "1/cm"), extra=None):
+    rng = np.random.default_rng(0)
+    cube = rng.poisson(200, (4, 5, shift.size)).astype(np.float32) if cube is None else cube
+    ny, nx = (cube.shape + (1, 1))[:2] if np.ndim(cube) >= 2 else (1, 1)
+    with h5py.File(path, "w") as f:
+        g = f.create_group("entry/map")
+        g.create_dataset("intensity", data=cube)
+        for name, vals, unit in (("y", y if y is not None else np.arange(ny) * 1.0, units[0]),
+                                 ("x", x if x is not None else np.arange(nx) * 1.0, units[1]),
+                                 ("raman_shift", shift, units[2])):
+            d = g.create_dataset(name, data=vals)
+            if unit:
+                d.attrs["units"] = unit
+        for k, v in (extra or {}).items():
+            f[k] = v
+    return path
+
+
+def _cube(**changes):
+    rng = np.random.default_rng(1)
+    c = rng.poisson(300, (6, 7, SHIFT.size)).astype(np.float32)
+    for key, value in changes.items():
+        if key == "nan_pixels":
+            c[0, 0, 3] = np.nan
+            c[2, 3, :] = np.inf
+        elif key == "all_nan":
+            c[:] = np.nan
+        elif key == "dead":
+            c[1, 1] = 0.0
+            c[4, 2] = 0.0
+        elif key == "negative":
+            c -= 400.0
+    return c
+
+
+def _table(path, text):
+    path.write_text(text)
+    return path
+
+
+def _wide(rows=((0, 0), (1, 0), (0, 1), (1, 1)), ncol=4, decimal="."):
+    head = "x,y," + ",".join(str(100 + 10 * i) for i in range(ncol))
+    body = [f"{x},{y}," + ",".join(f"{i}{decimal}5" for i in range(ncol)) for x, y in rows]
+    return "\n".join([head] + body) + "\n"
+
+
+GOOD_RECIPE = '[recipe]\nname = "t"\n\n[[step]]\nname = "despike"\n'
+
+
+def analyse(path, *more):
+    return ["analyse", str(path), "--quiet", "--no-figures", "--components", "2", "--classes",
+            "2", *more]
+
+
+# (case, builder(tmp) -> (command args, the input files), expected, words)
+CASES = [
+    ("missing file", lambda t: (analyse(t / "none.h5"), []), "error", "file not found"),
+    ("not HDF5", lambda t: (analyse(_table(t / "a.h5", "hello")), [t / "a.h5"]), "error",
+     "not a readable HDF5 file"),
+    ("truncated HDF5", lambda t: _truncated(t), "error", "not a readable HDF5 file"),
+    ("corrupt HDF5", lambda t: _corrupt(t), "error", "HDF5"),
+    ("intensity of strings", lambda t: (analyse(_h5(t / "a.h5", cube=np.array(
+        [[["a"] * 60] * 5] * 4, dtype="S1"))), [t / "a.h5"]), "error", "not numeric"),
+    ("rank 2 cube", lambda t: (analyse(_h5(t / "a.h5", cube=np.ones((4, 60), np.float32))),
+                               [t / "a.h5"]), "error", "rank 2"),
+    ("rank 4 cube", lambda t: (analyse(_h5(t / "a.h5", cube=np.ones((2, 4, 5, 60), np.float32))),
+                               [t / "a.h5"]), "error", "rank 4"),
+    ("zero-length shift axis", lambda t: (analyse(_h5(t / "a.h5", cube=np.ones((4, 5, 0), np.float32),
+                                                      shift=np.array([]))), [t / "a.h5"]),
+     "error", "empty"),
+    ("missing dataset", lambda t: (analyse(_h5(t / "a.h5", extra={"other": [1]}), "--dataset",
+                                           "/nothing", "--axes", "y,x,shift", "--shift-dataset",
+                                           "/entry/map/raman_shift", "--pixel-size", "1"),
+                                   [t / "a.h5"]), "error", "/nothing: dataset is missing"),
+    ("NaN-only map", lambda t: (analyse(_h5(t / "a.h5", cube=_cube(all_nan=1))), [t / "a.h5"]),
+     "error", "non-finite"),
+    ("NaN and Inf pixels", lambda t: (analyse(_h5(t / "a.h5", cube=_cube(nan_pixels=1))),
+                                      [t / "a.h5"]), "ok", "2 non-finite"),
+    ("dead pixels", lambda t: (analyse(_h5(t / "a.h5", cube=_cube(dead=1))), [t / "a.h5"]),
+     "ok", "2 dead"),
+    ("negative intensities", lambda t: (analyse(_h5(t / "a.h5", cube=_cube(negative=1))),
+                                        [t / "a.h5"]), "ok", "wrote"),
+    ("non-monotonic shift", lambda t: (analyse(_h5(t / "a.h5", shift=np.r_[SHIFT[:30], SHIFT[29:59][::-1] + 0.5])),
+                                       [t / "a.h5"]), "error", "not monotonic"),
+    ("duplicated shift", lambda t: (analyse(_h5(t / "a.h5", shift=np.r_[SHIFT[:30], SHIFT[29:58]])),
+                                    [t / "a.h5"]), "error", "duplicated value"),
+    ("non-uniform shift", lambda t: (analyse(_h5(t / "a.h5", cube=_cube(),
+                                                 shift=np.cumsum(np.r_[200, np.linspace(5, 50, 59)]))),
+                                     [t / "a.h5"]), "ok", "wrote"),
+    ("shift length mismatch", lambda t: (analyse(_h5(t / "a.h5", cube=_cube(), shift=SHIFT[:50])), [t / "a.h5"]),
+     "error", "50 values but the cube has 60"),
+    ("unknown units", lambda t: (analyse(_h5(t / "a.h5", units=("um", "furlong", "1/cm"))),
+                                 [t / "a.h5"]), "error", "units are 'furlong'"),
+    ("missing units", lambda t: (analyse(_h5(t / "a.h5", cube=_cube(), units=(None, None, None))),
+                                 [t / "a.h5"]), "ok", "wrote"),
+    ("ragged text rows", lambda t: (analyse(_table(t / "a.csv", "x,y,100,200\n0,0,1,2\n1,0,3\n")),
+                                    [t / "a.csv"]), "error", "line 3 has 3 values"),
+    ("duplicate positions", lambda t: (analyse(_table(t / "a.csv", _wide(((0, 0), (0, 0))))),
+                                       [t / "a.csv"]), "error", "appears more than once"),
+    ("non-rectangular scan", lambda t: (analyse(_table(t / "a.csv", _wide(((0, 0), (1, 0), (0, 1))))),
+                                        [t / "a.csv"]), "error", "not a rectangular grid"),
+    ("mixed decimal separators", lambda t: (analyse(_table(t / "a.csv", "x;y;100;200\n0;0;1,5;2.5\n1;0;2.5;3,5\n")),
+                                            [t / "a.csv"]), "error", "not a number"),
+    ("empty table", lambda t: (analyse(_table(t / "a.csv", "")), [t / "a.csv"]), "error",
+     "no data rows"),
+    ("unknown table form", lambda t: (analyse(_table(t / "a.csv", "x,y,foo\n0,0,1\n")), [t / "a.csv"]),
+     "error", "cannot tell the table's form"),
+    ("recipe: unknown step", lambda t: _with_recipe(t, GOOD_RECIPE.replace("despike", "polish")),
+     "error", "unknown step 'polish'"),
+    ("recipe: out of range", lambda t: _with_recipe(t, GOOD_RECIPE + "threshold = 500.0\n"),
+     "error", "out of range"),
+    ("recipe: wrong type", lambda t: _with_recipe(t, GOOD_RECIPE + 'threshold = "high"\n'),
+     "error", "wrong type"),
+    ("recipe: not TOML", lambda t: _with_recipe(t, "[recipe\n"), "error", "not valid TOML"),
+    ("fewer than three standards", lambda t: _standards(t, levels=(0, 10)), "error",
+     "distinct concentration levels"),
+    ("singular calibration design", lambda t: _standards(t, levels=(10, 10, 10)), "error",
+     "distinct concentration levels"),
+    ("references outside the map's range", lambda t: _narrow_library(t), "error",
+     "reference covers"),
+    ("more components than channels", lambda t: (["components", str(_h5(t / "a.h5", cube=np.random.default_rng(0).poisson(9, (4, 5, 5)).astype(np.float32), shift=np.linspace(100, 500, 5))), "--n", "8", "--recipe", "none", "--out", str(t / "o"), "--no-figures"], [t / "a.h5"]),
+     "error", "n_components = 8 exceeds"),
+    ("more classes than pixels", lambda t: (["classes", str(_h5(t / "a.h5", cube=np.random.default_rng(0).poisson(9, (1, 3, 60)).astype(np.float32))), "--n", "5", "--recipe", "none", "--out", str(t / "o"), "--no-figures"], [t / "a.h5"]),
+     "error", "n_classes = 5 exceeds"),
+    ("output path is a directory", lambda t: (["convert", str(_h5(t / "a.h5")), str(t)], [t / "a.h5"]),
+     "error", "is a directory"),
+    ("output folder under a file", lambda t: (["convert", str(_h5(t / "a.h5")), str(t / "a.h5" / "b.h5")],
+                                              [t / "a.h5"]), "error", "output folder does not exist"),
+    ("existing output without --overwrite", lambda t: (["convert", str(_h5(t / "a.h5")), str(_h5(t / "b.h5"))],
+                                                       [t / "a.h5", t / "b.h5"]), "error", "--overwrite"),
+    ("library with duplicate names", lambda t: _dup_library(t), "error", "more than once"),
+    ("compressed JCAMP-DX", lambda t: _library_file(t, "##TITLE=x\n##XUNITS=1/CM\n##FIRSTX=100\n##LASTX=400\n##NPOINTS=4\n##XYDATA=(X++(Y..Y))\n100@A1B2C3\n##END=\n"),
+     "error", "compressed"),
+    ("JCAMP-DX in nanometres", lambda t: _library_file(t, "##TITLE=x\n##XUNITS=NANOMETERS\n##XYPOINTS=(XY..XY)\n500,1;600,2;700,3\n##END=\n"),
+     "error", "not Raman shift"),
+    ("not a model file", lambda t: (analyse(_h5(t / "a.h5"), "--model-file", str(_table(t / "m.json", '{"kind": "other"}'))),
+                                    [t / "a.h5", t / "m.json"]), "error", "not a mapkit quantification model"),
+]
+
+
+def _truncated(t):
+    src = _h5(t / "full.h5", cube=_cube())
+    data = src.read_bytes()
+    (t / "a.h5").write_bytes(data[: len(data) // 3])
+    return analyse(t / "a.h5"), [t / "a.h5"]
+
+
+def _corrupt(t):
+    src = _h5(t / "full.h5", cube=_cube())
+    data = bytearray(src.read_bytes())
+    data[200:2000] = b"\x00" * 1800
+    (t / "a.h5").write_bytes(bytes(data))
+    return analyse(t / "a.h5"), [t / "a.h5"]
+
+
+def _with_recipe(t, text):
+    (t / "r.toml").write_text(text)
+    return analyse(_h5(t / "a.h5"), "--recipe", str(t / "r.toml")), [t / "a.h5", t / "r.toml"]
+
+
+def _standards(t, levels):
+    head = "standard,concentration," + ",".join(f"{s:.1f}" for s in SHIFT)
+    rows = [f"s{i},{c}," + ",".join("100" for _ in SHIFT) for i, c in enumerate(levels)]
+    (t / "std.csv").write_text("\n".join([head] + rows) + "\n")
+    return (["calibrate", str(t / "std.csv"), "--response-band", "500-600", "--recipe",
+             str(_table(t / "r.toml", GOOD_RECIPE)), "--out", str(t / "o")], [t / "std.csv"])
+
+
+def _narrow_library(t):
+    (t / "lib").mkdir()
+    write_jcamp(t / "lib" / "a.jdx", "a", np.linspace(1000, 1800, 100), np.ones(100))
+    return analyse(_h5(t / "a.h5", cube=_cube()), "--library", str(t / "lib")), [t / "a.h5"]
+
+
+def _dup_library(t):
+    (t / "lib").mkdir()
+    for name in ("one.jdx", "two.jdx"):
+        write_jcamp(t / "lib" / name, "same", SHIFT, np.ones(SHIFT.size))
+    return analyse(_h5(t / "a.h5", cube=_cube()), "--library", str(t / "lib")), [t / "a.h5"]
+
+
+def _library_file(t, text):
+    (t / "lib").mkdir()
+    (t / "lib" / "x.jdx").write_text(text)
+    return analyse(_h5(t / "a.h5", cube=_cube()), "--library", str(t / "lib")), \
+        [t / "a.h5", t / "lib" / "x.jdx"]
+
+
+def _digest(paths):
+    return {p: hashlib.sha256(p.read_bytes()).hexdigest() for p in paths if p.is_file()}
+
+
+def test_corpus_is_large_enough():
+    assert len(CASES) >= 30
+
+
+@pytest.mark.parametrize("case, build, expected, words", CASES, ids=[c[0] for c in CASES])
+def test_bad_input(tmp_path, capsys, case, build, expected, words):
+    args, inputs = build(tmp_path)
+    if "--out" not in args and args[0] not in ("convert",):
+        args = args + ["--out", str(tmp_path / "out")]
+    before = _digest(inputs)
+    rc = main(args)
+    out, err = capsys.readouterr()
+    assert _digest(inputs) == before, "an input file was modified"
+    assert "Traceback" not in err
+    if expected == "error":
+        assert rc == 2, (rc, out, err)
+        lines = err.strip().splitlines()
+        assert len(lines) == 1, err
+        assert words in lines[0], lines[0]
+        assert "; " in lines[0], "the message says what to do"
+    else:
+        assert rc == 0, err
+        assert words in out, out
