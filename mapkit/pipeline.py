@@ -203,11 +203,19 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     ny, nx, ns = corrected.shape
     snr_img = snr(np.asarray(corrected.intensity, float).reshape(-1, ns)).reshape(ny, nx)
     snr_img[corrected.mask] = np.nan
-    results.append(Result("quality", "quality", {}, {
+    quality = {
         "snr": Field("snr", snr_img, img_axes, "", long_name="signal-to-noise ratio"),
         "mask": Field("bad_pixel", corrected.mask.astype(np.uint8), img_axes, "",
-                      long_name="1 = masked (dead, saturated or non-finite)")},
-        {"snr_median": float(np.nanmedian(snr_img)), "masked": int(corrected.mask.sum())}))
+                      long_name="1 = masked (dead, saturated or non-finite)")}
+    quality_summary = {"snr_median": float(np.nanmedian(snr_img)),
+                       "masked": int(corrected.mask.sum())}
+    conv = extras.get("baseline", {}).get("converged")
+    if conv is not None and conv.shape == corrected.mask.shape:
+        # iterative baselines that stopped at max_iter are reported, not hidden
+        quality["baseline_converged"] = Field("baseline_converged", conv.astype(np.uint8),
+                                              img_axes, "", long_name="1 = baseline converged")
+        quality_summary["baseline_not_converged"] = int((~conv & ~corrected.mask).sum())
+    results.append(Result("quality", "quality", {}, quality, quality_summary))
     spike_summary = {"channels_replaced": 0, "spectra_touched": 0}
     if spikes is not None and spikes.shape[:2] == corrected.shape[:2]:
         spikes = np.asarray(spikes)

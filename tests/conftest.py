@@ -51,3 +51,14 @@ def sha256(path) -> str:
     import hashlib
 
     return hashlib.sha256(Path(path).read_bytes()).hexdigest()
+
+
+@pytest.fixture(scope="session", autouse=True)
+def sample_digests():
+    """Checksums of the bundled inputs before any test runs; every command in the suite
+    opens them read-only, so they must be identical when the session ends."""
+    before = {p: sha256(p) for p in SAMPLES.rglob("*") if p.is_file()}
+    yield before
+    after = {p: sha256(p) for p in SAMPLES.rglob("*") if p.is_file()}
+    changed = [str(p) for p in before if after.get(p) != before[p]]
+    assert not changed, f"input files changed during the tests: {changed}"

@@ -122,6 +122,7 @@ if HAVE_NUMBA:
         # the whole reweighting loop per spectrum: no array traffic between iterations
         m, n = y.shape
         out = np.empty((m, n))
+        converged = np.zeros(m, np.bool_)
         eps = np.finfo(np.float64).eps
         for k in numba.prange(m):
             l1 = np.empty(n)
@@ -138,14 +139,15 @@ if HAVE_NUMBA:
                     den += w[i] * w[i]
                     q[i] = new
                 if np.sqrt(num) / max(np.sqrt(den), eps) < tol:
+                    converged[k] = True
                     break
                 for i in range(n):
                     w[i] = q[i]
-        return out
+        return out, converged
 
 
 def als_solve(y, lam: float, p: float, max_iter: int, tol: float):
-    """Compiled ALS on every row of ``y``; None when numba is unavailable."""
+    """Compiled ALS on every row of ``y``: (baselines, converged flags), or None without numba."""
     if not HAVE_NUMBA:
         return None
     d0, d1, d2 = penalty_diagonals(y.shape[1], lam)

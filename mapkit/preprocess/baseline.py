@@ -38,7 +38,13 @@ def _relative_change(old, new):
     return np.linalg.norm(new - old, axis=1) / np.maximum(np.linalg.norm(old, axis=1), _EPS)
 
 
-def _reweighted(y, lam, weigh, max_iter, tol, engine):
+def _report(info, converged):
+    """Fill ``info["converged"]`` (one flag per spectrum) when the caller asked for it."""
+    if info is not None:
+        info["converged"] = np.asarray(converged, bool)
+
+
+def _reweighted(y, lam, weigh, max_iter, tol, engine, info=None):
     """Iterate solve → new weights on the still-active spectra until each one converges.
 
     ``weigh(y, z, w, iteration)`` returns (new_w, change, stop_now) per active row; a row
@@ -59,11 +65,14 @@ def _reweighted(y, lam, weigh, max_iter, tol, engine):
         active = active[keep]
         if active.size == 0:
             break
+    converged = np.ones(m, bool)
+    converged[active] = False
+    _report(info, converged)
     return z
 
 
 def als_baseline(block, shift=None, *, lam: float = 1e5, p: float = 0.01, max_iter: int = 50,
-                 tol: float = 1e-3, engine: str = "auto"):
+                 tol: float = 1e-3, engine: str = "auto", info: dict | None = None):
     """Asymmetric least squares baseline (Eilers & Boelens 2005).
 
     Minimises Σ wᵢ(yᵢ − zᵢ)² + λ Σ(Δ²zᵢ)² with wᵢ = p where the spectrum lies above the
@@ -92,20 +101,22 @@ def als_baseline(block, shift=None, *, lam: float = 1e5, p: float = 0.01, max_it
     _check_lam(lam)
     y, single = _prepare(block)
     if engine in ("auto", "numba"):
-        z = als_solve(y, lam, p, max_iter, tol)
-        if z is not None:
+        solved = als_solve(y, lam, p, max_iter, tol)
+        if solved is not None:
+            z, converged = solved
+            _report(info, converged)
             return z[0] if single else z
 
     def weigh(ya, za, wa, it):
         new = np.where(ya > za, p, 1 - p)
         return new, _relative_change(wa, new), np.zeros(len(ya), bool)
 
-    z = _reweighted(y, lam, weigh, max_iter, tol, engine)
+    z = _reweighted(y, lam, weigh, max_iter, tol, engine, info)
     return z[0] if single else z
 
 
 def arpls_baseline(block, shift=None, *, lam: float = 1e5, max_iter: int = 50,
-                   tol: float = 1e-3, engine: str = "auto"):
+                   tol: float = 1e-3, engine: str = "auto", info: dict | None = None):
     """Asymmetrically reweighted penalised least squares (arPLS; Baek et al. 2015, Analyst 140:250).
 
     Weights follow a logistic function of the residual scaled by the mean and standard
@@ -136,12 +147,12 @@ def arpls_baseline(block, shift=None, *, lam: float = 1e5, max_iter: int = 50,
         new = expit(-(2 / std[:, None]) * (r - (2 * std - mean)[:, None]))
         return new, _relative_change(wa, new), stop
 
-    z = _reweighted(y, lam, weigh, max_iter, tol, engine)
+    z = _reweighted(y, lam, weigh, max_iter, tol, engine, info)
     return z[0] if single else z
 
 
 def airpls_baseline(block, shift=None, *, lam: float = 1e6, max_iter: int = 50,
-                    tol: float = 1e-3, engine: str = "auto"):
+                    tol: float = 1e-3, engine: str = "auto", info: dict | None = None):
     """Adaptive iteratively reweighted penalised least squares (airPLS; Zhang, Chen & Liang 2010).
 
     Points above the baseline get weight 0; points below get exp(t·|r|/|Σr⁻|) at
@@ -169,11 +180,14 @@ def airpls_baseline(block, shift=None, *, lam: float = 1e6, max_iter: int = 50,
         active = active[~done]
         if active.size == 0:
             break
+    converged = np.ones(y.shape[0], bool)
+    converged[active] = False
+    _report(info, converged)
     return z[0] if single else z
 
 
 def modpoly_baseline(block, shift=None, *, order: int = 2, max_iter: int = 250,
-                     tol: float = 1e-3):
+                     tol: float = 1e-3, info: dict | None = None):
     """Modified polynomial baseline (Lieber & Mahadevan-Jansen 2003, Appl. Spectrosc. 57:1363).
 
     Fits a polynomial, clips the spectrum to it from above, and refits until the baseline
@@ -198,10 +212,13 @@ def modpoly_baseline(block, shift=None, *, order: int = 2, max_iter: int = 250,
         active = active[_relative_change(old, new) >= tol]
         if active.size == 0:
             break
+    converged = np.ones(y.shape[0], bool)
+    converged[active] = False
+    _report(info, converged)
     return base[0] if single else base
 
 
-def rolling_baseline(block, shift=None, *, half_window: int = 25):
+def rolling_baseline(block, shift=None, *, half_window: int = 25, info: dict | None = None):
     """Morphological baseline (Perez-Pueyo et al. 2010, Appl. Spectrosc. 64:595).
 
     A grey opening with a flat window of 2·half_window + 1 channels, then the pointwise
@@ -216,6 +233,7 @@ def rolling_baseline(block, shift=None, *, half_window: int = 25):
     opening = grey_opening(y, size=size)
     avg = 0.5 * (grey_dilation(opening, size=size) + grey_erosion(opening, size=size))
     base = np.minimum(opening, avg)
+    _report(info, np.ones(y.shape[0], bool))   # not iterative: always converged
     return base[0] if single else base
 
 

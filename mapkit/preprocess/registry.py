@@ -261,12 +261,25 @@ def _baseline_step(m, method, **params):
     """Estimate and subtract a fluorescence baseline from every spectrum."""
     func = _baseline.METHODS[method]
     shift = m.raman_shift
+    if m.is_lazy:
+        def sub(block):
+            return block - func(block, shift, **params)
 
-    def sub(block):
-        return block - func(block, shift, **params)
-
-    new = _spectral(m, "baseline", {"method": method, **params}, sub)
-    return new, {}
+        return _spectral(m, "baseline", {"method": method, **params}, sub), {}
+    # in memory: also record which spectra hit max_iter before converging (a quality mask)
+    ny, nx, ns = m.shape
+    converged = np.ones(ny * nx, bool)
+    good = np.flatnonzero(~m.mask.ravel())
+    flat = np.asarray(m.intensity, np.float64).reshape(-1, ns)
+    out = np.zeros((ny * nx, ns), np.float32)
+    for start in range(0, good.size, 4096):
+        idx = good[start:start + 4096]
+        info = {}
+        out[idx] = flat[idx] - func(flat[idx], shift, info=info, **params)
+        converged[idx] = info["converged"]
+    step = Step("baseline", {"method": method, **params,
+                             "not_converged": int((~converged).sum())})
+    return m.derive(out.reshape(ny, nx, ns), step), {"converged": converged.reshape(ny, nx)}
 
 
 # -- smoothing, derivatives --------------------------------------------------------------

@@ -89,7 +89,14 @@ def _jcamp(path: Path) -> Spectrum:
             raise MapkitError(f"compressed (ASDF) data at line {lineno} is not supported",
                               file=path, field=f"line {lineno}",
                               fix="export the spectrum with uncompressed AFFN numbers")
-        nums = [float(v) for v in re.split(r"[,;\s]+", line) if v]
+        try:
+            nums = [float(v) for v in re.split(r"[,;\s]+", line) if v]
+        except ValueError:
+            raise MapkitError(f"line {lineno} is not a row of numbers: {line[:30]!r}", file=path,
+                              field=f"line {lineno}", fix="export the spectrum as plain AFFN "
+                              "numbers") from None
+        if not nums:
+            continue
         if mode == "xydata":
             x0, yv = nums[0], nums[1:]
             xs.append((x0, len(yv)))

@@ -170,7 +170,8 @@ class NMFComponents(TransformerMixin, BaseEstimator):
                             long_name="NMF component weight"),
             "spectra": Field("spectrum", self.components_, (comp, shift_axis(m)), "a.u.",
                              long_name="NMF component spectrum (unit maximum)")},
-            {"reconstruction_error": self.reconstruction_err_, "n_iter": self.n_iter_})
+            {"reconstruction_error": self.reconstruction_err_, "n_iter": self.n_iter_,
+             "converged": self.n_iter_ < self.max_iter})
 
 
 class MCRALS(TransformerMixin, BaseEstimator):
@@ -290,4 +291,5 @@ class MCRALS(TransformerMixin, BaseEstimator):
             "spectra": Field("spectrum", self.components_, (comp, shift_axis(m)), "a.u.",
                              long_name="MCR-ALS spectrum")},
             {"lack_of_fit_pct": self.lack_of_fit_, "explained_variance_pct":
-             self.explained_variance_, "n_iter": self.n_iter_})
+             self.explained_variance_, "n_iter": self.n_iter_,
+             "converged": self.n_iter_ < self.max_iter})
