@@ -15,7 +15,6 @@ from __future__ import annotations
 
 import argparse
 import os
-import resource
 import subprocess
 import sys
 import tempfile
@@ -79,14 +78,19 @@ def make_cube(path, ny, nx, ns, seed=0):
 def run_pipeline(cube, out, extra=()):
     recipe = Path(out).with_suffix(".toml")
     recipe.write_text(RECIPE)
-    before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    # the child reports its own peak RSS (RUSAGE_CHILDREN would keep the largest so far)
+    wrapper = ("import resource, sys\nfrom mapkit.cli import main\nrc = main(sys.argv[1:])\n"
+               "print('PEAK_RSS_KIB', resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)\n"
+               "sys.exit(rc)")
     t0 = time.perf_counter()
-    subprocess.run([sys.executable, "-m", "mapkit.cli", "analyse", str(cube), "--chunked",
-                    "--recipe", str(recipe), "--out", str(out), "--overwrite", "--quiet",
-                    *extra], check=True)
+    done = subprocess.run([sys.executable, "-c", wrapper, "analyse", str(cube), "--chunked",
+                           "--recipe", str(recipe), "--out", str(out), "--overwrite", "--quiet",
+                           *extra], check=True, capture_output=True, text=True)
     wall = time.perf_counter() - t0
-    peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
-    return wall, max(peak, before) / 2**20   # ru_maxrss is in KiB on Linux
+    print("   " + "\n   ".join(line for line in done.stdout.splitlines()
+                                 if not line.startswith("PEAK")))
+    peak = int(done.stdout.split("PEAK_RSS_KIB")[1].split()[0])
+    return wall, peak / 2**20   # ru_maxrss is in KiB on Linux
 
 
 def read_and_sum(cube):

@@ -91,7 +91,7 @@ class _Progress:
 def analyse_large(map_path, outdir, *, recipe=None, n_components: int = 4, n_classes: int = 4,
                   seed: int = 0, bands=(), workers: int | None = None, address: str | None = None,
                   overwrite: bool = False, figures: bool = True, progress: bool = True,
-                  band_bytes: int = BAND_BYTES, epochs: int = 2) -> dict:
+                  band_bytes: int = BAND_BYTES, epochs: int = 1, refine_stride: int = 4) -> dict:
     """Clean, factorise and classify a map chunk by chunk; write results like ``analyse``.
 
     Returns ``{"written": [...], "summary": {...}, "results": [...]}``.
@@ -118,6 +118,12 @@ def analyse_large(map_path, outdir, *, recipe=None, n_components: int = 4, n_cla
         if not raw.is_lazy:
             raise MapkitError("chunk-wise processing needs an HDF5 map", file=map_path,
                               field="intensity", fix="convert the table with 'mapkit convert'")
+        # tasks of a few MB: small file chunks would drown the work in scheduling overhead
+        from dataclasses import replace
+
+        ty = raw.intensity.chunks[0][0]
+        raw = replace(raw, intensity=raw.intensity.rechunk(
+            (ty, min(raw.shape[1], max(raw.intensity.chunks[1][0], 128)), raw.shape[2])))
         clean, extras = recipe.apply(raw)        # lazy: nothing computed yet but the mask
         ny, nx, ns = clean.shape
         rows = band_rows(clean, band_bytes)
@@ -150,17 +156,18 @@ def analyse_large(map_path, outdir, *, recipe=None, n_components: int = 4, n_cla
                 S = np.concatenate(sample)
                 # components: NMF on the sample, refined by mini-batches over every band
                 Sc = np.clip(S, 0, None)
-                base = NMF(n_components, init="nndsvda", random_state=seed, max_iter=2000,
-                           tol=1e-6).fit(Sc)
+                base = NMF(n_components, init="nndsvda", random_state=seed, max_iter=400,
+                           tol=1e-4).fit(Sc)
                 mb = MiniBatchNMF(n_components, init="custom", random_state=seed,
                                   batch_size=4096, max_iter=1)
                 H = base.components_.copy()
                 if S.shape[0] < good.sum():   # the sample is not the whole map: refine on it all
                     mb.partial_fit(Sc, H=H, W=np.clip(base.transform(Sc), 1e-9, None))
-                    for _ in range(epochs):
+                    for _ in range(epochs):   # every refine_stride-th spectrum of each band
                         for y0, block in bands_of(dset):
                             g = good[y0:y0 + rows].ravel()
-                            mb.partial_fit(np.clip(block.reshape(-1, ns)[g], 0, None))
+                            flat = block.reshape(-1, ns)[g][::refine_stride]
+                            mb.partial_fit(np.clip(flat, 0, None))
                             bar.step("components")
                     H = mb.components_
                 else:
@@ -205,6 +212,7 @@ def analyse_large(map_path, outdir, *, recipe=None, n_components: int = 4, n_cla
                 step = Step("analyse_large", {"recipe": recipe.text, "n_components": n_components,
                                               "n_classes": n_classes, "seed": seed,
                                               "band_rows": rows, "epochs": epochs,
+                                              "refine_stride": refine_stride,
                                               "sample_stride": stride, "scheduler": where})
                 _write_provenance(f, clean.provenance + (step,),
                                   {"inputs": {"map": {"path": Path(map_path).name,

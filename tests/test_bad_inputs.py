@@ -8,7 +8,6 @@ every command.
 """
 
 import hashlib
-import shutil
 
 import h5py
 import numpy as np

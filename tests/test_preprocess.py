@@ -279,3 +279,15 @@ def test_axis_calibration_needs_enough_bands():
     s = np.linspace(900, 1100, 300)
     with pytest.raises(MapkitError, match="bands"):
         calibrate_axis(s, np.ones_like(s), "polystyrene", order=2)
+
+
+def test_compiled_and_numpy_spike_tests_agree(cleaned):
+    pytest.importorskip("numba")
+    from mapkit.preprocess.spikes import spatial_spike_mask
+
+    cube = np.asarray(cleaned["flagged"].intensity, float)
+    mask = cleaned["flagged"].mask
+    fa, ra = spatial_spike_mask(cube, mask, engine="numba")
+    fb, rb = spatial_spike_mask(cube, mask, engine="numpy")
+    np.testing.assert_array_equal(fa, fb)
+    np.testing.assert_allclose(ra[fa], rb[fb], rtol=1e-12)

@@ -1,7 +1,6 @@
 """Fuzzed readers, crash-safe outputs, recorded versions and reported convergence."""
 
 import json
-import os
 import signal
 import subprocess
 import sys
