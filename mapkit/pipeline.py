@@ -37,14 +37,9 @@ class Settings:
 
 
 def _memory_available() -> int:
-    try:
-        with open("/proc/meminfo") as fh:
-            for line in fh:
-                if line.startswith("MemAvailable:"):
-                    return int(line.split()[1]) * 1024
-    except OSError:
-        pass
-    return 8 << 30
+    from .stream import memory_available
+
+    return memory_available()
 
 
 def _sha(path):

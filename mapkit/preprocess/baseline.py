@@ -38,10 +38,15 @@ def _relative_change(old, new):
     return np.linalg.norm(new - old, axis=1) / np.maximum(np.linalg.norm(old, axis=1), _EPS)
 
 
-def _report(info, converged):
-    """Fill ``info["converged"]`` (one flag per spectrum) when the caller asked for it."""
-    if info is not None:
-        info["converged"] = np.asarray(converged, bool)
+def _report(info, converged=None, *, m=None, active=None):
+    """Fill ``info["converged"]`` (one flag per spectrum) when the caller asked for it:
+    given directly, or as all spectra but the still-``active`` ones of ``m``."""
+    if info is None:
+        return
+    if converged is None:
+        converged = np.ones(m, bool)
+        converged[active] = False
+    info["converged"] = np.asarray(converged, bool)
 
 
 def _reweighted(y, lam, weigh, max_iter, tol, engine, info=None):
@@ -65,9 +70,7 @@ def _reweighted(y, lam, weigh, max_iter, tol, engine, info=None):
         active = active[keep]
         if active.size == 0:
             break
-    converged = np.ones(m, bool)
-    converged[active] = False
-    _report(info, converged)
+    _report(info, m=m, active=active)
     return z
 
 
@@ -180,9 +183,7 @@ def airpls_baseline(block, shift=None, *, lam: float = 1e6, max_iter: int = 50,
         active = active[~done]
         if active.size == 0:
             break
-    converged = np.ones(y.shape[0], bool)
-    converged[active] = False
-    _report(info, converged)
+    _report(info, m=y.shape[0], active=active)
     return z[0] if single else z
 
 
@@ -212,9 +213,7 @@ def modpoly_baseline(block, shift=None, *, order: int = 2, max_iter: int = 250,
         active = active[_relative_change(old, new) >= tol]
         if active.size == 0:
             break
-    converged = np.ones(y.shape[0], bool)
-    converged[active] = False
-    _report(info, converged)
+    _report(info, m=y.shape[0], active=active)
     return base[0] if single else base
 
 
