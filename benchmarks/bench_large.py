@@ -85,7 +85,9 @@ def run_pipeline(cube, out, extra=()):
     t0 = time.perf_counter()
     done = subprocess.run([sys.executable, "-c", wrapper, "analyse", str(cube), "--chunked",
                            "--recipe", str(recipe), "--out", str(out), "--overwrite", "--quiet",
-                           *extra], check=True, capture_output=True, text=True)
+                           *extra], capture_output=True, text=True)
+    if done.returncode:
+        raise SystemExit(f"pipeline failed ({done.returncode}): {done.stderr.strip()}")
     wall = time.perf_counter() - t0
     print("   " + "\n   ".join(line for line in done.stdout.splitlines()
                                  if not line.startswith("PEAK")))

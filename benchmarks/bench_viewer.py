@@ -21,6 +21,7 @@ import numpy as np
 
 def main(path):
     import napari
+    from qtpy.QtWidgets import QApplication
 
     from mapkit_napari._panel import SpectrumPanel
 
@@ -32,19 +33,26 @@ def main(path):
     layer = viewer.layers[0]
     ny, nx = layer.data.shape
     rng = np.random.default_rng(0)
-    times = []
+    panel.canvas.draw()   # the first full draw caches the background the panel blits onto
+    times, handler = [], []
     for i in range(60):
         iy, ix = int(rng.integers(ny)), int(rng.integers(nx))
         pos = tuple(np.asarray(layer.data_to_world((iy, ix)))[-2:])
         t0 = time.perf_counter()
-        viewer.cursor.position = pos          # fires the panel's handler
-        panel.canvas.draw()                   # force the redraw now (draw_idle would defer it)
+        viewer.cursor.position = pos          # fires the panel's handler (blit or redraw)
+        t1 = time.perf_counter()
+        if panel.canvas.__dict__.get("_draw_pending"):
+            panel.canvas.draw()               # a rescale was queued: count its full draw
+        t2 = time.perf_counter()
+        QApplication.processEvents()          # napari's own work on the same event
         times.append((time.perf_counter() - t0) * 1e3)
-    times = times[5:]   # the first reads warm the file cache and matplotlib
+        handler.append((t2 - t0) * 1e3)
+    times, handler = times[5:], handler[5:]   # the first reads warm caches
     print(f"map {path} ({ny} x {nx}), opened (mean image computed chunk-wise) in {opened:.1f} s")
-    print(f"cursor -> redrawn spectrum: median {statistics.median(times):.1f} ms, "
-          f"95th percentile {np.percentile(times, 95):.1f} ms over {len(times)} moves "
+    print(f"cursor -> spectrum read and redrawn (panel): median {statistics.median(handler):.1f} "
+          f"ms, 95th percentile {np.percentile(handler, 95):.1f} ms over {len(handler)} moves "
           f"(goal: median <= 20 ms)")
+    print(f"including napari's own event processing: median {statistics.median(times):.1f} ms")
     viewer.close()
 
 

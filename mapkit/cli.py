@@ -85,7 +85,9 @@ def _add_analysis_options(p, default_out="mapkit-output"):
     q.add_argument("--region", action="append", metavar="NAME:X,Y;X,Y;X,Y",
                    help="polygon (um) for separate content statistics (repeatable)")
     p.add_argument("--overwrite", action="store_true", help="replace existing outputs")
-    p.add_argument("--no-figures", action="store_true", help="skip PNG figures")
+    p.add_argument("--no-figures", action="store_true", help="skip figures")
+    p.add_argument("--figure-format", choices=("png", "svg", "both"), default="png",
+                   help="figure files to write (default png)")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
 
 
@@ -93,6 +95,11 @@ def _range_arg(text):
     from .cli_reduce import _range
 
     return _range(text)
+
+
+def _formats(a):
+    choice = getattr(a, "figure_format", "png")
+    return ("png", "svg") if choice == "both" else (choice,)
 
 
 def _recipe(a):
@@ -124,7 +131,7 @@ def _run_analysis(a, map_path, library, standards, bands):
     out = analyse(map_path, a.out, library=library, standards=standards, settings=s,
                   overwrite=a.overwrite, progress=not a.quiet, figures=not a.no_figures,
                   open_kwargs=_open_kwargs(a) if hasattr(a, "dataset") else None, recipe=recipe,
-                  model=model, regions=regions)
+                  model=model, regions=regions, formats=_formats(a))
     summ = out["summary"]
     print(f"map       {map_path}  ({summ['shape'][0]} x {summ['shape'][1]} pixels, "
           f"{summ['shape'][2]} channels)")
@@ -179,20 +186,31 @@ def _choose_mode(a, map_path):
 def _run_large(a, map_path, recipe, reason, library, standards, model):
     from .stream import analyse_large
 
-    if library or standards or model or a.band:
-        raise MapkitError("chunk-wise runs do not yet unmix, quantify or make band images",
-                          field="--library/--standards/--model-file/--band",
-                          fix="run those on a cropped or binned map, or drop the options")
+    from .pipeline import Settings, quantification_model
+    from .read import read_library
+
+    refs = read_library(library) if library else None
+    if standards:
+        s = Settings(analyte=a.analyte, calibration_model=a.calibration_model,
+                     weighting=a.weighting, response_band=a.response_band,
+                     internal_standard=a.internal_standard)
+        model = quantification_model(standards, refs, recipe, s)
     print(f"mode      chunk-wise ({reason})")
     out = analyse_large(map_path, a.out, recipe=recipe, n_components=a.components,
                         n_classes=a.classes, seed=a.seed, workers=a.workers,
                         address=a.scheduler, overwrite=a.overwrite, figures=not a.no_figures,
-                        progress=not a.quiet)
+                        progress=not a.quiet, bands=a.band or (), library=refs, model=model)
+    if model is not None:
+        model.save(Path(a.out) / "quant_model.json", overwrite=True)
     s = out["summary"]
     print(f"scheduler {s['scheduler']}, bands of {s['band_rows']} rows, {s['seconds']:.1f} s")
     areas = s["results"].get("kmeans", {}).get("areas", {})
     if areas:
         print("classes   " + ", ".join(f"{k} {v['fraction_pct']:.1f} %" for k, v in areas.items()))
+    conc = s["results"].get("concentration")
+    if conc and conc.get("mean") is not None:
+        print(f"content   mean {conc['mean']:.2f} {conc['unit']}; {conc['quantifiable']} of "
+              f"{conc['pixels']} pixels quantifiable")
     print(f"wrote     {len(out['written'])} files to {Path(a.out)}/")
     return out
 

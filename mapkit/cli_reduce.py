@@ -31,7 +31,9 @@ def _common(p, default_recipe="default"):
                                     "recipe; 'none' for no cleaning)")
     p.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
     p.add_argument("--overwrite", action="store_true", help="replace existing outputs")
-    p.add_argument("--no-figures", action="store_true", help="skip PNG figures")
+    p.add_argument("--no-figures", action="store_true", help="skip figures")
+    p.add_argument("--figure-format", choices=("png", "svg", "both"), default="png",
+                   help="figure files to write (default png)")
 
 
 def _prepare(a, minimal=False):
@@ -68,9 +70,11 @@ def _write(a, m, results, lines):
     out.mkdir(parents=True, exist_ok=True)
     final = m.derive(m.intensity, Step(a.command, {k: v for k, v in vars(a).items()
                                                    if k not in ("func",)}))
+    from .cli import _formats
+
     written = write_bundle(out, final, results, stem=safe_name(Path(a.map).stem),
                            overwrite=a.overwrite, figures=not a.no_figures,
-                           inputs={"map": a.map})
+                           inputs={"map": a.map}, formats=_formats(a))
     written.append(write_summary(out, {"map": str(a.map), "command": a.command,
                                        "results": {r.name: r.summary for r in results}}))
     for line in lines:

@@ -74,7 +74,7 @@ def quantification_model(standards, library, recipe, settings):
 def analyse(map_path, outdir, *, library=None, standards=None, settings: Settings | None = None,
             overwrite: bool = False, progress: bool = True, figures: bool = True,
             open_kwargs: dict | None = None, recipe=None, model=None,
-            regions: dict | None = None) -> dict:
+            regions: dict | None = None, formats=("png",)) -> dict:
     """Run the whole path on one map file and write every output into ``outdir``.
 
     ``recipe`` (a :class:`~mapkit.preprocess.recipe.Recipe`, default: mask bad pixels,
@@ -236,7 +236,7 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     if model is not None:
         written_model = model.save(outdir / "quant_model.json", overwrite=True)
     written = write_bundle(outdir, final, results, stem=safe_name(Path(map_path).stem),
-                           overwrite=overwrite, figures=figures, inputs=inputs)
+                           overwrite=overwrite, figures=figures, inputs=inputs, formats=formats)
     summary = {"map": str(map_path), "shape": list(raw.shape), "bad_pixels": bad_report,
                "spikes": spike_summary, "notices": notices, "recipe": recipe.text,
                "results": {r.name: r.summary for r in results if r.summary},

@@ -91,8 +91,14 @@ class _Progress:
 def analyse_large(map_path, outdir, *, recipe=None, n_components: int = 4, n_classes: int = 4,
                   seed: int = 0, bands=(), workers: int | None = None, address: str | None = None,
                   overwrite: bool = False, figures: bool = True, progress: bool = True,
-                  band_bytes: int = BAND_BYTES, epochs: int = 1, refine_stride: int = 4) -> dict:
+                  band_bytes: int = BAND_BYTES, epochs: int = 1, refine_stride: int = 4,
+                  library=None, model=None, baseline_order: int | None = 5) -> dict:
     """Clean, factorise and classify a map chunk by chunk; write results like ``analyse``.
+
+    ``bands`` (name, lo, hi) add band-integral images; ``library`` (reference spectra)
+    adds abundance maps by NNLS with polynomial baseline terms; ``model`` (a saved
+    :class:`~mapkit.quantify.QuantModel`) adds a content map with its uncertainty and flags.
+    All are computed band by band in the same pass as the component images.
 
     Returns ``{"written": [...], "summary": {...}, "results": [...]}``.
     """
@@ -124,6 +130,8 @@ def analyse_large(map_path, outdir, *, recipe=None, n_components: int = 4, n_cla
         ty = raw.intensity.chunks[0][0]
         raw = replace(raw, intensity=raw.intensity.rechunk(
             (ty, min(raw.shape[1], max(raw.intensity.chunks[1][0], 128)), raw.shape[2])))
+        if model is not None:
+            model.check_recipe(recipe)
         clean, extras = recipe.apply(raw)        # lazy: nothing computed yet but the mask
         ny, nx, ns = clean.shape
         rows = band_rows(clean, band_bytes)
@@ -169,7 +177,9 @@ def analyse_large(map_path, outdir, *, recipe=None, n_components: int = 4, n_cla
                             flat = block.reshape(-1, ns)[g][::refine_stride]
                             mb.partial_fit(np.clip(flat, 0, None))
                             bar.step("components")
-                    H = mb.components_
+                    # a component the mini-batches emptied keeps its sample estimate
+                    empty = ~np.any(mb.components_ > 0, axis=1)
+                    H = np.where(empty[:, None], H, mb.components_)
                 else:
                     bar.bar.update(len(starts) * epochs)
                 H = H / np.where(H.max(axis=1, keepdims=True) > 0, H.max(axis=1, keepdims=True),
@@ -185,6 +195,7 @@ def analyse_large(map_path, outdir, *, recipe=None, n_components: int = 4, n_cla
                 kmb.partial_fit(pca.transform(Sn))
                 # pass 2: images and labels band by band
                 images = np.full((n_components, ny, nx), np.nan)
+                extra = _Extras(clean, bands, library, model, baseline_order)
                 labels = np.full((ny, nx), -1, np.int16)
                 sums = np.zeros((n_classes, ns))
                 sq = np.zeros((n_classes, ns))
@@ -204,9 +215,10 @@ def analyse_large(map_path, outdir, *, recipe=None, n_components: int = 4, n_cla
                     np.add.at(sums, lab, norm)
                     np.add.at(sq, lab, norm ** 2)
                     counts += np.bincount(lab, minlength=n_classes)
+                    extra.add(y0, block.reshape(-1, ns)[g.ravel()], g)
                     bar.step("images")
                 results = _stream_results(clean, H, images, labels, sums, sq, counts, n_classes,
-                                          class_domains, extras)
+                                          class_domains, extras) + extra.results()
                 for r in results:
                     _write_result(f, r)
                 step = Step("analyse_large", {"recipe": recipe.text, "n_components": n_components,
@@ -227,6 +239,77 @@ def analyse_large(map_path, outdir, *, recipe=None, n_components: int = 4, n_cla
                "results": {r.name: r.summary for r in results if r.summary}}
     written.append(write_summary(outdir, summary))
     return {"written": written, "summary": summary, "results": results}
+
+
+class _Extras:
+    """Band images, abundance maps and content maps filled band by band."""
+
+    def __init__(self, m, bands, library, model, baseline_order):
+        ny, nx, _ = m.shape
+        self.m, self.bands, self.library, self.model = m, list(bands), library, model
+        self.order = baseline_order
+        self.band_imgs = {name: np.full((ny, nx), np.nan) for name, _, _ in self.bands}
+        if library:
+            self.refs = np.stack([r.on_axis(m.raman_shift) for r in library])
+            self.abundance = np.full((len(library), ny, nx), np.nan)
+            self.residual = np.full((ny, nx), np.nan)
+        if model is not None:
+            self.x0 = np.full((ny, nx), np.nan)
+            self.s_x0 = np.full((ny, nx), np.nan)
+
+    def add(self, y0, spectra, good):
+        from .reduce.bands import band_integral
+        from .reduce.unmix import unmix_spectra
+
+        rows = slice(y0, y0 + good.shape[0])
+        shift = self.m.raman_shift
+
+        def put(target, values):
+            block = np.full(good.shape, np.nan)
+            block[good] = values
+            target[rows] = block
+
+        for name, lo, hi in self.bands:
+            put(self.band_imgs[name], band_integral(spectra, shift, lo, hi))
+        if self.library:
+            A, rms = unmix_spectra(self.refs, spectra, shift, self.order)
+            for k in range(A.shape[0]):
+                put(self.abundance[k], A[k])
+            put(self.residual, rms)
+        if self.model is not None:
+            if self.model.response.kind == "spectrum":
+                from .preprocess.axis import resample
+
+                X = spectra if np.array_equal(shift, self.model.raman_shift) else \
+                    resample(spectra, shift, self.model.raman_shift)
+                y = self.model.response.compute(X, self.model.raman_shift)
+            else:
+                y = self.model.response.compute(spectra, shift, self.library)
+            x0, s_x0 = self.model.calibration.inverse(y)
+            put(self.x0, x0)
+            put(self.s_x0, s_x0)
+
+    def results(self):
+        from .quantify.concentration import concentration_map
+
+        yx = (Axis("y", self.m.y, "um"), Axis("x", self.m.x, "um"))
+        out = []
+        for name, lo, hi in self.bands:
+            out.append(Result(name, "band_area", {"lo": lo, "hi": hi, "local_baseline": True},
+                              {"image": Field("band_integral", self.band_imgs[name], yx,
+                                              "counts*1/cm", long_name=f"area {lo:g}-{hi:g} 1/cm")}))
+        if self.library:
+            comp = Axis("component", np.array([r.name for r in self.library]))
+            out.append(Result("unmixing", "nnls_unmixing",
+                              {"references": [r.name for r in self.library],
+                               "baseline_order": self.order},
+                              {"abundance": Field("abundance", self.abundance, (comp, *yx),
+                                                  "reference units"),
+                               "residual": Field("residual_rms", self.residual, yx, "counts")}))
+        if self.model is not None:
+            out.append(concentration_map(self.x0, self.s_x0, self.model.calibration, yx,
+                                         mask=self.m.mask))
+        return out
 
 
 def _stream_results(m, H, images, labels, sums, sq, counts, n_classes, class_domains, extras):

@@ -56,3 +56,11 @@ def test_unmix_needs_a_library(capsys, sample_map_path, tmp_path):
     with pytest.raises(SystemExit) as e:
         main(["unmix", str(sample_map_path), "--out", str(tmp_path)])
     assert e.value.code == 2
+
+
+def test_svg_figures(tmp_path, sample_map_path):
+    assert main(["bands", str(sample_map_path), "--band", "api:845-872", "--figure-format",
+                 "both", "--out", str(tmp_path)]) == 0
+    svg = (tmp_path / "tablet_map_api.svg").read_text()
+    assert svg.lstrip().startswith("<?xml") and "<svg" in svg and "µm" in svg
+    assert (tmp_path / "tablet_map_api.png").exists()

@@ -94,3 +94,28 @@ def test_in_memory_path_refuses_a_cube_that_will_not_fit(sample_map_path, tmp_pa
     monkeypatch.setattr(pipeline, "_memory_available", lambda: 10 << 20)
     with pytest.raises(MapkitError, match="GiB to process in memory"):
         pipeline.analyse(sample_map_path, tmp_path, progress=False)
+
+
+def test_chunkwise_bands_unmixing_and_content_match_in_memory(sample_dir, tmp_path, capsys):
+    import json
+
+    blend = str(sample_dir / "blend_map.h5")
+    common = ["--library", str(sample_dir / "library"), "--standards",
+              str(sample_dir / "calibration_standards.csv"), "--calibration-model", "quadratic",
+              "--band", "api:845-872", "--recipe", str(sample_dir / "tablet_recipe.toml"),
+              "--quiet", "--no-figures", "--components", "3", "--classes", "3"]
+    assert main(["analyse", blend, "--out", str(tmp_path / "mem"), *common]) == 0
+    assert main(["analyse", blend, "--chunked", "--out", str(tmp_path / "chunk"), *common]) == 0
+    assert "mode      chunk-wise" in capsys.readouterr().out
+    with h5py.File(tmp_path / "mem" / "results.h5") as a, \
+            h5py.File(tmp_path / "chunk" / "results.h5") as b:
+        for path in ("api/image/band_integral", "unmixing/abundance/abundance",
+                     "concentration/concentration/concentration",
+                     "concentration/concentration/concentration_errors",
+                     "concentration/flags/flags"):
+            x = a[f"/entry/results/{path}"][...]
+            y = b[f"/entry/results/{path}"][...]
+            np.testing.assert_allclose(y, x, rtol=1e-6, atol=1e-9, err_msg=path)
+    summary = json.loads((tmp_path / "chunk" / "summary.json").read_text())
+    assert summary["mode"] == "chunk-wise"
+    assert (tmp_path / "chunk" / "quant_model.json").exists()

@@ -102,18 +102,39 @@ def _jcamp(path: Path) -> Spectrum:
             xs.append((x0, len(yv)))
             ys.extend(yv)
         else:
+            if len(nums) % 2:
+                raise MapkitError(f"line {lineno} holds an odd number of values in an (XY..XY) "
+                                  "block", file=path, field=f"line {lineno}",
+                                  fix="give x,y pairs")
             xs.extend(nums[0::2])
             ys.extend(nums[1::2])
+        if any(isinstance(v, tuple) for v in xs) and not all(isinstance(v, tuple) for v in xs):
+            raise MapkitError("the file mixes ##XYDATA and ##XYPOINTS blocks", file=path,
+                              field="##XYDATA", fix="export one spectrum per file")
     if not ys:
         raise MapkitError("no ##XYDATA or ##XYPOINTS block found", file=path, field="##XYDATA",
                           fix="export the spectrum as JCAMP-DX with XYDATA")
-    xfactor = float(labels.get("XFACTOR", 1) or 1)
-    yfactor = float(labels.get("YFACTOR", 1) or 1)
+    def number(key, default):
+        text = labels.get(key, "")
+        if not text:
+            return default
+        try:
+            return float(text)
+        except ValueError:
+            raise MapkitError(f"##{key}={text!r} is not a number", file=path, field=f"##{key}",
+                              fix="repair the label or re-export the file") from None
+
+    xfactor = number("XFACTOR", 1.0) or 1.0
+    yfactor = number("YFACTOR", 1.0) or 1.0
     y = np.array(ys) * yfactor
-    if mode == "xydata" or isinstance(xs[0], tuple):
-        first = float(labels.get("FIRSTX", xs[0][0] * xfactor))
-        last = float(labels.get("LASTX", first))
-        n = int(float(labels.get("NPOINTS", y.size)))
+    if isinstance(xs[0], tuple):
+        first = number("FIRSTX", xs[0][0] * xfactor)
+        last = number("LASTX", first)
+        n = number("NPOINTS", float(y.size))
+        if not np.isfinite(n) or n != int(n):
+            raise MapkitError(f"##NPOINTS={n!r} is not a whole number", file=path,
+                              field="##NPOINTS", fix="re-export the file")
+        n = int(n)
         if n != y.size:
             raise MapkitError(f"##NPOINTS says {n} but {y.size} values were read", file=path,
                               field="##NPOINTS", fix="re-export the file; it may be truncated")

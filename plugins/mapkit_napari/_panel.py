@@ -37,6 +37,12 @@ class SpectrumPanel(QWidget):
                                            label="baseline (arPLS)")
         self.corrected_line, = self.ax.plot([], [], color="#56B4E9", lw=1.0,
                                             label="after baseline")
+        # the moving lines are drawn by blitting over a cached background, so following the
+        # cursor does not redraw the whole figure (a full draw costs tens of ms)
+        for line in (self.line, self.baseline_line, self.corrected_line):
+            line.set_animated(True)
+        self._background = None
+        self.canvas.mpl_connect("draw_event", self._on_draw)
         self.span = SpanSelector(self.ax, self.band_from_range, "horizontal", useblit=False,
                                  props={"alpha": 0.25, "facecolor": "#009E73"},
                                  interactive=False, minspan=1.0)
@@ -131,7 +137,36 @@ class SpectrumPanel(QWidget):
         flag = "  (masked pixel)" if m.mask[iy, ix] else ""
         self.status.setText(f"x = {m.x[ix]:.1f} µm, y = {m.y[iy]:.1f} µm  "
                             f"(column {ix}, row {iy}){flag}")
-        self._redraw()
+        if self._fits_view(shift, spec):
+            self._blit()
+        else:
+            self._redraw()
+
+    def _moving(self):
+        return [a for a in (self.line, self.baseline_line, self.corrected_line)
+                if len(a.get_xdata())]
+
+    def _fits_view(self, shift, spec):
+        """True when the spectrum fills the current view well enough to skip a rescale."""
+        if self._background is None or not len(spec):
+            return False
+        lo, hi = self.ax.get_ylim()
+        x0, x1 = sorted(self.ax.get_xlim())
+        top, bottom = float(np.nanmax(spec)), float(np.nanmin(spec))
+        return (bottom >= lo and top <= hi and (top - lo) >= 0.3 * (hi - lo)
+                and x0 <= np.min(shift) and x1 >= np.max(shift))
+
+    def _on_draw(self, event=None):
+        self._background = self.canvas.copy_from_bbox(self.ax.bbox)
+        for artist in self._moving():
+            self.ax.draw_artist(artist)
+        self.canvas.blit(self.ax.bbox)
+
+    def _blit(self):
+        self.canvas.restore_region(self._background)
+        for artist in self._moving():
+            self.ax.draw_artist(artist)
+        self.canvas.blit(self.ax.bbox)
 
     def _on_click(self, viewer, event):
         if event.type == "mouse_press" and event.button == 1:
@@ -225,8 +260,19 @@ class SpectrumPanel(QWidget):
         return new
 
     def _redraw(self):
-        self.ax.relim()
-        self.ax.autoscale_view()
+        # limits from every line shown (relim skips the animated, blitted ones)
+        lines = self._moving() + [p[-1] for p in self.pinned] + \
+            [a for a in self.region_lines if hasattr(a, "get_xdata")]
+        if lines:
+            xs = np.concatenate([np.asarray(a.get_xdata(), float) for a in lines])
+            ys = np.concatenate([np.asarray(a.get_ydata(), float) for a in lines])
+            ys = ys[np.isfinite(ys)]
+            if xs.size and ys.size:
+                lo, hi = float(ys.min()), float(ys.max())
+                pad = 0.05 * (hi - lo or 1.0)
+                self.ax.set_xlim(float(xs.min()), float(xs.max()))
+                # head-room above, so most cursor moves fit and only blit
+                self.ax.set_ylim(lo - pad, hi + 0.15 * (hi - lo or 1.0))
         handles = [h for h in (self.line, self.baseline_line, self.corrected_line)
                    if len(h.get_xdata())] + [p[-1] for p in self.pinned] + \
             [a for a in self.region_lines if hasattr(a, "get_xdata")]
