@@ -40,7 +40,6 @@ def main(path):
         pos = tuple(np.asarray(layer.data_to_world((iy, ix)))[-2:])
         t0 = time.perf_counter()
         viewer.cursor.position = pos          # fires the panel's handler (blit or redraw)
-        t1 = time.perf_counter()
         if panel.canvas.__dict__.get("_draw_pending"):
             panel.canvas.draw()               # a rescale was queued: count its full draw
         t2 = time.perf_counter()

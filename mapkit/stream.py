@@ -156,14 +156,15 @@ def analyse_large(map_path, outdir, *, recipe=None, n_components: int = 4, n_cla
                         g = good[y0:y0 + rows].ravel()
                         flat = block.reshape(-1, ns)[g]
                         offset = int(rng.integers(stride))
-                        sample.append(flat[offset::stride].astype(np.float64))
+                        sample.append(flat[offset::stride])          # float32: half the memory
                         bar.step("cleaning")
                         yield y0, block
 
                 dset = _write_cube_from(f, clean, cleaned_bands())
                 S = np.concatenate(sample)
+                sample.clear()
                 # components: NMF on the sample, refined by mini-batches over every band
-                Sc = np.clip(S, 0, None)
+                Sc = np.clip(S, 0, None).astype(np.float64)
                 base = NMF(n_components, init="nndsvda", random_state=seed, max_iter=400,
                            tol=1e-4).fit(Sc)
                 mb = MiniBatchNMF(n_components, init="custom", random_state=seed,
@@ -184,6 +185,7 @@ def analyse_large(map_path, outdir, *, recipe=None, n_components: int = 4, n_cla
                     bar.bar.update(len(starts) * epochs)
                 H = H / np.where(H.max(axis=1, keepdims=True) > 0, H.max(axis=1, keepdims=True),
                                  1.0)
+                del Sc
                 # classes: PCA + k-means on the normalised sample, refined over every band
                 Sn = normalise(S, clean.raman_shift, method="vector")
                 pca = PCA(n_components=min(8, Sn.shape[1], Sn.shape[0]), svd_solver="full",
@@ -193,6 +195,7 @@ def analyse_large(map_path, outdir, *, recipe=None, n_components: int = 4, n_cla
                 kmb = MiniBatchKMeans(n_clusters=n_classes, init=km0.cluster_centers_, n_init=1,
                                       random_state=seed, batch_size=4096)
                 kmb.partial_fit(pca.transform(Sn))
+                del S, Sn
                 # pass 2: images and labels band by band
                 images = np.full((n_components, ny, nx), np.nan)
                 extra = _Extras(clean, bands, library, model, baseline_order)
