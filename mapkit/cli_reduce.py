@@ -36,7 +36,7 @@ def _common(p, default_recipe="default"):
                    help="figure files to write (default png)")
 
 
-def _prepare(a, minimal=False):
+def _prepare(a, minimal=False, lazy_ok=False):
     from .preprocess.recipe import Recipe
     from .read import open_map
 
@@ -53,7 +53,13 @@ def _prepare(a, minimal=False):
         library = read_library(a.library)
     from .cli import _open_kwargs
 
-    m = open_map(a.map, **_open_kwargs(a)).load()
+    m = open_map(a.map, **_open_kwargs(a))
+    from .stream import fits_in_memory
+
+    if not (lazy_ok and m.is_lazy and not fits_in_memory(m)):
+        m = m.load()
+    elif not getattr(a, "quiet", False):
+        print("mode      chunk-wise (the cube would not fit comfortably in memory)")
     if recipe is not None:
         m, _ = recipe.apply(m)
     return m, library
@@ -148,7 +154,7 @@ def cmd_unmix(a):
 def cmd_peaks(a):
     from .reduce import peak_fit_map, stress_result
 
-    m, _ = _prepare(a, minimal=True)
+    m, _ = _prepare(a, minimal=True, lazy_ok=True)
     lo, hi = a.range
     res = peak_fit_map(m, lo, hi, shape=a.shape, n_peaks=a.peaks, centres=a.centres,
                        weights=a.weights)

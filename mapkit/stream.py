@@ -156,7 +156,8 @@ def analyse_large(map_path, outdir, *, recipe=None, n_components: int = 4, n_cla
                         g = good[y0:y0 + rows].ravel()
                         flat = block.reshape(-1, ns)[g]
                         offset = int(rng.integers(stride))
-                        sample.append(flat[offset::stride])          # float32: half the memory
+                        # a compact float32 copy: a view would keep the whole band alive
+                        sample.append(flat[offset::stride].copy())
                         bar.step("cleaning")
                         yield y0, block
 

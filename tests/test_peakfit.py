@@ -119,3 +119,17 @@ def test_bad_peak_requests():
         fit_peaks(y, S, 490, 550, n_peaks=2, centres=[520])
     with pytest.raises(MapkitError, match="cannot fit"):
         fit_peaks(y, S, 519, 522)
+
+
+def test_lazy_map_fits_like_in_memory(tmp_path):
+    """A map opened lazily is fitted from its window's channels alone, with the same result."""
+    from mapkit.export import write_map
+    from mapkit.read import open_map
+
+    y, _ = poisson_map(n=8 * 6)
+    m = RamanMap(y.reshape(8, 6, -1), raman_shift=S, x=np.arange(6.0), y=np.arange(8.0))
+    lazy = open_map(write_map(tmp_path / "m.h5", m))
+    assert lazy.is_lazy
+    a = peak_fit_map(m, 490, 550).fields["centre"]
+    b = peak_fit_map(lazy, 490, 550).fields["centre"]
+    np.testing.assert_allclose(b.data, a.data, rtol=1e-9)

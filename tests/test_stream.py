@@ -119,3 +119,14 @@ def test_chunkwise_bands_unmixing_and_content_match_in_memory(sample_dir, tmp_pa
     summary = json.loads((tmp_path / "chunk" / "summary.json").read_text())
     assert summary["mode"] == "chunk-wise"
     assert (tmp_path / "chunk" / "quant_model.json").exists()
+
+
+def test_peak_fit_command_goes_chunkwise_on_a_big_map(sample_map_path, tmp_path, capsys,
+                                                      monkeypatch):
+    import mapkit.stream as stream
+
+    monkeypatch.setattr(stream, "memory_available", lambda: 10 << 20)
+    assert main(["peaks", str(sample_map_path), "--range", "1075-1100", "--out", str(tmp_path),
+                 "--no-figures"]) == 0
+    out = capsys.readouterr().out
+    assert "mode      chunk-wise" in out and "lorentzian fit in 1075-1100" in out

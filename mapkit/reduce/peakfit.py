@@ -278,12 +278,19 @@ def peak_fit_map(m: RamanMap, lo: float, hi: float, *, shape: str = "lorentzian"
     a pixel whose fit did not converge, or whose centre left the window, reads 0).
     """
     ny, nx, ns = m.shape
-    flat = np.asarray(m.load().intensity, float).reshape(-1, ns)
+    # only the fit window is read: on a lazy map, chunk by chunk, so a cube larger than
+    # memory is fitted with the window's channels alone in memory
+    idx = crop_indices(m.raman_shift, lo, hi)
+    sel = slice(int(idx[0]), int(idx[-1]) + 1)
+    window = m.intensity[:, :, sel]
+    window = window.compute() if m.is_lazy else window
+    shift = m.raman_shift[sel]
+    flat = np.asarray(window, np.float32).reshape(-1, shift.size)
     good = np.flatnonzero(~m.mask.ravel())
     if good.size == 0:
         raise MapkitError("every pixel is masked; nothing to fit", file=m.source, field="mask",
                           fix="check the map's bad-pixel mask")
-    parts = [fit_peaks(flat[good[i:i + block]], m.raman_shift, lo, hi, shape=shape,
+    parts = [fit_peaks(flat[good[i:i + block]].astype(np.float64), shift, lo, hi, shape=shape,
                        n_peaks=n_peaks, centres=centres, weights=weights)
              for i in range(0, good.size, block)]
     fit = {k: (np.concatenate([p[k] for p in parts]) if k != "names" else parts[0][k])
