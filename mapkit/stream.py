@@ -189,7 +189,8 @@ def analyse_large(map_path, outdir, *, recipe=None, n_components: int = 4, n_cla
                 del Sc
                 # classes: PCA + k-means on the normalised sample, refined over every band
                 Sn = normalise(S, clean.raman_shift, method="vector")
-                pca = PCA(n_components=min(8, Sn.shape[1], Sn.shape[0]), svd_solver="full",
+                solver = "covariance_eigh" if Sn.shape[0] >= Sn.shape[1] else "full"
+                pca = PCA(n_components=min(8, Sn.shape[1], Sn.shape[0]), svd_solver=solver,
                           random_state=seed).fit(Sn)
                 km0 = KMeans(n_clusters=n_classes, n_init=10, random_state=seed).fit(
                     pca.transform(Sn))
@@ -216,8 +217,9 @@ def analyse_large(map_path, outdir, *, recipe=None, n_components: int = 4, n_cla
                     lab_img = np.full(g.size, -1, np.int16)
                     lab_img[g.ravel()] = lab
                     labels[y0:y0 + rows] = lab_img.reshape(g.shape)
-                    np.add.at(sums, lab, norm)
-                    np.add.at(sq, lab, norm ** 2)
+                    onehot = np.eye(n_classes)[lab]          # (n, k): far faster than add.at
+                    sums += onehot.T @ norm
+                    sq += onehot.T @ (norm * norm)
                     counts += np.bincount(lab, minlength=n_classes)
                     extra.add(y0, block.reshape(-1, ns)[g.ravel()], g)
                     bar.step("images")
