@@ -241,23 +241,16 @@ class MCRALS(TransformerMixin, BaseEstimator):
             S[k] = np.asarray(spec, float)
         norm_d = np.linalg.norm(X) or 1.0
         lof_old = np.inf
+        C = self._concentrations(S, X)
+        free = np.array([k not in fixed for k in range(self.n_components)])
         for it in range(1, self.max_iter + 1):
-            C = nnls_batch(S.T, X.T).T                       # (n_pix, k)
-            if self.closure:
-                total = C.sum(axis=1, keepdims=True)
-                C = np.divide(C, total, out=np.zeros_like(C), where=total > 0)
-            S_new = nnls_batch(C, X)                          # (k, n_shift)
+            S = nnls_batch(C, X)                              # (k, n_shift)
             for k, spec in fixed.items():
-                S_new[k] = np.asarray(spec, float)
-            scale = S_new.max(axis=1, keepdims=True)
+                S[k] = np.asarray(spec, float)
+            scale = S.max(axis=1, keepdims=True)
             scale[scale == 0] = 1.0
-            free = np.array([k not in fixed for k in range(self.n_components)])
-            S_new[free] /= scale[free]
-            S = S_new
-            C = nnls_batch(S.T, X.T).T
-            if self.closure:
-                total = C.sum(axis=1, keepdims=True)
-                C = np.divide(C, total, out=np.zeros_like(C), where=total > 0)
+            S[free] /= scale[free]
+            C = self._concentrations(S, X)                   # (n_pix, k)
             resid = np.linalg.norm(X - C @ S)
             lof = 100 * resid / norm_d
             if abs(lof_old - lof) <= self.tol * max(lof, 1e-300):
@@ -271,13 +264,17 @@ class MCRALS(TransformerMixin, BaseEstimator):
         self.fit_images_ = to_images(m, C, good)
         return self
 
-    def transform(self, m: RamanMap) -> np.ndarray:
-        X, good = good_spectra(m, what="MCR-ALS")
-        C = nnls_batch(self.components_.T, X.T).T
+    def _concentrations(self, S, X):
+        """Non-negative concentrations of spectra X on S, closed to one when asked."""
+        C = nnls_batch(S.T, X.T).T
         if self.closure:
             total = C.sum(axis=1, keepdims=True)
             C = np.divide(C, total, out=np.zeros_like(C), where=total > 0)
-        return to_images(m, C, good)
+        return C
+
+    def transform(self, m: RamanMap) -> np.ndarray:
+        X, good = good_spectra(m, what="MCR-ALS")
+        return to_images(m, self._concentrations(self.components_, X), good)
 
     def result(self, m: RamanMap, images=None, name: str = "mcr") -> Result:
         comp = _component_axis(self.n_components)
