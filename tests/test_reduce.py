@@ -29,6 +29,7 @@ def test_band_outside_axis_is_an_error():
 
 
 def test_nnls_batch_matches_scipy():
+    # reference: scipy.optimize.nnls (Lawson & Hanson 1974, Solving Least Squares Problems)
     rng = np.random.default_rng(7)
     A = np.abs(rng.normal(size=(60, 5)))
     Y = rng.normal(size=(60, 40)) + A @ np.abs(rng.normal(size=(5, 40)))
@@ -221,6 +222,7 @@ def test_library_matching_names_components(cleaned, sample_dir):
 
 
 def test_hqi_and_correlation_against_numpy():
+    # references: numpy.corrcoef (Pearson r); HQI is the squared cosine (common practice)
     from mapkit.reduce import correlation, hit_quality_index
 
     rng = np.random.default_rng(0)
