@@ -291,3 +291,64 @@ def test_compiled_and_numpy_spike_tests_agree(cleaned):
     fb, rb = spatial_spike_mask(cube, mask, engine="numpy")
     np.testing.assert_array_equal(fa, fb)
     np.testing.assert_allclose(ra[fa], rb[fb], rtol=1e-12)
+
+
+def test_spike_removal_engines_and_dtypes_agree(cleaned):
+    # the compiled path reads float32 as it is and writes the replacements into a float32
+    # copy; it must give the numpy engine's flags and values, whatever the input dtype
+    pytest.importorskip("numba")
+    from mapkit.preprocess.spikes import remove_spatial_spikes
+
+    m = cleaned["flagged"]
+    raw = np.asarray(m.intensity)
+    want, want_flags = remove_spatial_spikes(raw.astype(float), m.mask, engine="numpy")
+    assert want_flags.sum() > 0
+    for dtype in (np.float32, np.float64):
+        got, flags = remove_spatial_spikes(raw.astype(dtype), m.mask, engine="numba")
+        assert got.dtype == np.float32
+        np.testing.assert_array_equal(flags, want_flags)
+        np.testing.assert_allclose(got, want, rtol=1e-6)
+    assert remove_spatial_spikes(raw.astype(np.int32), m.mask)[0].dtype == np.float32
+    assert np.array_equal(np.asarray(m.intensity), raw)        # input untouched
+
+
+def test_sorting_network_sorts_every_input():
+    # zero-one principle (Knuth, TAOCP vol. 3, 5.3.4, exercise 5.3.4-1): a comparator
+    # network that sorts all 2^8 inputs of zeros and ones sorts every input of 8 values
+    pytest.importorskip("numba")
+    from mapkit.preprocess._spikes_kernel import NETWORK8
+
+    for bits in range(256):
+        v = [(bits >> i) & 1 for i in range(8)]
+        for a, b in NETWORK8:
+            v[a], v[b] = min(v[a], v[b]), max(v[a], v[b])
+        assert v == sorted(v)
+
+
+def test_kernel_median_matches_numpy():
+    # reference: numpy.median (mean of the two middle values for an even count)
+    pytest.importorskip("numba")
+    from mapkit.preprocess._spikes_kernel import _median_inplace
+
+    rng = np.random.default_rng(7)
+    for t in range(500):
+        n = int(rng.integers(1, 300))
+        v = rng.integers(0, 5, n).astype(float) if t % 2 else rng.normal(size=n)
+        assert _median_inplace(v.copy()) == np.median(v)
+
+
+@pytest.mark.parametrize("rows", [1, 15, 16, 17, 40])
+def test_compiled_solvers_handle_partial_lane_blocks(rows):
+    # the compiled solvers work on blocks of LANES spectra; a short last block must give
+    # each spectrum exactly what the numpy recurrence gives it
+    pytest.importorskip("numba")
+    rng = np.random.default_rng(rows)
+    y = rng.normal(size=(rows, 120)).cumsum(axis=1) + 50 * np.exp(-((np.arange(120) - 60) / 3) ** 2)
+    w = rng.uniform(0, 1, y.shape)
+    np.testing.assert_allclose(weighted_whittaker(w, y, 1e3, engine="numba"),
+                               weighted_whittaker(w, y, 1e3, engine="numpy"), rtol=1e-9, atol=1e-9)
+    info_a, info_b = {}, {}
+    np.testing.assert_allclose(als_baseline(y, lam=1e3, engine="numba", info=info_a),
+                               als_baseline(y, lam=1e3, engine="numpy", info=info_b),
+                               rtol=1e-9, atol=1e-9)
+    np.testing.assert_array_equal(info_a["converged"], info_b["converged"])

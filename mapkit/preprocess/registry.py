@@ -210,27 +210,28 @@ def _despike(m, method, threshold, grow=3.0, width=2):
         import dask.array as da
 
         mask = da.from_array(m.mask[..., None], chunks=m.intensity.chunks[:2] + ((1,),))
-        cube = m.intensity.rechunk({2: -1}).astype(np.float64)
+        cube = m.intensity.rechunk({2: -1})
 
-        def on_chunk(c, mk):
-            sp, rep = _spikes.spatial_spike_mask(c, mk[..., 0], threshold=threshold, grow=grow)
-            return np.concatenate([np.where(sp, rep, c), sp], axis=-1)
+        def cleaned(c, mk):
+            return _spikes.remove_spatial_spikes(c, mk[..., 0], threshold=threshold,
+                                                 grow=grow)[0]
 
-        # each chunk sees a one-pixel halo of its neighbours, so results match the whole map
+        def flagged(c, mk):
+            return _spikes.remove_spatial_spikes(c, mk[..., 0], threshold=threshold,
+                                                 grow=grow)[1]
+
+        # each chunk sees a one-pixel halo of its neighbours, so results match the whole map;
+        # the flags are a graph of their own, computed only when someone asks for them
         depth = {0: 1, 1: 1, 2: 0}
         cube_h = da.overlap.overlap(cube, depth=depth, boundary="none")
         mask_h = da.overlap.overlap(mask, depth=depth, boundary="none")
-        both = da.map_blocks(on_chunk, cube_h, mask_h, dtype=np.float64,
-                             chunks=cube_h.chunks[:2] + ((2 * ns,),))
-        both = da.overlap.trim_internal(both, depth, boundary="none")
-        out = both[..., :ns].astype(np.float32)
-        flags = both[..., ns:] > 0
-        params = {"method": method, "threshold": threshold, "grow": grow}
+        out, flags = (da.overlap.trim_internal(da.map_blocks(f, cube_h, mask_h, dtype=t), depth,
+                                               boundary="none")
+                      for f, t in ((cleaned, np.float32), (flagged, bool)))
     else:
-        cube = np.asarray(m.intensity, dtype=np.float64)
-        flags, replacement = _spikes.spatial_spike_mask(cube, m.mask, threshold=threshold,
-                                                        grow=grow)
-        out = np.where(flags, replacement, cube).astype(np.float32)
+        out, flags = _spikes.remove_spatial_spikes(np.asarray(m.intensity), m.mask,
+                                                   threshold=threshold, grow=grow)
+    if method != "spectral":
         params = {"method": method, "threshold": threshold, "grow": grow}
     if not m.is_lazy or method == "spectral":
         params.update(channels_replaced=int(np.sum(flags)),

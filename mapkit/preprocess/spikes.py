@@ -114,16 +114,53 @@ def spatial_spike_mask(cube, mask=None, *, threshold: float = 8.0, grow: float =
     if engine == "numba" or (engine == "auto" and HAVE_NUMBA):
         from ._spikes_kernel import spatial_spikes
 
-        idx = sampled_channels(n)
-        level = np.median(cube[..., idx], axis=-1)
-        return spatial_spikes(np.ascontiguousarray(cube), np.ascontiguousarray(mask), level,
-                              float(threshold), float(grow), idx)
+        return spatial_spikes(np.ascontiguousarray(cube), np.ascontiguousarray(mask),
+                              float(threshold), float(grow), sampled_channels(n))
     nb = _neighbours(cube, mask)
     level = np.median(cube[..., sampled_channels(n)], axis=-1)  # (ny, nx): overall level
     nb_level = _neighbours(level[..., None], mask)[..., 0]  # (8, ny, nx), NaN off the map
     with warnings.catch_warnings():  # all-NaN neighbours (edges, masked) are handled below
         warnings.simplefilter("ignore", RuntimeWarning)
         return _spatial(cube, mask, nb, level, nb_level, threshold, grow)
+
+
+def remove_spatial_spikes(cube, mask=None, *, threshold: float = 8.0, grow: float = 3.0,
+                          engine: str = "auto"):
+    """Replace the spikes :func:`spatial_spike_mask` finds by the scaled neighbour median.
+
+    Returns ``(cleaned, spikes)``: a float32 cube and the boolean spike mask. The compiled
+    engine reads float32 or float64 input as it is (every comparison is made in float64
+    either way) and writes the replacements straight into the float32 copy.
+
+    Examples
+    --------
+    >>> cube = np.full((3, 3, 40), 100.0)
+    >>> cube[1, 1, 20] = 900.0
+    >>> cleaned, spikes = remove_spatial_spikes(cube)
+    >>> int(spikes.sum()), float(cleaned[1, 1, 20])
+    (1, 100.0)
+    """
+    from ._spikes_kernel import HAVE_NUMBA
+
+    ny, nx, n = np.shape(cube)
+    mask = np.zeros((ny, nx), bool) if mask is None else np.ascontiguousarray(mask, bool)
+    if engine == "numba" or (engine == "auto" and HAVE_NUMBA):
+        from ._spikes_kernel import sampled_levels, spatial_spikes_into
+
+        src = np.asarray(cube)
+        if src.dtype not in (np.float32, np.float64):
+            src = src.astype(np.float64)
+        src = np.ascontiguousarray(src)
+        idx = sampled_channels(n)
+        cleaned = src.astype(np.float32)
+        spikes = np.zeros(src.shape, bool)
+        values, level = sampled_levels(src, idx)
+        spatial_spikes_into(src, mask, values, level, float(threshold), float(grow), idx,
+                            spikes, cleaned)
+        return cleaned, spikes
+    spikes, replacement = spatial_spike_mask(cube, mask, threshold=threshold, grow=grow,
+                                             engine="numpy")
+    return np.where(spikes, replacement, cube).astype(np.float32), spikes
 
 
 def _spatial(cube, mask, nb, level, nb_level, threshold, grow):
