@@ -15,7 +15,7 @@ MAP_SUFFIXES = _HDF5 + _TEXT
 
 def open_map(path, *, dataset: str | None = None, axes=None, shift: str | None = None,
              x: str | None = None, y: str | None = None, pixel_size: float | None = None,
-             laser_wavelength: float | None = None) -> RamanMap:
+             laser_wavelength: float | None = None, block_bytes: int | None = None) -> RamanMap:
     """Open a map lazily from a mapkit NeXus file, any HDF5 dataset, or a text table.
 
     Parameters
@@ -27,6 +27,9 @@ def open_map(path, *, dataset: str | None = None, axes=None, shift: str | None =
         datasets (or a pixel size in µm). Not used for mapkit files or tables.
     laser_wavelength : float, optional
         Excitation wavelength in nm, when the file does not record it.
+    block_bytes : int, optional
+        For a mapkit file: read the cube in blocks of about this size (whole-cube passes)
+        instead of one file chunk at a time (single-pixel reads).
     """
     from .hdf5 import read_hdf5_dataset
     from .nexus import read_nexus_map
@@ -44,7 +47,7 @@ def open_map(path, *, dataset: str | None = None, axes=None, shift: str | None =
                                  pixel_size=pixel_size, laser_wavelength=laser_wavelength)
     if p.suffix.lower() in _TEXT:
         return read_table(p, laser_wavelength=laser_wavelength)
-    m = read_nexus_map(p)
+    m = read_nexus_map(p, block_bytes=block_bytes)
     if laser_wavelength is not None and m.laser_wavelength is None:
         from dataclasses import replace
         m = replace(m, laser_wavelength=laser_wavelength)

@@ -52,11 +52,15 @@ def _read_chunk(path, name, block_info=None):
         return f[name][tuple(slice(a, b) for a, b in loc)]
 
 
-def lazy_cube(dset, *, source, field: str):
+def lazy_cube(dset, *, source, field: str, block_bytes: int | None = None):
     """A Dask array over an HDF5 dataset: nothing is read until asked.
 
     Each chunk task opens the file by path and reads its slice, so the array can be
-    computed by threads or by the worker processes of a Dask cluster alike.
+    computed by threads or by the worker processes of a Dask cluster alike. By default a
+    Dask chunk is one file chunk (a pixel read touches the least data: what the viewer
+    wants); ``block_bytes`` groups whole file chunks along x, then y, into reads of about
+    that size (what a pass over the whole cube wants: one file open and one HDF5 call per
+    block instead of per tile).
     """
     import dask.array as da
 
@@ -69,10 +73,30 @@ def lazy_cube(dset, *, source, field: str):
     chunks = dset.chunks or layout.pixel_tile(*dset.shape[:2], dset.shape[-1])
     if len(dset.shape) == 3:
         chunks = (chunks[0], chunks[1], dset.shape[2])
+        if block_bytes:
+            chunks = _grouped_tiles(chunks, dset.shape, dset.dtype.itemsize, block_bytes)
     normalized = da.core.normalize_chunks(chunks, dset.shape)
     return da.map_blocks(_read_chunk, str(Path(dset.file.filename).resolve()), dset.name,
                          chunks=normalized, dtype=dset.dtype,
                          meta=np.empty((0,) * len(dset.shape), dset.dtype))
+
+
+def _grouped_tiles(tile, shape, itemsize, block_bytes):
+    """Chunk shape of whole ``tile``s, about ``block_bytes``: along x first, then y.
+
+    Examples
+    --------
+    >>> _grouped_tiles((16, 16, 1024), (1000, 1000, 1024), 4, 8 << 20)
+    (16, 128, 1024)
+    >>> _grouped_tiles((16, 16, 600), (48, 64, 600), 4, 8 << 20)
+    (48, 64, 600)
+    """
+    ty, tx, ns = tile
+    ny, nx = shape[:2]
+    per_block = max(1, block_bytes // max(1, ty * tx * ns * itemsize))
+    kx = min(-(-nx // tx), per_block)
+    ky = min(-(-ny // ty), max(1, per_block // kx)) if kx * tx >= nx else 1
+    return min(ky * ty, ny), min(kx * tx, nx), ns
 
 
 def parse_axes(axes) -> tuple[str, str, str]:

@@ -24,24 +24,26 @@ def is_nexus_map(path) -> bool:
         return False
 
 
-def read_nexus_map(path) -> RamanMap:
+def read_nexus_map(path, *, block_bytes: int | None = None) -> RamanMap:
     """Open a map file lazily: axes are read, the cube stays on disk.
 
-    The file is opened read-only and closed again; chunks are read on demand.
+    The file is opened read-only and closed again; chunks are read on demand (one file
+    chunk at a time, or blocks of about ``block_bytes``: see :func:`lazy_cube`).
     Errors name the dataset path that is wrong.
     """
     with open_h5(path) as f:
-        return _read_nexus(f, path)
+        return _read_nexus(f, path, block_bytes)
 
 
-def _read_nexus(f, path):
+def _read_nexus(f, path, block_bytes=None):
     hint = ("write the map in the mapkit layout (docs/file-layout.md), or read the cube by "
             "path with --dataset and --axes")
     cube_ds = dataset(f, layout.INTENSITY, source=path, hint=hint)
     if cube_ds.ndim != 3:
         raise MapkitError(f"intensity has rank {cube_ds.ndim}, the layout needs 3 (y, x, raman_shift)",
                           file=path, field=layout.INTENSITY, fix="store the cube as (y, x, raman_shift)")
-    cube = lazy_cube(cube_ds, source=path, field=layout.INTENSITY)
+    cube = lazy_cube(cube_ds, source=path, field=layout.INTENSITY,
+                     block_bytes=block_bytes)
 
     def axis(name):
         d = dataset(f, f"{layout.MAP}/{name}", source=path, hint=hint)
