@@ -138,3 +138,20 @@ def test_library_with_duplicate_names(tmp_path):
             write_jcamp(tmp_path / name, "a", np.array([100.0, 200.0]), np.array([1.0, 2.0]))
     with pytest.raises(MapkitError, match="more than once"):
         read_library(tmp_path)
+
+
+@pytest.mark.parametrize("block_bytes", [None, 1, 700_000, 64 << 20])
+def test_block_reads_give_the_same_cube(sample_map_path, block_bytes):
+    # reference: h5py reading the whole dataset at once
+    with h5py.File(sample_map_path) as f:
+        want = f["entry/map/intensity"][...]
+        tile = f["entry/map/intensity"].chunks
+    m = open_map(sample_map_path, block_bytes=block_bytes)
+    ty, tx = m.intensity.chunksize[:2]
+    assert ty % tile[0] == 0 or ty == want.shape[0]          # whole file chunks only
+    assert tx % tile[1] == 0 or tx == want.shape[1]
+    if block_bytes in (None, 1):
+        assert (ty, tx) == tile[:2]
+    elif block_bytes > want.nbytes:
+        assert m.intensity.numblocks == (1, 1, 1)
+    np.testing.assert_array_equal(m.intensity.compute(), want)
