@@ -3,11 +3,12 @@
 Every spectrum of a block needs (W + λ DᵀD) z = W y with its own weights W and the same
 second-difference penalty D: a symmetric positive-definite pentadiagonal system. The
 compiled kernel factorises the systems (LDLᵀ) of 16 spectra side by side (vector units),
-blocks of them in parallel, and releases the GIL; for ALS the whole reweighting loop runs
-compiled. The numpy fallback runs the same recurrence along the channel axis, vectorised
-across spectra, when numba is unavailable. Measured on 2 cores (benchmarks/RESULTS.md): the
-compiled ALS is ~15x a per-spectrum pybaselines loop, the numpy one ~1.1x, which is why
-the extra dependency is worth it.
+blocks of them in parallel, and releases the GIL; the whole reweighting loop of ALS,
+arPLS and airPLS runs compiled (weights computed lane by lane as baseline.py's numpy
+versions compute them). The numpy fallback runs the same recurrence
+along the channel axis, vectorised across spectra, when numba is unavailable. Measured on 2
+cores (benchmarks/RESULTS.md): the compiled ALS is ~60x a per-spectrum pybaselines loop,
+the numpy one ~1.1x, which is why the extra dependency is worth it.
 """
 
 from __future__ import annotations
@@ -73,6 +74,12 @@ def _weighted_numpy(w, y, d0, d1, d2):
     m, n = y.shape
     return solve_pentadiagonal(w + d0, np.broadcast_to(d1, (m, n - 1)),
                                np.broadcast_to(d2, (m, n - 2)), w * y)
+
+
+#: weighting schemes of the compiled reweighting loop
+ALS, ARPLS, AIRPLS = 0, 1, 2
+EPS = np.finfo(np.float64).eps
+LOG_CAP = np.log(np.finfo(float).max) - np.spacing(np.log(np.finfo(float).max))
 
 
 #: spectra solved side by side by the compiled kernels. The LDLᵀ recurrence is sequential
@@ -155,15 +162,76 @@ if HAVE_NUMBA:
                     out[s0 + j, i] = Z[i, j]
         return out
 
+    @numba.njit(cache=True, nogil=True, inline="always")
+    def _new_weights(kind, it, p, Y, Z, W, q, change, stop, y_l1):  # pragma: no cover
+        # the next weights into q, each lane's convergence measure and early stop, as
+        # baseline.py's numpy versions compute them (tests compare the two engines)
+        n, lanes = Y.shape
+        num = np.zeros(lanes)
+        den = np.zeros(lanes)
+        if kind == ALS:
+            for i in range(n):
+                for j in range(lanes):
+                    new = p if Y[i, j] > Z[i, j] else 1.0 - p
+                    num[j] += (new - W[i, j]) ** 2
+                    den[j] += W[i, j] * W[i, j]
+                    q[i, j] = new
+            for j in range(lanes):
+                change[j] = np.sqrt(num[j]) / max(np.sqrt(den[j]), EPS)
+                stop[j] = False
+            return
+        cnt = np.zeros(lanes)
+        tot = np.zeros(lanes)
+        for i in range(n):
+            for j in range(lanes):
+                r = Y[i, j] - Z[i, j]
+                if r < 0:
+                    cnt[j] += 1.0
+                    tot[j] += r
+        for j in range(lanes):
+            stop[j] = cnt[j] < 2
+        if kind == ARPLS:   # logistic in the residual, scaled by the negative residuals
+            mean = tot / np.maximum(cnt, 1.0)
+            sd = np.zeros(lanes)
+            for i in range(n):
+                for j in range(lanes):
+                    r = Y[i, j] - Z[i, j]
+                    if r < 0:
+                        sd[j] += (r - mean[j]) ** 2
+            for j in range(lanes):
+                sd[j] = np.sqrt(sd[j] / max(cnt[j] - 1.0, 1.0))
+                if sd[j] == 0:
+                    sd[j] = EPS
+            for i in range(n):
+                for j in range(lanes):
+                    x = -(2 / sd[j]) * ((Y[i, j] - Z[i, j]) - (2 * sd[j] - mean[j]))
+                    new = 1.0 / (1.0 + np.exp(-x))     # scipy.special.expit's formula
+                    num[j] += (new - W[i, j]) ** 2
+                    den[j] += W[i, j] * W[i, j]
+                    q[i, j] = new
+            for j in range(lanes):
+                change[j] = np.sqrt(num[j]) / max(np.sqrt(den[j]), EPS)
+            return
+        # airPLS: exp(t·|r|/|Σr⁻|) below the baseline, 0 above; converged when |Σr⁻| is
+        # below tol·Σ|y| (so the measure handed back is |Σr⁻| / Σ|y|)
+        t = min(it, 50)
+        for j in range(lanes):
+            change[j] = abs(tot[j]) / y_l1[j] if y_l1[j] > 0 else 0.0
+            if tot[j] == 0:
+                tot[j] = -1.0
+        for i in range(n):
+            for j in range(lanes):
+                r = Y[i, j] - Z[i, j]
+                q[i, j] = np.exp(min(max((t / tot[j]) * r, 0.0), LOG_CAP)) if r < 0 else 0.0
+
     @numba.njit(parallel=True, cache=True, nogil=True)
-    def _als_numba(y, d0, d1, d2, p, max_iter, tol):  # pragma: no cover - compiled
+    def _reweighted_numba(y, d0, d1, d2, kind, p, max_iter, tol):  # pragma: no cover
         # the whole reweighting loop per block of spectra: no array traffic between
-        # iterations; a lane that has converged keeps computing (the block runs until its
+        # iterations; a lane that has stopped keeps computing (the block runs until its
         # slowest lane stops) but its stored result is the one of the iteration it stopped at
         m, n = y.shape
         out = np.empty((m, n))
         converged = np.zeros(m, np.bool_)
-        eps = np.finfo(np.float64).eps
         for b in numba.prange((m + LANES - 1) // LANES):
             s0 = b * LANES
             lanes = min(LANES, m - s0)
@@ -177,30 +245,25 @@ if HAVE_NUMBA:
             dm1 = np.empty(LANES)
             zm2 = np.empty(LANES)
             zm1 = np.empty(LANES)
-            num = np.empty(LANES)
-            den = np.empty(LANES)
+            change = np.empty(LANES)
+            stop = np.zeros(LANES, np.bool_)
             done = np.zeros(LANES, np.bool_)
-            done[lanes:] = True
             _load_lanes(y, s0, Y)
-            for it in range(max_iter + 1):
+            y_l1 = np.zeros(LANES)
+            for i in range(n):
+                for j in range(LANES):
+                    y_l1[j] += abs(Y[i, j])
+            for it in range(1, max_iter + 2):
                 _solve_lanes(W, Y, d0, d1, d2, l1, l2, q, Z, dm2, dm1, zm2, zm1)
-                num[:] = 0.0
-                den[:] = 0.0
-                for i in range(n):
-                    for j in range(LANES):
-                        new = p if Y[i, j] > Z[i, j] else 1.0 - p
-                        num[j] += (new - W[i, j]) ** 2
-                        den[j] += W[i, j] * W[i, j]
-                        q[i, j] = new
+                _new_weights(kind, it, p, Y, Z, W, q, change, stop, y_l1)
                 running = False
                 for j in range(lanes):
                     if done[j]:
                         continue
-                    stop = it == max_iter
-                    if np.sqrt(num[j]) / max(np.sqrt(den[j]), eps) < tol:
+                    finished = stop[j] or change[j] < tol
+                    if finished:
                         converged[s0 + j] = True
-                        stop = True
-                    if stop:
+                    if finished or it == max_iter + 1:
                         done[j] = True
                         for i in range(n):
                             out[s0 + j, i] = Z[i, j]
@@ -212,13 +275,15 @@ if HAVE_NUMBA:
         return out, converged
 
 
-def als_solve(y, lam: float, p: float, max_iter: int, tol: float):
-    """Compiled ALS on every row of ``y``: (baselines, converged flags), or None without numba."""
+def reweighted_solve(y, lam: float, kind: int, *, p: float = 0.01, max_iter: int = 50,
+                     tol: float = 1e-3):
+    """Compiled ALS/arPLS/airPLS (``kind``) on every row of ``y``: (baselines, converged
+    flags), or None without numba."""
     if not HAVE_NUMBA:
         return None
     d0, d1, d2 = penalty_diagonals(y.shape[1], lam)
-    return _als_numba(np.ascontiguousarray(y, dtype=np.float64), d0, d1, d2, float(p),
-                      int(max_iter), float(tol))
+    return _reweighted_numba(np.ascontiguousarray(y, dtype=np.float64), d0, d1, d2, int(kind),
+                             float(p), int(max_iter), float(tol))
 
 
 def weighted_whittaker(w, y, lam: float, *, engine: str = "auto"):

@@ -14,7 +14,7 @@ from scipy.ndimage import grey_dilation, grey_erosion, grey_opening
 from scipy.special import expit
 
 from ..errors import MapkitError
-from ._banded import als_solve, weighted_whittaker
+from ._banded import AIRPLS, ALS, ARPLS, reweighted_solve, weighted_whittaker
 
 _EPS = np.finfo(float).eps
 
@@ -47,6 +47,19 @@ def _report(info, converged=None, *, m=None, active=None):
         converged = np.ones(m, bool)
         converged[active] = False
     info["converged"] = np.asarray(converged, bool)
+
+
+def _compiled(y, lam, kind, engine, info, **params):
+    """The baselines from the compiled loop, or None where the numpy loop must run."""
+    if engine not in ("auto", "numba"):
+        return None
+    solved = reweighted_solve(y, lam, kind, **params)
+    if solved is None:
+        if engine == "numba":
+            raise RuntimeError("numba is not installed")
+        return None
+    _report(info, solved[1])
+    return solved[0]
 
 
 def _reweighted(y, lam, weigh, max_iter, tol, engine, info=None):
@@ -103,12 +116,9 @@ def als_baseline(block, shift=None, *, lam: float = 1e5, p: float = 0.01, max_it
         raise MapkitError(f"p = {p} is outside (0, 1)", field="p", fix="use 0.001-0.1")
     _check_lam(lam)
     y, single = _prepare(block)
-    if engine in ("auto", "numba"):
-        solved = als_solve(y, lam, p, max_iter, tol)
-        if solved is not None:
-            z, converged = solved
-            _report(info, converged)
-            return z[0] if single else z
+    solved = _compiled(y, lam, ALS, engine, info, p=p, max_iter=max_iter, tol=tol)
+    if solved is not None:
+        return solved[0] if single else solved
 
     def weigh(ya, za, wa, it):
         new = np.where(ya > za, p, 1 - p)
@@ -136,6 +146,9 @@ def arpls_baseline(block, shift=None, *, lam: float = 1e5, max_iter: int = 50,
     """
     _check_lam(lam)
     y, single = _prepare(block)
+    solved = _compiled(y, lam, ARPLS, engine, info, max_iter=max_iter, tol=tol)
+    if solved is not None:
+        return solved[0] if single else solved
 
     def weigh(ya, za, wa, it):
         r = ya - za
@@ -163,6 +176,9 @@ def airpls_baseline(block, shift=None, *, lam: float = 1e6, max_iter: int = 50,
     """
     _check_lam(lam)
     y, single = _prepare(block)
+    solved = _compiled(y, lam, AIRPLS, engine, info, max_iter=max_iter, tol=tol)
+    if solved is not None:
+        return solved[0] if single else solved
     y_l1 = np.abs(y).sum(axis=1)
     log_max = np.log(np.finfo(float).max)
     z = np.empty_like(y)
