@@ -78,10 +78,13 @@ def make_cube(path, ny, nx, ns, seed=0):
 def run_pipeline(cube, out, extra=()):
     recipe = Path(out).with_suffix(".toml")
     recipe.write_text(RECIPE)
-    # the child reports its own peak RSS (RUSAGE_CHILDREN would keep the largest so far)
-    wrapper = ("import resource, sys\nfrom mapkit.cli import main\nrc = main(sys.argv[1:])\n"
-               "print('PEAK_RSS_KIB', resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)\n"
-               "sys.exit(rc)")
+    # the child reports its own peak RSS as VmHWM, the high-water mark of its own address
+    # space. Not ru_maxrss: Linux carries the parent's RSS at fork over into the child's
+    # ru_maxrss across exec, which made a child started late in this script report this
+    # script's 2.3 GiB instead of its own 1.3 GiB.
+    wrapper = ("import sys\nfrom mapkit.cli import main\nrc = main(sys.argv[1:])\n"
+               "hwm = open('/proc/self/status').read().split('VmHWM:')[1].split()[0]\n"
+               "print('PEAK_RSS_KIB', hwm)\nsys.exit(rc)")
     t0 = time.perf_counter()
     done = subprocess.run([sys.executable, "-c", wrapper, "analyse", str(cube), "--chunked",
                            "--recipe", str(recipe), "--out", str(out), "--overwrite", "--quiet",
@@ -92,7 +95,7 @@ def run_pipeline(cube, out, extra=()):
     print("   " + "\n   ".join(line for line in done.stdout.splitlines()
                                  if not line.startswith("PEAK")))
     peak = int(done.stdout.split("PEAK_RSS_KIB")[1].split()[0])
-    return wall, peak / 2**20   # ru_maxrss is in KiB on Linux
+    return wall, peak / 2**20   # VmHWM is in KiB
 
 
 def read_and_sum(cube):

@@ -7,7 +7,6 @@ and the viewer agree.
 
 from __future__ import annotations
 
-import warnings
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
@@ -89,12 +88,10 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     from tqdm.auto import tqdm
 
     from .export.bundle import safe_name, write_bundle, write_summary
-    from .preprocess import normalise_map
     from .preprocess.quality import snr
     from .quantify import class_regions, polygon_mask, region_statistics
     from .read import open_map, read_library
-    from .reduce import (KMeansClasses, NMFComponents, ReferenceUnmixing, band_image,
-                         match_library)
+    from .reduce import band_image
 
     s = settings or Settings()
     outdir = Path(outdir)
@@ -104,7 +101,7 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     outdir.mkdir(parents=True, exist_ok=True)
     recipe = recipe or Recipe.default()
     stages = ["read"] + [name for name, _ in recipe.steps] + [
-        "normalise", "bands", "NMF", "k-means", "unmixing", "concentration", "write"]
+        "bands", "NMF", "k-means", "unmixing", "concentration", "write"]
     bar = tqdm(total=len(stages), desc="mapkit", unit="step", disable=not progress, leave=False)
 
     def stage(name):
@@ -141,9 +138,6 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     bad_report = extras.get("mask_bad_pixels", {}).get("report",
                                                        {"nonfinite": 0, "dead": 0, "saturated": 0})
     spikes = extras.get("despike", {}).get("spikes")
-    stage("normalise")
-    normed = normalise_map(corrected, method=s.normalisation)
-    bar.update()
 
     results: list[Result] = []
     stage("bands")
@@ -154,39 +148,31 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
             raise MapkitError(exc.problem, file=map_path, field=f"--band {name}:{lo:g}-{hi:g}",
                               fix=exc.fix) from None
     bar.update()
+    # the same calls as the reduction subcommands and the viewer make (one place for each)
     stage("NMF")
-    nmf = NMFComponents(n_components=s.n_components, random_state=s.seed)
-    nmf.fit(corrected)
-    nmf_result = nmf.result(corrected, nmf.fit_images_)
+    nmf_result, = run_method(corrected, "nmf", n=s.n_components, seed=s.seed, library=refs)
     results.append(nmf_result)
     bar.update()
     stage("k-means")
-    km = KMeansClasses(n_classes=s.n_classes, random_state=s.seed).fit(normed)
-    km_result = km.result(normed)
+    km_result, = run_method(corrected, "kmeans", n=s.n_classes, seed=s.seed, library=refs,
+                            normalisation=s.normalisation, name="kmeans")
     results.append(km_result)
     bar.update()
     stage("unmixing")
     notices = []
     calibration = None
     if refs is not None:
-        with warnings.catch_warnings(record=True) as caught:
-            warnings.simplefilter("always")
-            unmixer = ReferenceUnmixing(refs, baseline_order=s.unmix_baseline_order).fit(corrected)
-        notices += [str(w.message) for w in caught]
-        unmix_result = unmixer.result(corrected)
+        unmix_result, = run_method(corrected, "unmix", library=refs,
+                                   baseline_order=s.unmix_baseline_order)
+        notices += unmix_result.summary.pop("notices", [])
         results.append(unmix_result)
-        # name the NMF components and the classes from the same library
-        nmf_result.summary["identification"] = match_library(
-            nmf.components_, corrected.raman_shift, refs,
-            names=[f"component {i + 1}" for i in range(s.n_components)])
-        km_result.summary["identification"] = match_library(
-            km.class_mean_, corrected.raman_shift, refs, names=list(km_result.summary["areas"]))
     bar.update()
     stage("concentration")
     if model is not None:
         conc = model.apply(corrected, refs)
         calibration = model.calibration
-        region_masks = class_regions(km.labels_, list(km_result.summary["areas"]))
+        region_masks = class_regions(km_result.fields["labels"].data,
+                                     list(km_result.summary["areas"]))
         for name, verts in (regions or {}).items():
             region_masks[name] = polygon_mask(corrected.x, corrected.y, verts)
         conc.summary["regions"] = region_statistics(conc.fields["concentration"].data,
@@ -261,11 +247,14 @@ METHODS = ("nmf", "mcr", "pca", "kmeans", "minibatch", "ward", "unmix", "fcls", 
 
 def run_method(m, method: str, *, n: int = 4, seed: int = 0, library=None, model=None,
                init: str = "nndsvda", closure: bool = False, smooth: float = 0.0,
-               baseline_order: int | None = 5, min_score: float = 0.9):
+               baseline_order: int | None = 5, min_score: float = 0.9,
+               normalisation: str = "vector", name: str = "classes"):
     """Run one reduction or quantification method on a cleaned map; returns its Results.
 
-    The command line's ``components``, ``classes`` and ``unmix`` subcommands and the
-    napari analysis panel all call this, so they give the same numbers.
+    The command line's ``analyse``, ``components``, ``classes`` and ``unmix`` subcommands
+    and the napari analysis panel all call this, so they give the same numbers.
+    ``normalisation`` and ``name`` apply to the classifications (spectra are normalised
+    before clustering; ``name`` is the result's name).
     """
     import warnings
 
@@ -292,9 +281,9 @@ def run_method(m, method: str, *, n: int = 4, seed: int = 0, library=None, model
                                                           min_score=min_score)
         return [res]
     if method in ("kmeans", "minibatch", "ward"):
-        normed = normalise_map(m, method="vector")
+        normed = normalise_map(m, method=normalisation)
         km = KMeansClasses(n_classes=n, method=method, smooth=smooth, random_state=seed)
-        res = km.fit(normed).result(normed, name="classes")
+        res = km.fit(normed).result(normed, name=name)
         if library:
             res.summary["identification"] = match_library(km.class_mean_, m.raman_shift, library,
                                                           names=list(res.summary["areas"]),
