@@ -130,6 +130,13 @@ if HAVE_NUMBA:
                 Z[i, j] = q[i, j] - l1[i + 1, j] * Z[i + 1, j] - l2[i + 2, j] * Z[i + 2, j]
 
     @numba.njit(cache=True, nogil=True, inline="always")
+    def _lane_scratch(n):  # pragma: no cover - compiled
+        # a block's right-hand sides, solution, factors and running terms (fresh per block)
+        return (np.empty((n, LANES)), np.empty((n, LANES)), np.empty((n, LANES)),
+                np.empty((n, LANES)), np.empty((n, LANES)), np.empty(LANES), np.empty(LANES),
+                np.empty(LANES), np.empty(LANES))
+
+    @numba.njit(cache=True, nogil=True, inline="always")
     def _load_lanes(src, s0, dst):  # pragma: no cover - compiled
         # rows s0.. of src into the columns of dst; a short last block repeats its last row
         m, n = src.shape
@@ -145,15 +152,7 @@ if HAVE_NUMBA:
         for b in numba.prange((m + LANES - 1) // LANES):
             s0 = b * LANES
             W = np.empty((n, LANES))
-            Y = np.empty((n, LANES))
-            Z = np.empty((n, LANES))
-            l1 = np.empty((n, LANES))
-            l2 = np.empty((n, LANES))
-            q = np.empty((n, LANES))
-            dm2 = np.empty(LANES)
-            dm1 = np.empty(LANES)
-            zm2 = np.empty(LANES)
-            zm1 = np.empty(LANES)
+            Y, Z, l1, l2, q, dm2, dm1, zm2, zm1 = _lane_scratch(n)
             _load_lanes(w, s0, W)
             _load_lanes(y, s0, Y)
             _solve_lanes(W, Y, d0, d1, d2, l1, l2, q, Z, dm2, dm1, zm2, zm1)
@@ -236,15 +235,7 @@ if HAVE_NUMBA:
             s0 = b * LANES
             lanes = min(LANES, m - s0)
             W = np.ones((n, LANES))
-            Y = np.empty((n, LANES))
-            Z = np.empty((n, LANES))
-            l1 = np.empty((n, LANES))
-            l2 = np.empty((n, LANES))
-            q = np.empty((n, LANES))
-            dm2 = np.empty(LANES)
-            dm1 = np.empty(LANES)
-            zm2 = np.empty(LANES)
-            zm1 = np.empty(LANES)
+            Y, Z, l1, l2, q, dm2, dm1, zm2, zm1 = _lane_scratch(n)
             change = np.empty(LANES)
             stop = np.zeros(LANES, np.bool_)
             done = np.zeros(LANES, np.bool_)
