@@ -99,10 +99,10 @@ def run_pipeline(cube, out, extra=()):
 
 
 def read_and_sum(cube):
+    from mapkit import layout
     from mapkit.read import open_map
-    from mapkit.stream import READ_BYTES
 
-    m = open_map(cube, block_bytes=READ_BYTES)      # the pipeline's own read blocks
+    m = open_map(cube, block_bytes=layout.READ_BYTES)      # the pipeline's own read blocks
     t0 = time.perf_counter()
     float(m.intensity.sum(dtype=np.float64).compute())
     return time.perf_counter() - t0

@@ -49,8 +49,12 @@ def _add_read_options(p, laser: bool = True):
 
 
 def _open_kwargs(a) -> dict:
+    from . import layout
+
+    # every command is a pass over whole maps: read them in blocks, not pixel tiles
     return {"dataset": a.dataset, "axes": a.axes, "shift": a.shift_path, "x": a.x_path,
-            "y": a.y_path, "pixel_size": a.pixel_size, "laser_wavelength": a.laser}
+            "y": a.y_path, "pixel_size": a.pixel_size, "laser_wavelength": a.laser,
+            "block_bytes": layout.READ_BYTES}
 
 
 def _add_analysis_options(p, default_out="mapkit-output"):

@@ -12,6 +12,7 @@ from pathlib import Path
 
 import numpy as np
 
+from . import layout
 from .core.provenance import Step, library_versions
 from .core.result import Axis, Field, Result
 from .errors import MapkitError
@@ -121,7 +122,7 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
                               field="--analyte", fix="use a model made for that analyte")
 
     stage("read")
-    raw = open_map(map_path, **(open_kwargs or {}))
+    raw = open_map(map_path, **{"block_bytes": layout.READ_BYTES, **(open_kwargs or {})})
     need = raw.n_pixels * raw.shape[2] * 8 * 4  # float64 working copies of the cube
     if need > s.memory_fraction * _memory_available():
         raise MapkitError(f"the map needs about {need / 2**30:.1f} GiB to process in memory",

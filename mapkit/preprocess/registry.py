@@ -212,22 +212,18 @@ def _despike(m, method, threshold, grow=3.0, width=2):
         mask = da.from_array(m.mask[..., None], chunks=m.intensity.chunks[:2] + ((1,),))
         cube = m.intensity.rechunk({2: -1})
 
-        def cleaned(c, mk):
+        def on_chunk(c, mk, part):   # part 0: cleaned cube, 1: spike flags
             return _spikes.remove_spatial_spikes(c, mk[..., 0], threshold=threshold,
-                                                 grow=grow)[0]
-
-        def flagged(c, mk):
-            return _spikes.remove_spatial_spikes(c, mk[..., 0], threshold=threshold,
-                                                 grow=grow)[1]
+                                                 grow=grow)[part]
 
         # each chunk sees a one-pixel halo of its neighbours, so results match the whole map;
         # the flags are a graph of their own, computed only when someone asks for them
         depth = {0: 1, 1: 1, 2: 0}
         cube_h = da.overlap.overlap(cube, depth=depth, boundary="none")
         mask_h = da.overlap.overlap(mask, depth=depth, boundary="none")
-        out, flags = (da.overlap.trim_internal(da.map_blocks(f, cube_h, mask_h, dtype=t), depth,
-                                               boundary="none")
-                      for f, t in ((cleaned, np.float32), (flagged, bool)))
+        out, flags = (da.overlap.trim_internal(da.map_blocks(on_chunk, cube_h, mask_h, part=k,
+                                                             dtype=t), depth, boundary="none")
+                      for k, t in enumerate((np.float32, bool)))
     else:
         out, flags = _spikes.remove_spatial_spikes(np.asarray(m.intensity), m.mask,
                                                    threshold=threshold, grow=grow)
