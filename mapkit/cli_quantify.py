@@ -90,10 +90,12 @@ def cmd_temperature(a):
 
     m, _ = _prepare(a, minimal=True)
     r = temperature_map(m, a.shift, a.half_width, laser_nm=a.laser,
-                        exponent=3 if a.photon_counting else 4)
+                        exponent=4 if a.energy_detection else 3)
     med = r.summary["median_K"]
     _write(a, m, [r], [f"anti-Stokes/Stokes temperature at {a.shift:g} 1/cm: median "
-                       f"{med:.1f} K" if med else "no pixel gave a usable ratio"])
+                       f"{med:.1f} K ({r.summary['detector']})" if med
+                       else "no pixel gave a usable ratio",
+                       f"caution   {r.summary['caution']}"])
 
 
 def cmd_crystallite(a):
@@ -103,8 +105,10 @@ def cmd_crystallite(a):
     m, _ = _prepare(a)
     r = crystallite_size_map(m, laser_nm=a.laser, d_band=a.d_band, g_band=a.g_band)
     med = r.summary["median_nm"]
-    _write(a, m, [r], [f"crystallite size L_a median {med:.2f} nm (Cancado et al. 2006)"
-                       if med else "no pixel gave a usable I_D/I_G"])
+    lo, hi = r.summary["valid_range_nm"]
+    _write(a, m, [r], [f"crystallite size L_a median {med:.2f} nm (Cancado et al. 2006); "
+                       f"{r.summary['outside_validity']} pixels outside {lo:g}-{hi:g} nm, "
+                       "where the relation holds" if med else "no pixel gave a usable I_D/I_G"])
 
 
 def add_parsers(sub, add_read_options, range_type):
@@ -142,8 +146,12 @@ def add_parsers(sub, add_read_options, range_type):
     t.add_argument("--shift", type=float, required=True, help="band position, 1/cm (e.g. 520.7)")
     t.add_argument("--half-width", type=float, default=15.0, help="integration half-width, 1/cm")
     t.add_argument("--laser", type=float, help="excitation wavelength, nm (if the file lacks it)")
-    t.add_argument("--photon-counting", action="store_true",
-                   help="detector counts photons (frequency factor to the 3rd power, not 4th)")
+    det = t.add_mutually_exclusive_group()
+    det.add_argument("--photon-counting", action="store_true",
+                     help="detector counts photons, e.g. a CCD (frequency factor cubed; the "
+                          "default)")
+    det.add_argument("--energy-detection", action="store_true",
+                     help="detector measures energy (frequency factor to the 4th power)")
     add_read_options(t, laser=False)
     t.set_defaults(func=cmd_temperature)
 
