@@ -3,8 +3,8 @@
 import numpy as np
 import pytest
 
-napari = pytest.importorskip("napari")
-pytest.importorskip("mapkit_napari")
+import napari  # noqa: F401  (declared: the viewer extra; a missing package fails here)
+import mapkit_napari  # noqa: F401
 
 
 def test_reader_declines_foreign_files(tmp_path):
@@ -67,6 +67,9 @@ def test_results_open_as_layers(make_napari_viewer, tmp_path):
     assert "kmeans: classes" in names and "unmixing: acetaminophen" in names
     labels = viewer.layers["kmeans: classes"]
     assert labels.data.max() == 4
+    # quantity layers use the figures' perceptually uniform map (Nuñez, Anderton & Renslow
+    # 2018, PLoS ONE 13:e0199239, "cividis"), as the docs say
+    assert viewer.layers["unmixing: acetaminophen"].colormap.name == "cividis"
 
 
 def test_screenshot_is_not_blank(make_napari_viewer, sample_map_path, tmp_path, qtbot):

@@ -7,6 +7,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from mapkit.export.figures import QUANTITY_CMAP  # one colour map for quantities: figures, docs, viewer
+
 
 def robust_limits(img):
     """Display range from the 1st to 99th percentile, so one hot pixel doesn't wash out the map."""
@@ -46,7 +48,7 @@ def result_layers(results, common, *, visible: bool = False):
                 for k, label in enumerate(f.axes[0].values):
                     plane = np.asarray(f.data[k], np.float32)
                     layers.append((plane, {**kw, "name": f"{r.name}: {label}",
-                                           "colormap": "viridis",
+                                           "colormap": QUANTITY_CMAP,
                                            "contrast_limits": robust_limits(plane)}, "image"))
             elif f.signal == "labels":  # napari labels: 0 is background, so shift by one
                 from mapkit.export.figures import CLASS_COLOURS
@@ -61,11 +63,11 @@ def result_layers(results, common, *, visible: bool = False):
             else:
                 img = np.asarray(f.data, np.float32)
                 layers.append((img, {**kw, "name": f"{r.name}: {fname}{suffix}",
-                                     "colormap": "viridis",
+                                     "colormap": QUANTITY_CMAP,
                                      "contrast_limits": robust_limits(img)}, "image"))
                 if f.errors is not None:
                     err = np.asarray(f.errors, np.float32)
                     layers.append((err, {**kw, "name": f"{r.name}: {fname} uncertainty{suffix}",
-                                         "colormap": "magma",
+                                         "colormap": QUANTITY_CMAP,
                                          "contrast_limits": robust_limits(err)}, "image"))
     return layers
