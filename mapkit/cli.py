@@ -153,8 +153,8 @@ def _run_analysis(a, map_path, library, standards, bands):
             for k, v in km["areas"].items()))
     ident = summ["results"].get("nmf", {}).get("identification", [])
     if ident:
-        print("components " + ", ".join(f"{r['spectrum']} = {r['match']} (HQI {r['score']:.3f})"
-                                        for r in ident))
+        print("components " + ", ".join(f"{r['spectrum']} = {r['match']} (HQI "
+                                        f"{r['score']:.3f} on 0-1)" for r in ident))
     conc = summ["results"].get("concentration")
     if conc:
         cal = conc["calibration"]
@@ -313,10 +313,10 @@ def cmd_preprocess(a):
 
 
 def cmd_steps(a):
-    from .preprocess.recipe import DEFAULT_RECIPE
+    from .preprocess.recipe import DEFAULT_RECIPE, Recipe
     from .preprocess.registry import describe_steps
 
-    print(describe_steps())
+    print(describe_steps(Recipe.default()))
     print("\nDefault recipe:\n" + DEFAULT_RECIPE)
 
 

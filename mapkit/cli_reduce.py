@@ -89,7 +89,7 @@ def _write(a, m, results, lines):
 
 
 def _identified(res):
-    return [f"  {r['spectrum']}: {r['match']} (HQI {r['score']:.3f}"
+    return [f"  {r['spectrum']}: {r['match']} (HQI {r['score']:.3f} on 0-1"
             + (f", best candidate {r['best_candidate']}" if r["match"] == "unmatched" else "")
             + ")" for r in res.summary.get("identification", [])]
 
@@ -161,7 +161,12 @@ def cmd_peaks(a):
     results = [res]
     c = res.fields["centre" if a.peaks == 1 else "centre_1"]
     lines = [f"{a.shape} fit in {lo:g}-{hi:g} 1/cm: {res.summary['pixels']} pixels, "
-             f"{res.summary['not_converged']} not converged",
+             f"{res.summary['not_converged']} not converged ("
+             + ", ".join(f"{res.summary[k]} {k.replace('_', ' ')}" for k in
+                         ("iteration_limit", "stalled", "centre_outside", "singular")) + ")",
+             f"errors    {res.summary['covariance']} covariance"
+             + (" (robust to unequal channel noise)" if res.summary["covariance"] == "sandwich"
+                else ""),
              f"centre median {np.nanmedian(c.data):.3f} 1/cm, median standard error "
              f"{np.nanmedian(c.errors):.3f} 1/cm"]
     if a.stress:

@@ -98,6 +98,13 @@ def test_steps_listing(capsys):
     out = capsys.readouterr().out
     for name in ("despike", "baseline", "normalise", "scatter_correction", "correct_axis"):
         assert f"\n{name}:" in "\n" + out
+    # the listing names the default recipe's baseline where it differs from the step
+    # default, so a user does not read 'als' as what mapkit uses (consistency check)
+    from mapkit.preprocess.recipe import Recipe
+
+    used = dict(Recipe.default().steps)["baseline"]["method"]
+    line = next(ln for ln in out.splitlines() if ln.strip().startswith("method (one of 'als'"))
+    assert f"default recipe uses {used!r}" in line or f"default {used!r}" in line
 
 
 def test_axis_calibrate_cli(tmp_path, capsys):

@@ -86,7 +86,7 @@ def write_report(path, *, map_name: str, summary: dict, results, model=None, rec
                      for k, lbl in enumerate(imgs.axes[0].values)]
             ident = r.summary.get("identification", [])
             table = _table([(i["spectrum"], i["match"], i["score"], i.get("runner_up", ""))
-                            for i in ident], ["component", "identified as", "HQI",
+                            for i in ident], ["component", "identified as", "HQI (0-1)",
                                               "runner-up"]) if ident else ""
             parts.append("<h2>Components (NMF)</h2><p>Each component is a spectrum and an "
                          "image of where it sits; identification against the reference "

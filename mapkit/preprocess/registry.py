@@ -404,13 +404,24 @@ def _correct_axis(m, coefficients):
                     raman_shift=new), {}
 
 
-def describe_steps() -> str:
-    """Plain-text listing of every step and its parameters (for ``mapkit steps``)."""
+def describe_steps(recipe=None) -> str:
+    """Plain-text listing of every step and its parameters (for ``mapkit steps``).
+
+    A parameter's default is the step's own (what a recipe that omits it gets); with a
+    ``recipe`` (e.g. the default recipe) each value that recipe sets differently is named
+    beside it, so the two cannot be confused.
+    """
+    chosen = {}
+    for name, params in (recipe.steps if recipe is not None else ()):
+        chosen.setdefault(name, params)
     lines = []
     for spec in STEPS.values():
         lines.append(f"{spec.name}: {spec.doc}")
         for p in spec.params:
             scope = f" [method {', '.join(p.methods)}]" if p.methods else ""
             default = "required" if p.required else f"default {p.default!r}"
+            used = chosen.get(spec.name, {})
+            if p.name in used and used[p.name] != p.default:
+                default += f"; the {recipe.name} recipe uses {used[p.name]!r}"
             lines.append(f"    {p.name} ({p.allowed()}; {default}){scope}: {p.doc}")
     return "\n".join(lines)
