@@ -166,6 +166,8 @@ def test_compiled_and_numpy_paths_agree(shape, background):
 
 
 def test_gaussian_and_pseudo_voigt_recover_their_parameters():
+    # invented spectra of known parameters; the pseudo-Voigt is the linear mix eta*L +
+    # (1 - eta)*G of equal FWHM (Thompson, Cox & Hastings 1987, J. Appl. Cryst. 20:79)
     rng = np.random.default_rng(8)
     u = 2 * (S - 515.0) / 8.0
     g = 800 * np.exp(-np.log(2) * u ** 2)
@@ -180,6 +182,8 @@ def test_gaussian_and_pseudo_voigt_recover_their_parameters():
 
 
 def test_two_overlapping_peaks():
+    # two Lorentzians 12 1/cm apart, FWHM 5 and 6 (overlapping flanks), of known centres
+    # (invented; the reference is the generating model itself, as in a worked example)
     u1, u2 = 2 * (S - 512) / 5, 2 * (S - 524) / 6
     y = np.tile(60 + 900 / (1 + u1 ** 2) + 500 / (1 + u2 ** 2), (30, 1))
     y = np.random.default_rng(0).poisson(y).astype(float)

@@ -49,6 +49,9 @@ def test_bad_calibrations(x, y, words):
 
 
 def test_concentration_map_flags():
+    # ICH Q2(R2) (2023): results below LOQ are not quantitative, below LOD not detected;
+    # outside the calibrated range is extrapolation (the worked line above: LOD 0.740,
+    # LOQ 2.242, range 0-12)
     cal = LinearCalibration().fit(X, Y)
     resp = np.array([[2.0, 12.6], [40.0, np.nan]])
     x0, s_x0 = cal.inverse(resp)
@@ -224,6 +227,8 @@ def test_cancado_crystallite_size():
 
 
 def test_region_statistics():
+    # values worked by hand on a 4 x 5 ramp; a pixel is inside a polygon when its centre
+    # is (common practice); the four centres inside are listed by hand below
     from mapkit.quantify import class_regions, polygon_mask, region_statistics
 
     values = np.arange(20.0).reshape(4, 5)
