@@ -324,11 +324,9 @@ def _map_stem(results_path):
 
 def cmd_micrograph(a):
     """Place a micrograph under the maps of an existing results file (a new file is written)."""
-    import shutil
-
-    from .export.atomic import atomic_path, check_target
+    from .export.atomic import check_target
     from .export.bundle import safe_name, write_optical_figures
-    from .export.nexus import write_optical
+    from .export.nexus import copy_with_optical
     from .pipeline import optical_summary, place_optical
     from .read.nexus import is_nexus_map, read_nexus_map, read_result_objects
 
@@ -344,13 +342,7 @@ def cmd_micrograph(a):
     m = read_nexus_map(src)
     placed, notices = place_optical(_optical_request(a, a.image), (m.x, m.y))
     results = read_result_objects(src) if not a.no_figures else []
-    with atomic_path(out, overwrite=a.overwrite) as tmp:
-        import h5py
-
-        shutil.copyfile(src, tmp)
-        with h5py.File(tmp, "a") as f:
-            write_optical(f, placed)
-    written = [out]
+    written = [copy_with_optical(src, out, placed, overwrite=a.overwrite)]
     if not a.no_figures:
         written += write_optical_figures(out.parent, safe_name(_map_stem(src)), placed, results,
                                          overwrite=True)

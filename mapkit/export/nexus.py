@@ -165,6 +165,25 @@ def write_optical(f, placed):
         _write_axis(r, "residual_um", np.asarray(reg["residuals_um"], float), "um")
 
 
+def copy_with_optical(source, path, placed, *, overwrite: bool = False) -> Path:
+    """Write a copy of results file ``source`` holding the placed micrograph, atomically
+    (``source`` is left unchanged)."""
+    import shutil
+
+    import h5py
+
+    if Path(path).resolve() == Path(source).resolve():
+        from ..errors import MapkitError
+
+        raise MapkitError("the output would replace the input", file=path, field="--out",
+                          fix="give another file name")
+    with atomic_path(path, overwrite=overwrite) as tmp:
+        shutil.copyfile(source, tmp)
+        with h5py.File(tmp, "a") as f:
+            write_optical(f, placed)
+    return Path(path)
+
+
 def write_results_file(path, m: RamanMap, results=(), *, overwrite=False, compression=None,
                        inputs: dict | None = None, optical=None) -> Path:
     """Write a map and its results into one new NeXus file, atomically.
