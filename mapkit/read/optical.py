@@ -217,13 +217,21 @@ def _decode(path, max_bytes):
             raise MapkitError(f"not a readable TIFF image ({exc.__class__.__name__})",
                               file=path, fix="export the micrograph as PNG, JPEG or TIFF") from None
         with tif:
+            if len(tif.pages) == 0:
+                raise MapkitError("the TIFF file holds no image", file=path,
+                                  fix="export the micrograph as PNG, JPEG or TIFF")
             page = tif.pages[0]
             shape = tuple(page.shape)
             nbytes = int(np.prod(shape)) * page.dtype.itemsize
             tags_scale = _tiff_pixel_size(page)
             f = max(1, math.ceil(math.sqrt(nbytes / max_bytes))) if nbytes > max_bytes else 1
             if f == 1:
-                arr = page.asarray()
+                try:
+                    arr = page.asarray()
+                except Exception as exc:  # damaged strips, unknown compression
+                    raise MapkitError(f"the TIFF image data are damaged "
+                                      f"({exc.__class__.__name__})", file=path,
+                                      fix="export the micrograph again") from None
             else:
                 try:
                     arr = tifffile.memmap(path, page=0, mode="r")
