@@ -100,7 +100,7 @@ def optical_layer(placed, path=""):
     """Layer data for a placed micrograph: drawn in the map's µm world through an affine."""
     data = np.asarray(placed.image.data)
     rgb = data.ndim == 3
-    kw = {"name": "micrograph", "affine": placed.pixel_to_map(), "rgb": rgb,
+    kw = {"name": "micrograph", "affine": placed.pixel_to_map(), "rgb": rgb, "units": ("um", "um"),
           "metadata": {"mapkit_optical": str(path),
                        "description": placed.image.description}}
     if not rgb:

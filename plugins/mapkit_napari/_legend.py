@@ -30,6 +30,7 @@ class ClassLegend(QWidget):
         self.table.setEditTriggers(QTableWidget.NoEditTriggers)
         self.table.setSelectionBehavior(QTableWidget.SelectRows)
         self.table.cellClicked.connect(lambda row, _col: self.select(row))
+        self.table.setMinimumHeight(170)
         layout = QVBoxLayout(self)
         layout.addWidget(self.title)
         layout.addWidget(self.table, 1)
@@ -59,6 +60,7 @@ class ClassLegend(QWidget):
             self.table.setItem(i, 2, QTableWidgetItem(f"{row['fraction_pct']:.1f}"))
             self.table.setItem(i, 3, QTableWidgetItem(f"{row['area_um2']:.0f}"))
         self.table.resizeColumnsToContents()
+        self.table.setColumnWidth(0, 24)
 
     def select(self, index: int):
         """A row was clicked: hand the class's spectrum to the spectrum panel."""
