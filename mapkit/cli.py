@@ -364,6 +364,12 @@ def cmd_info(a):
     for step in m.provenance:
         print(f"step      {step.name} {step.parameters}")
     if is_nexus_map(a.map):
+        from .pipeline import optical_summary
+        from .read.optical import read_placed_image
+
+        placed = read_placed_image(a.map)
+        if placed is not None:
+            _print_optical(optical_summary(placed))
         for name, r in read_results(a.map).items():
             fields = ", ".join(f"{k} {tuple(v['data'].shape)}" for k, v in r["fields"].items())
             print(f"result    {name} ({r['method']}): {fields}")

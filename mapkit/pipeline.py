@@ -221,7 +221,8 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     stage("write")
     run_step = Step("analyse", {"settings": asdict(s), "library": str(library) if library else None,
                                 "standards": str(standards) if standards else None,
-                                "recipe": recipe.text})
+                                "recipe": recipe.text,
+                                **({"optical": optical} if optical is not None else {})})
     final = corrected.derive(corrected.intensity, run_step)
     inputs = {"map": map_path}
     if standards is not None:

@@ -217,15 +217,21 @@ def test_screenshot_with_both_panels(make_napari_viewer, sample_map_path, sample
         pass
     viewer.cursor.position = (40.0, 60.0)
     qtbot.wait(300)
-    img = viewer.screenshot(canvas_only=False, flash=False)
-    assert img.std() > 10
-    from imageio import imwrite
+    _screenshot(viewer, tmp_path, "viewer_panels.png")
 
+
+def _screenshot(viewer, tmp_path, name):
+    """Grab the whole window, check it is not blank, keep it (and in $MAPKIT_SCREENSHOT_DIR)."""
     import os
 
-    imwrite(tmp_path / "viewer.png", img)
+    from imageio import imwrite
+
+    img = viewer.screenshot(canvas_only=False, flash=False)
+    assert img.std() > 10
+    imwrite(tmp_path / name, img)
     if os.environ.get("MAPKIT_SCREENSHOT_DIR"):
-        imwrite(os.path.join(os.environ["MAPKIT_SCREENSHOT_DIR"], "viewer_panels.png"), img)
+        imwrite(os.path.join(os.environ["MAPKIT_SCREENSHOT_DIR"], name), img)
+    return img
 
 
 @pytest.fixture(scope="module")
@@ -357,10 +363,6 @@ def test_clicked_pairs_register_the_micrograph(make_napari_viewer, sample_dir, s
 
 def test_screenshot_with_micrograph_and_legend(make_napari_viewer, optical_results, qtbot,
                                               tmp_path):
-    import os
-
-    from imageio import imwrite
-
     from mapkit_napari._legend import ClassLegend
     from mapkit_napari._panel import SpectrumPanel
 
@@ -377,8 +379,4 @@ def test_screenshot_with_micrograph_and_legend(make_napari_viewer, optical_resul
     legend.select(0)
     viewer.reset_view()
     qtbot.wait(300)
-    img = viewer.screenshot(canvas_only=False, flash=False)
-    assert img.std() > 10
-    imwrite(tmp_path / "viewer_micrograph.png", img)
-    if os.environ.get("MAPKIT_SCREENSHOT_DIR"):
-        imwrite(os.path.join(os.environ["MAPKIT_SCREENSHOT_DIR"], "viewer_micrograph.png"), img)
+    _screenshot(viewer, tmp_path, "viewer_micrograph.png")

@@ -58,7 +58,9 @@ def _draw_micrograph(ax, placed, extent, *, margin: float = 0.0, outline: bool =
     ys = np.arange(lo_y + step / 2, hi_y, step)
     img = placed.resample(xs, ys)
     if img.ndim == 2:
-        ax.imshow(np.ma.masked_invalid(img), cmap="gray", vmin=0, vmax=1,
+        finite = img[np.isfinite(img)]
+        lo, hi = np.percentile(finite, [1, 99]) if finite.size else (0.0, 1.0)
+        ax.imshow(np.ma.masked_invalid(img), cmap="gray", vmin=lo, vmax=hi if hi > lo else lo + 1,
                   extent=(lo_x, hi_x, hi_y, lo_y), interpolation="bilinear")
     else:
         rgba = np.dstack([np.nan_to_num(img), np.isfinite(img[..., 0]).astype(float)])

@@ -175,7 +175,7 @@ class AnalysisPanel(QWidget):
         return model
 
     def save_calibration(self, path=None):
-        """Save the fitted model as quant_model.json (refuses to overwrite without asking)."""
+        """Save the fitted model as quant_model.json (the file dialog asks before replacing one)."""
         if self.quant_model is None:
             return None
         if path is None:
