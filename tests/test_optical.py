@@ -233,3 +233,15 @@ def test_stored_and_read_back(tmp_path):
     np.testing.assert_allclose(back.matrix, placed.matrix)
     np.testing.assert_array_equal(back.image.data, img.data)
     np.testing.assert_allclose(back.pixel_to_map(), placed.pixel_to_map())
+
+
+def test_size_checks_are_ours_not_pillows(tmp_path, monkeypatch):
+    """Pillow's decompression-bomb limit would refuse a large micrograph with its own error;
+    mapkit applies its memory budget instead (and restores Pillow's setting)."""
+    from PIL import Image
+
+    data = _png(tmp_path / "a.png")
+    monkeypatch.setattr(Image, "MAX_IMAGE_PIXELS", 100)    # a 600-pixel image is a "bomb"
+    img = read_optical(tmp_path / "a.png", pixel_size=1.0)
+    np.testing.assert_array_equal(img.data, data)
+    assert Image.MAX_IMAGE_PIXELS == 100

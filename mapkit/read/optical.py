@@ -251,6 +251,17 @@ def _decode(path, max_bytes):
             arr = _as_image_array(_block_mean(arr, f), path)
         return arr, f, tags_scale
 
+    from PIL import Image
+
+    old = Image.MAX_IMAGE_PIXELS
+    Image.MAX_IMAGE_PIXELS = None  # mapkit checks the size itself, against the memory budget
+    try:
+        return _decode_pil(path, max_bytes)
+    finally:
+        Image.MAX_IMAGE_PIXELS = old
+
+
+def _decode_pil(path, max_bytes):
     from PIL import Image, UnidentifiedImageError
 
     try:
@@ -273,8 +284,6 @@ def _decode(path, max_bytes):
             raise MapkitError(f"the image needs {nbytes / 2**30:.1f} GiB to decode",
                               file=path, fix="save it as a JPEG or an uncompressed TIFF, "
                                              "or reduce it first")
-        old = Image.MAX_IMAGE_PIXELS
-        Image.MAX_IMAGE_PIXELS = None  # mapkit checks the size itself, above
         try:
             if im.mode in ("P", "PA", "RGBA", "LA", "CMYK", "YCbCr", "1", "HSV", "LAB"):
                 im = im.convert("L" if im.mode in ("LA", "1") else "RGB")
@@ -282,8 +291,6 @@ def _decode(path, max_bytes):
         except (OSError, ValueError, SyntaxError) as exc:
             raise MapkitError(f"the image data are damaged ({exc.__class__.__name__})",
                               file=path, fix="export the micrograph again") from None
-        finally:
-            Image.MAX_IMAGE_PIXELS = old
     arr = _as_image_array(arr, path)
     rest = max(1, math.ceil(f / draft)) if f > 1 else 1
     return _as_image_array(_block_mean(arr, rest), path), draft * rest, None
