@@ -282,7 +282,11 @@ class AnalysisPanel(QWidget):
         self.progress.setValue(self.progress.maximum())
         layer = self.map_layer()
         path = layer.metadata["mapkit_path"] if layer is not None else ""
+        # over a micrograph the maps are drawn see-through, as when a results file opens
+        under = any("mapkit_optical" in lyr.metadata for lyr in self.viewer.layers)
         for data, kw, kind in result_layers(results, common_kwargs(m, path), visible=False):
+            if under:
+                kw.setdefault("opacity", 0.6)
             getattr(self.viewer, f"add_{kind}")(data, **kw)
         for lyr in list(self.viewer.layers)[-1:]:
             lyr.visible = True
