@@ -325,10 +325,16 @@ def test_calibration_in_the_panel_matches_the_command_line(make_napari_viewer, s
     saved = panel.save_calibration(tmp_path / "quant_model.json")
     assert QuantModel.load(saved).calibration.summary()["coefficients"] == \
         pytest.approx(c["coefficients"])
+    from mapkit_napari._optical import MicrographPanel
+
+    under = MicrographPanel(viewer)          # a micrograph under the map: results see-through
+    under.image_path.setText(str(sample_dir / "tablet_micrograph.png"))
+    assert under.add_micrograph() is not None
     worker = panel.apply_calibration()
     with qtbot.waitSignal(worker.finished, timeout=120000):
         pass
-    assert any(layer.name.startswith("concentration") for layer in viewer.layers)
+    content = [layer for layer in viewer.layers if layer.name.startswith("concentration")]
+    assert content and all(layer.opacity < 1 for layer in content)
 
 
 def test_clicked_pairs_register_the_micrograph(make_napari_viewer, sample_dir, sample_map_path,
