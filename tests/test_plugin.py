@@ -386,3 +386,27 @@ def test_screenshot_with_micrograph_and_legend(make_napari_viewer, optical_resul
     viewer.reset_view()
     qtbot.wait(300)
     _screenshot(viewer, tmp_path, "viewer_micrograph.png")
+
+
+def test_screenshot_of_the_calibration_panel(make_napari_viewer, sample_map_path, sample_dir,
+                                             qtbot, tmp_path):
+    from mapkit_napari._analysis import AnalysisPanel
+
+    viewer = make_napari_viewer(show=True)
+    viewer.open(str(sample_map_path), plugin="mapkit-napari")
+    panel = AnalysisPanel(viewer)
+    viewer.window.add_dock_widget(panel, area="right", name="Map analysis")
+    viewer.window._qt_window.resize(1500, 1000)
+    panel.library.setText(str(sample_dir / "library"))
+    panel.recipe.setText(str(sample_dir / "tablet_recipe.toml"))
+    panel.standards.setText(str(sample_dir / "calibration_standards.csv"))
+    panel.cal_model.setCurrentText("quadratic")
+    from qtpy.QtWidgets import QGroupBox
+
+    box, = panel.findChildren(QGroupBox)
+    assert not panel.standards.isVisibleTo(panel)      # folded away until asked for
+    box.setChecked(True)
+    assert panel.standards.isVisibleTo(panel)
+    assert panel.fit_calibration() is not None
+    qtbot.wait(300)
+    _screenshot(viewer, tmp_path, "viewer_calibration.png")

@@ -108,8 +108,15 @@ class AnalysisPanel(QWidget):
     def _add_calibration(self, layout):
         from qtpy.QtWidgets import QGroupBox
 
+        # folded away until ticked, so the spectrum panel above keeps its room
         box = QGroupBox("Calibration from standards")
-        form = QFormLayout(box)
+        box.setCheckable(True)
+        box.setChecked(False)
+        inner = QWidget()
+        QVBoxLayout(box).addWidget(inner)
+        box.toggled.connect(inner.setVisible)
+        inner.setVisible(False)
+        form = QFormLayout(inner)
         self.standards = QLineEdit()
         self.standards.setPlaceholderText("standards table (CSV)")
         self.cal_model = QComboBox()
@@ -169,7 +176,7 @@ class AnalysisPanel(QWidget):
         with tempfile.TemporaryDirectory() as tmp:
             png = Path(tmp) / "calibration.png"
             save_calibration_figure(png, model.calibration, overwrite=True, dpi=70)
-            self.cal_plot.setPixmap(QPixmap(str(png)))
+            self.cal_plot.setPixmap(QPixmap(str(png)).scaledToWidth(360))
         self.save_button.setEnabled(True)
         self.apply_button.setEnabled(True)
         return model
