@@ -95,6 +95,64 @@ def _add_analysis_options(p, default_out="mapkit-output"):
     p.add_argument("--quiet", action="store_true", help="no progress bar")
 
 
+def _numbers(text: str, n_max: int = 2):
+    try:
+        vals = tuple(float(v) for v in text.replace(" ", "").split(","))
+    except ValueError:
+        vals = ()
+    if not 1 <= len(vals) <= n_max:
+        raise argparse.ArgumentTypeError(f"{text!r} is not one number or two as X,Y")
+    return vals
+
+
+def _xy(text: str):
+    vals = _numbers(text)
+    if len(vals) != 2:
+        raise argparse.ArgumentTypeError(f"{text!r} is not X,Y in um")
+    return vals
+
+
+def _add_optical_options(p, positional: bool = False):
+    g = p.add_argument_group("optical micrograph under the maps")
+    if positional:
+        g.add_argument("image", help="micrograph (PNG, JPEG or TIFF; grey or RGB)")
+    else:
+        g.add_argument("--optical", metavar="IMAGE",
+                       help="micrograph of the sample surface (PNG, JPEG or TIFF)")
+    g.add_argument("--optical-pixel-size", type=_numbers, metavar="UM[,UM_Y]",
+                   help="um per micrograph pixel (default: IMAGE.scale.json or TIFF tags)")
+    g.add_argument("--optical-origin", type=_xy, metavar="X,Y",
+                   help="stage position (um) of the micrograph's top-left corner (default 0,0)")
+    g.add_argument("--control-points", metavar="CSV",
+                   help="pairs to register the micrograph: map_x_um,map_y_um and "
+                        "image_x_um,image_y_um (or image_col,image_row)")
+    g.add_argument("--transform", choices=("similarity", "affine"), default="similarity",
+                   help="transform fitted to the control points (default similarity)")
+
+
+def _optical_request(a, image):
+    if image is None:
+        for opt in ("optical_pixel_size", "optical_origin", "control_points"):
+            if getattr(a, opt, None) is not None:
+                raise MapkitError("micrograph options without a micrograph",
+                                  field="--" + opt.replace("_", "-"), fix="add --optical IMAGE")
+        return None
+    ps = a.optical_pixel_size
+    return {"image": image, "pixel_size": None if ps is None else (ps if len(ps) == 2 else ps[0]),
+            "origin": a.optical_origin, "control_points": a.control_points,
+            "transform": a.transform}
+
+
+def _print_optical(info):
+    reg = info.get("registration")
+    dx, dy = info["pixel_size_um"]
+    print(f"optical   {info['source']} ({dx:g} x {dy:g} um per pixel, {info['scale_from']})")
+    if reg:
+        print(f"register  {reg['transform']} from {len(reg['residuals_um'])} pairs: RMS "
+              f"{reg['rms_um']:.3g} um; residuals " + ", ".join(f"{v:.3g}" for v in
+                                                                reg["residuals_um"]) + " um")
+
+
 def _range_arg(text):
     from .cli_reduce import _range
 
@@ -128,14 +186,19 @@ def _run_analysis(a, map_path, library, standards, bands):
         s.bands = bands
     model = QuantModel.load(a.model_file) if a.model_file else None
     regions = dict(parse_region(r) for r in a.region or [])
+    optical = _optical_request(a, getattr(a, "optical", None)) if hasattr(a, "transform") \
+        else None
     mode = _choose_mode(a, map_path)
+    if mode and optical is not None:
+        raise MapkitError("a micrograph is not drawn on the chunk-wise path yet",
+                          field="--optical", fix="add it afterwards with 'mapkit micrograph'")
     if mode:
         return _run_large(a, map_path, recipe, mode, library, standards, model)
     print("mode      in memory (the map fits comfortably)")
     out = analyse(map_path, a.out, library=library, standards=standards, settings=s,
                   overwrite=a.overwrite, progress=not a.quiet, figures=not a.no_figures,
                   open_kwargs=_open_kwargs(a) if hasattr(a, "dataset") else None, recipe=recipe,
-                  model=model, regions=regions, formats=_formats(a))
+                  model=model, regions=regions, formats=_formats(a), optical=optical)
     summ = out["summary"]
     print(f"map       {map_path}  ({summ['shape'][0]} x {summ['shape'][1]} pixels, "
           f"{summ['shape'][2]} channels)")
@@ -145,6 +208,8 @@ def _run_analysis(a, map_path, library, standards, bands):
     print(f"spikes    {sp['channels_replaced']} channels replaced in {sp['spectra_touched']} spectra")
     for note in summ["notices"]:
         print(f"notice    {note}")
+    if "optical" in summ:
+        _print_optical(summ["optical"])
     km = summ["results"].get("kmeans", {})
     names = {r["spectrum"]: r["match"] for r in km.get("identification", [])}
     if km.get("areas"):
@@ -241,6 +306,53 @@ def cmd_analyse(a):
     return _run_analysis(a, a.map, a.library, a.standards, a.band)
 
 
+def _map_stem(results_path):
+    """Stem of the map a results file was made from (its recorded input), else its own."""
+    import json
+
+    import h5py
+
+    from . import layout
+
+    with h5py.File(results_path, "r") as f:
+        raw = f[layout.PROVENANCE].attrs.get("inputs") if layout.PROVENANCE in f else None
+    try:
+        return Path(json.loads(raw)["map"]["path"]).stem
+    except (TypeError, KeyError, ValueError):
+        return Path(results_path).stem
+
+
+def cmd_micrograph(a):
+    """Place a micrograph under the maps of an existing results file (a new file is written)."""
+    from .export.atomic import check_target
+    from .export.bundle import safe_name, write_optical_figures
+    from .export.nexus import copy_with_optical
+    from .pipeline import optical_summary, place_optical
+    from .read.nexus import is_nexus_map, read_nexus_map, read_result_objects
+
+    src = Path(a.results)
+    if not is_nexus_map(src):
+        raise MapkitError("not a mapkit results file (no /entry/map/intensity)", file=src,
+                          fix="give the results.h5 written by 'mapkit analyse'")
+    out = Path(a.out) if a.out else src.with_name(f"{src.stem}_optical.h5")
+    if out.resolve() == src.resolve():
+        raise MapkitError("the output would replace the input", file=out, field="--out",
+                          fix="give another file name")
+    check_target(out, overwrite=a.overwrite)
+    m = read_nexus_map(src)
+    placed, notices = place_optical(_optical_request(a, a.image), (m.x, m.y))
+    results = read_result_objects(src) if not a.no_figures else []
+    written = [copy_with_optical(src, out, placed, overwrite=a.overwrite)]
+    if not a.no_figures:
+        written += write_optical_figures(out.parent, safe_name(_map_stem(src)), placed, results,
+                                         overwrite=True)
+    for note in notices:
+        print(f"notice    {note}")
+    _print_optical(optical_summary(placed))
+    print(f"wrote     {len(written)} files: {out}" + (f" and {len(written) - 1} figures in "
+                                                       f"{out.parent}/" if len(written) > 1 else ""))
+
+
 def cmd_info(a):
     from .read import open_map
     from .read.nexus import is_nexus_map, read_results
@@ -252,6 +364,12 @@ def cmd_info(a):
     for step in m.provenance:
         print(f"step      {step.name} {step.parameters}")
     if is_nexus_map(a.map):
+        from .pipeline import optical_summary
+        from .read.optical import read_placed_image
+
+        placed = read_placed_image(a.map)
+        if placed is not None:
+            _print_optical(optical_summary(placed))
         for name, r in read_results(a.map).items():
             fields = ", ".join(f"{k} {tuple(v['data'].shape)}" for k, v in r["fields"].items())
             print(f"result    {name} ({r['method']}): {fields}")
@@ -387,7 +505,19 @@ def build_parser() -> argparse.ArgumentParser:
     an.add_argument("map", help="map file (.h5 mapkit layout, any HDF5 with --dataset, or text table)")
     _add_analysis_options(an)
     _add_read_options(an)
+    _add_optical_options(an)
     an.set_defaults(func=cmd_analyse)
+
+    mi = sub.add_parser("micrograph", help="place a micrograph under the maps of a results file",
+                        description="Read a micrograph with its scale, register it to the map "
+                                    "from control points if given, and write a copy of the "
+                                    "results file holding it, with the maps drawn over it.")
+    mi.add_argument("results", help="results.h5 written by 'mapkit analyse' (left unchanged)")
+    _add_optical_options(mi, positional=True)
+    mi.add_argument("--out", help="results file to write (default: RESULTS_optical.h5 beside it)")
+    mi.add_argument("--overwrite", action="store_true", help="replace an existing --out file")
+    mi.add_argument("--no-figures", action="store_true", help="skip the overlay figures")
+    mi.set_defaults(func=cmd_micrograph)
 
     i = sub.add_parser("info", help="describe a map or results file")
     i.add_argument("map")

@@ -207,6 +207,66 @@ def _library_file(t, text):
         [t / "a.h5", t / "lib" / "x.jdx"]
 
 
+# -- the optical micrograph (analyse --optical, mapkit micrograph) ---------------------------
+def _image(t, name="photo.png", scale=True, shape=(30, 40)):
+    from PIL import Image
+
+    Image.fromarray(np.full(shape + (3,), 128, np.uint8)).save(t / name)
+    if scale:
+        (t / f"{name}.scale.json").write_text('{"pixel_size_um": 0.2}')
+    return t / name
+
+
+def _points(t, rows):
+    (t / "pts.csv").write_text("image_x_um,image_y_um,map_x_um,map_y_um\n"
+                               + "".join(f"{a},{b},{c},{d}\n" for a, b, c, d in rows))
+    return t / "pts.csv"
+
+
+def _optical(t, image, *more, files=()):
+    cube = _h5(t / "a.h5", cube=_cube())       # 6 x 7 pixels, 0-6 µm by 0-5 µm
+    return analyse(cube, "--optical", str(image), *more), [t / "a.h5", image, *files]
+
+
+_GOOD_PAIRS = ((1, 1, 1, 1), (5, 1, 5, 1), (1, 4, 1, 4))
+OPTICAL_CASES = [
+    ("micrograph missing", lambda t: _optical(t, t / "none.png"), "error",
+     "micrograph does not exist"),
+    ("micrograph unreadable", lambda t: _optical(t, _table(t / "bad.png", "not an image")),
+     "error", "not a readable image"),
+    ("micrograph TIFF unreadable", lambda t: _optical(t, _table(t / "bad.tif", "II*\x00junk")),
+     "error", "holds no image"),
+    ("micrograph without pixel size", lambda t: _optical(t, _image(t, scale=False)), "error",
+     "no pixel size"),
+    ("micrograph pixel size zero", lambda t: _optical(t, _image(t, scale=False),
+                                                      "--optical-pixel-size", "0"),
+     "error", "must be positive"),
+    ("micrograph scale file with a typo", lambda t: (_table(t / "photo.png.scale.json", '{"pixel_size": 1}'), _optical(t, _image(t, scale=False)))[1],
+     "error", "unknown key 'pixel_size'"),
+    ("two control points", lambda t: _optical(t, _image(t), "--control-points",
+                                              str(_points(t, _GOOD_PAIRS[:2]))), "error",
+     "needs at least 3"),
+    ("collinear control points", lambda t: _optical(
+        t, _image(t), "--control-points", str(_points(t, ((1, 1, 1, 1), (2, 2, 2, 2),
+                                                         (3, 3, 3, 3), (4, 4, 4, 4))))),
+     "error", "on one line"),
+    ("control point outside the map", lambda t: _optical(
+        t, _image(t), "--control-points", str(_points(t, _GOOD_PAIRS[:2] + ((1, 4, 1, 40),)))),
+     "error", "outside the map"),
+    ("control point outside the micrograph", lambda t: _optical(
+        t, _image(t), "--control-points", str(_points(t, _GOOD_PAIRS[:2] + ((1, 40, 1, 4),)))),
+     "error", "outside the micrograph"),
+    ("control points without a micrograph", lambda t: (analyse(_h5(t / "a.h5", cube=_cube()),
+                                                               "--control-points", "p.csv"),
+                                                       [t / "a.h5"]),
+     "error", "micrograph options without a micrograph"),
+    ("micrograph subcommand on a map without results", lambda t: (
+        ["micrograph", str(_h5(t / "a.h5", cube=_cube())), str(_image(t, scale=False)), "--out",
+         str(t / "r.h5")], [t / "a.h5", t / "photo.png"]), "error", "no pixel size"),
+]
+CASES += OPTICAL_CASES
+
+
 def _digest(paths):
     return {p: hashlib.sha256(p.read_bytes()).hexdigest() for p in paths if p.is_file()}
 
@@ -234,3 +294,14 @@ def test_bad_input(tmp_path, capsys, case, build, expected, words):
     else:
         assert rc == 0, err
         assert words in out, out
+
+
+@pytest.mark.parametrize("case, build, expected, words", OPTICAL_CASES,
+                         ids=[c[0] for c in OPTICAL_CASES])
+def test_bad_micrograph_writes_nothing(tmp_path, capsys, case, build, expected, words):
+    args, inputs = build(tmp_path)
+    if "--out" not in args:
+        args = args + ["--out", str(tmp_path / "out")]
+    before = sorted(p for p in tmp_path.rglob("*"))
+    assert main(args) == 2
+    assert sorted(p for p in tmp_path.rglob("*")) == before, "something was written"

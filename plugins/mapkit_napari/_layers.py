@@ -58,6 +58,7 @@ def result_layers(results, common, *, visible: bool = False):
                 colours = {None: "transparent", 0: "transparent"}
                 colours.update({k + 1: CLASS_COLOURS[k % len(CLASS_COLOURS)]
                                 for k in range(int(data.max()))})
+                meta["mapkit_classes"] = class_legend_data(r)
                 layers.append((data, {**kw, "name": f"{r.name}: classes", "opacity": 0.7,
                                       "colormap": colours}, "labels"))
             else:
@@ -71,3 +72,39 @@ def result_layers(results, common, *, visible: bool = False):
                                          "colormap": QUANTITY_CMAP,
                                          "contrast_limits": robust_limits(err)}, "image"))
     return layers
+
+
+def class_legend_data(r):
+    """Rows of a class legend from a classification Result (numbers from its summary):
+    label value in the layer, colour, name (library match and HQI when identified), area %
+    and µm², and the class's mean ± sd spectrum."""
+    from mapkit.export.figures import CLASS_COLOURS
+
+    ident = {i["spectrum"]: i for i in r.summary.get("identification", [])}
+    spectra = r.fields.get("class_spectra")
+    rows = []
+    for k, (name, area) in enumerate(r.summary.get("areas", {}).items()):
+        match = ident.get(name)
+        shown = name if match is None or match.get("match") in (None, "unmatched") else \
+            f"{name}: {match['match']} (HQI {match['score']:.3f})"
+        row = {"label": k + 1, "class": name, "name": shown,
+               "colour": CLASS_COLOURS[k % len(CLASS_COLOURS)],
+               "fraction_pct": area["fraction_pct"], "area_um2": area["area_um2"]}
+        if spectra is not None and k < spectra.data.shape[0]:
+            row["shift"] = np.asarray(spectra.axes[-1].values, float)
+            row["mean"] = np.asarray(spectra.data[k], float)
+            row["sd"] = None if spectra.errors is None else np.asarray(spectra.errors[k], float)
+        rows.append(row)
+    return rows
+
+
+def optical_layer(placed, path=""):
+    """Layer data for a placed micrograph: drawn in the map's µm world through an affine."""
+    data = np.asarray(placed.image.data)
+    rgb = data.ndim == 3
+    kw = {"name": "micrograph", "affine": placed.pixel_to_map(), "rgb": rgb, "units": ("um", "um"),
+          "metadata": {"mapkit_optical": str(path),
+                       "description": placed.image.description}}
+    if not rgb:
+        kw.update(colormap="gray", contrast_limits=robust_limits(data))
+    return (data, kw, "image")
