@@ -99,6 +99,10 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     if outdir.exists() and not outdir.is_dir():
         raise MapkitError("the output path is a file, not a folder", file=outdir,
                           fix="give a folder for the outputs")
+    if not overwrite and (outdir / "results.h5").exists():   # before any work, not after it
+        raise MapkitError("the output file exists (from an earlier run)",
+                          file=outdir / "results.h5", field="--out",
+                          fix="choose another --out folder or pass --overwrite")
     outdir.mkdir(parents=True, exist_ok=True)
     recipe = recipe or Recipe.default()
     stages = ["read"] + [name for name, _ in recipe.steps] + [
@@ -123,6 +127,15 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
 
     stage("read")
     raw = open_map(map_path, **{"block_bytes": layout.READ_BYTES, **(open_kwargs or {})})
+    # the axis alone, before the cube is read: a crop too narrow for NMF or unmixing, or a
+    # library that does not cover what the recipe leaves, fails here with the recipe line
+    need, why = s.n_components, f"NMF with {s.n_components} components"
+    if refs:
+        terms = s.unmix_baseline_order + 1
+        if len(refs) + terms + 1 > need:
+            need, why = len(refs) + terms + 1, f"unmixing {len(refs)} references with {terms} " \
+                                                "baseline terms"
+    recipe.check_axis(raw.raman_shift, need=need, why=why, library=refs)
     need = raw.n_pixels * raw.shape[2] * 8 * 4  # float64 working copies of the cube
     if need > s.memory_fraction * _memory_available():
         raise MapkitError(f"the map needs about {need / 2**30:.1f} GiB to process in memory",
@@ -160,7 +173,9 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     results.append(km_result)
     bar.update()
     stage("unmixing")
-    notices = []
+    from .read.dispatch import read_notes
+
+    notices = read_notes(raw)
     calibration = None
     if refs is not None:
         unmix_result, = run_method(corrected, "unmix", library=refs,
