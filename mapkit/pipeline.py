@@ -55,6 +55,18 @@ def quantification_model(standards, library, recipe, settings):
 
     cs = read_calibration_set(standards)
     analyte = settings.analyte or cs.analyte
+    if (settings.calibration_model != "pls" and settings.response_band is None
+            and library is not None):   # the unmixing fraction: the analyte is a reference
+        names = [r.name for r in library]
+        if not settings.analyte and not cs.analyte_named:
+            raise MapkitError("the standards file does not name its analyte", file=standards,
+                              field="# analyte:", fix=f"add a line '# analyte: NAME; unit: UNIT' "
+                              f"with NAME one of {', '.join(names)}, or pass --analyte NAME")
+        if analyte not in names:
+            raise MapkitError(f"the analyte {analyte!r} is not among the references "
+                              f"({', '.join(names)})", file=standards,
+                              field="--analyte" if settings.analyte else "# analyte:",
+                              fix="name the reference spectrum of the analyte")
     if settings.calibration_model == "pls":
         response = Response("spectrum", analyte)
     elif settings.response_band is not None:
