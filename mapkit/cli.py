@@ -247,6 +247,11 @@ def _run_large(a, map_path, recipe, reason, library, standards, model):
     from .read import read_library
 
     refs = read_library(library) if library else None
+    from .read import open_map
+
+    # the axis alone (lazy open): a crop too narrow or a short library fail before cleaning
+    recipe.check_axis(open_map(map_path).raman_shift, need=a.components,
+                      why=f"NMF with {a.components} components", library=refs)
     if standards:
         s = Settings(analyte=a.analyte, calibration_model=a.calibration_model,
                      weighting=a.weighting, response_band=a.response_band,

@@ -298,7 +298,7 @@ def _read_dataset(f, path, dataset_path, axes, shift_path, x_path, y_path, pixel
                    f"{values.size}: the two are likely swapped)" if swapped else ""),
                 file=path, field="--axes",
                 fix="check --axes (the order of the dataset's dimensions) and --x/--y")
-    if len(given) < 2 and labels is None:
+    if labels is None and (len(given) < 2 or nx == ny):   # square: lengths cannot tell
         notes.append(f"axis order from --axes {stated} alone (nothing in the file confirms "
                      f"it): read as {ny} rows (y) x {nx} columns (x); if the map looks "
                      "transposed, swap x and y in --axes")
