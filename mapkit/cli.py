@@ -113,13 +113,7 @@ def _add_analysis_options(p, default_out="mapkit-output"):
     q.add_argument("--model-file", help="saved quantification model (from 'mapkit calibrate')")
     q.add_argument("--calibration-model", choices=("linear", "quadratic", "pls"),
                    default="linear", help="model fitted to --standards (default linear)")
-    q.add_argument("--weighting", choices=("none", "replicates"), default="none",
-                   help="least-squares weighting of the standards (default none)")
-    q.add_argument("--response-band", type=_range_arg, metavar="LO-HI",
-                   help="response: the band area over LO-HI 1/cm above a straight line "
-                        "through its end points, instead of the unmixing fraction")
-    q.add_argument("--internal-standard", type=_range_arg, metavar="LO-HI",
-                   help="divide the response band by this band's area")
+    add_response_options(q, _range_arg)
     q.add_argument("--region", action="append", metavar="NAME:X,Y;X,Y;X,Y",
                    help="polygon (um) for separate content statistics (repeatable)")
     p.add_argument("--overwrite", action="store_true", help="replace existing outputs")
@@ -127,6 +121,19 @@ def _add_analysis_options(p, default_out="mapkit-output"):
     p.add_argument("--figure-format", choices=("png", "svg", "both"), default="png",
                    help="figure files to write (default png)")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
+
+
+def add_response_options(g, range_type):
+    """Options that define the calibration response (analyse and calibrate share them)."""
+    g.add_argument("--weighting", choices=("none", "replicates"), default="none",
+                   help="least-squares weights of the standards: none (default), or "
+                        "replicates (1/variance, a line fitted to the replicate variances "
+                        "at each level)")
+    g.add_argument("--response-band", type=range_type, metavar="LO-HI",
+                   help="response: the band area over LO-HI 1/cm above a straight line "
+                        "through its end points (default: the unmixing fraction)")
+    g.add_argument("--internal-standard", type=range_type, metavar="LO-HI",
+                   help="divide the response band by this band's area")
 
 
 def _range_arg(text):

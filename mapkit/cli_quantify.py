@@ -121,13 +121,9 @@ def add_parsers(sub, add_read_options, range_type):
     c.add_argument("--recipe", help="cleaning recipe (default recipe when omitted)")
     c.add_argument("--model", choices=("linear", "quadratic", "pls"), default="linear",
                    help="calibration model (default linear)")
-    c.add_argument("--weighting", choices=("none", "replicates"), default="none",
-                   help="least-squares weights: none, or 1/variance of replicate standards")
-    c.add_argument("--response-band", type=range_type, metavar="LO-HI",
-                   help="response: the band area over LO-HI 1/cm above a straight line "
-                        "through its end points (default: the unmixing fraction)")
-    c.add_argument("--internal-standard", type=range_type, metavar="LO-HI",
-                   help="divide the response band by this band's area")
+    from .cli import add_response_options
+
+    add_response_options(c, range_type)
     c.add_argument("--analyte", help="reference name of the analyte (default: from the file)")
     c.add_argument("--out", default="mapkit-output", help="folder for the model and figure")
     c.add_argument("--overwrite", action="store_true", help="replace existing outputs")
