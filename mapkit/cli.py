@@ -257,8 +257,11 @@ def _run_large(a, map_path, recipe, reason, library, standards, model):
     from .read import open_map
 
     # the axis alone (lazy open): a crop too narrow or a short library fail before cleaning
+    notes = []
     recipe.check_axis(open_map(map_path).raman_shift, need=a.components,
-                      why=f"NMF with {a.components} components", library=refs)
+                      why=f"NMF with {a.components} components", library=refs, notes=notes)
+    for note in notes:
+        print(f"notice    {note}")
     if standards:
         s = Settings(analyte=a.analyte, calibration_model=a.calibration_model,
                      weighting=a.weighting, response_band=a.response_band,
@@ -391,6 +394,10 @@ def cmd_preprocess(a):
     for f in files:
         m = open_map(f, **_open_kwargs(a))
         _print_notes(m)
+        notes = []
+        recipe.check_axis(m.raman_shift, notes=notes)
+        for note in notes:
+            print(f"notice    {note}")
         clean, extras = recipe.apply(m)
         target = out / f"{f.stem}_clean.h5"
         write_map(target, clean, overwrite=a.overwrite)

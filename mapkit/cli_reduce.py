@@ -71,7 +71,10 @@ def _prepare(a, minimal=False, lazy_ok=False):
         _print_notes(m)
     if recipe is not None:   # the axis alone: a crop too narrow or a short library fail here
         need, why = _channel_need(a, library)
-        recipe.check_axis(m.raman_shift, need=need, why=why, library=library)
+        notes = []
+        recipe.check_axis(m.raman_shift, need=need, why=why, library=library, notes=notes)
+        for note in notes if not getattr(a, "quiet", False) else ():
+            print(f"notice    {note}")
     elif library:
         for ref in library:
             ref.on_axis(m.raman_shift)

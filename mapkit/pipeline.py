@@ -147,7 +147,8 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
         if len(refs) + terms + 1 > need:
             need, why = len(refs) + terms + 1, f"unmixing {len(refs)} references with {terms} " \
                                                 "baseline terms"
-    recipe.check_axis(raw.raman_shift, need=need, why=why, library=refs)
+    axis_notes = []
+    recipe.check_axis(raw.raman_shift, need=need, why=why, library=refs, notes=axis_notes)
     need = raw.n_pixels * raw.shape[2] * 8 * 4  # float64 working copies of the cube
     if need > s.memory_fraction * _memory_available():
         raise MapkitError(f"the map needs about {need / 2**30:.1f} GiB to process in memory",
@@ -187,7 +188,7 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     stage("unmixing")
     from .read.dispatch import read_notes
 
-    notices = read_notes(raw)
+    notices = read_notes(raw) + axis_notes
     calibration = None
     if refs is not None:
         unmix_result, = run_method(corrected, "unmix", library=refs,

@@ -290,7 +290,8 @@ def test_jittered_positions_snap_within_a_stated_tolerance(tmp_path):
     from mapkit.read.dispatch import read_notes
 
     p = _jittered(tmp_path)
-    with pytest.raises(MapkitError, match="positions missing.*--position-tolerance"):
+    with pytest.raises(MapkitError, match=r"not a rectangular grid: 48 distinct x and \d+ "
+                                          "distinct y values for 48 spectra.*--position-tol"):
         open_map(p)
     m = open_map(p, position_tolerance=0.05)
     assert m.shape == (6, 8, 3)

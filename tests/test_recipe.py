@@ -160,3 +160,17 @@ def test_a_narrow_crop_fails_before_cleaning(sample_map):
     r = Recipe.from_text(text, "r.toml")
     with pytest.raises(MapkitError, match="r.toml: line 16: crop keeps"):
         r.apply(sample_map)
+
+
+def test_a_crop_keeping_a_small_share_is_reported_with_its_line():
+    # 1700-1790 of a 100-1900 axis: enough channels for NMF with 4 components, but only
+    # 10 of 201 (under a tenth): said, not refused
+    r = Recipe.from_text('[[step]]\nname = "crop"\nlow = 1700.0\nhigh = 1790.0\n', "r.toml")
+    notes = []
+    axis = r.check_axis(np.linspace(100.0, 1900.0, 201), need=4, why="NMF", notes=notes)
+    assert axis.size == 10                                       # 1702, 1711, ..., 1783
+    assert notes == ["r.toml: line 1: crop keeps 10 of 201 channels (1702.0-1783.0 1/cm); "
+                     "check the range if that was not meant"]
+    notes = []
+    r.check_axis(np.linspace(1500.0, 1900.0, 41), notes=notes)   # 10 of 41: silent
+    assert notes == []

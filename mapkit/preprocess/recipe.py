@@ -119,14 +119,17 @@ class Recipe:
         meta = doc.get("recipe", {})
         return cls(tuple(steps), str(meta.get("name", "")), text, source, tuple(lines))
 
-    def check_axis(self, shift, *, need: int = 0, why: str = "", library=None):
+    def check_axis(self, shift, *, need: int = 0, why: str = "", library=None,
+                   notes: list | None = None):
         """The shift axis after the recipe, computed from ``shift`` alone (no data read).
 
         Refuses, naming the recipe line, a ``crop`` or ``resample`` that leaves fewer
         channels than the steps after it need, or than ``need`` (what the analysis after
         the recipe needs, described by ``why``, e.g. ``"NMF with 4 components"``); a
         normalisation band or crop range outside the channels left; and, with
-        ``library``, a reference spectrum that does not cover the final axis.
+        ``library``, a reference spectrum that does not cover the final axis. A crop or
+        resample that keeps less than a tenth of the channels without breaking a need is
+        not refused, but described in ``notes`` (a list to append to), with its line.
         """
         from . import axis as _axis
 
@@ -169,6 +172,10 @@ class Recipe:
                             f"than the {most} that {reason} needs", file=self.source,
                             field=where, fix="check the range (a digit missing, e.g. 179 for "
                                              "1790?) or widen it")
+                if notes is not None and 10 * new.size < axis.size:
+                    notes.append(f"{self.source}: {where}: {name} keeps {new.size} of "
+                                 f"{axis.size} channels ({new.min():.1f}-{new.max():.1f} "
+                                 "1/cm); check the range if that was not meant")
             axis = new
         for ref in library or ():
             ref.on_axis(axis)

@@ -13,7 +13,7 @@ import numpy as np
 from ..errors import MapkitError
 
 TOLERANCE_FIX = ("if the stage positions jitter around a grid, pass --position-tolerance UM "
-                 "(e.g. half the largest jitter's spread)")
+                 "(a little above the jitter, below half the pixel step)")
 
 
 def _lines(values, tolerance, name, path):
@@ -77,7 +77,13 @@ def check_coverage(seen, ux, uy, path):
         iy, ix = np.argwhere(seen > 1)[0]
         raise MapkitError(f"position x={ux[ix]:g}, y={uy[iy]:g} appears more than once",
                           file=path, field="x, y", fix="keep one spectrum per position")
-    if np.any(seen == 0):
+    missing = int((seen == 0).sum())
+    n = int(seen.sum())
+    if missing > n:   # far more holes than spectra: positions that never repeat exactly
+        raise MapkitError(f"the positions are not a rectangular grid: {ux.size} distinct x and "
+                          f"{uy.size} distinct y values for {n} spectra", file=path,
+                          field="x, y", fix=TOLERANCE_FIX)
+    if missing:
         iy, ix = np.argwhere(seen == 0)[0]
         raise MapkitError(f"position x={ux[ix]:g}, y={uy[iy]:g} is missing: the scan is not a "
                           f"rectangular grid ({int((seen == 0).sum())} positions missing)",
