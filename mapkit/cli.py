@@ -38,14 +38,25 @@ def _positive_int(text: str) -> int:
 def _add_read_options(p, laser: bool = True):
     g = p.add_argument_group("reading a cube from any HDF5 file")
     g.add_argument("--dataset", help="path of the intensity cube inside the HDF5 file")
-    g.add_argument("--axes", help="the cube's axis order, e.g. y,x,raman_shift")
+    g.add_argument("--axes", help="the dataset's axis order, e.g. y,x,raman_shift (a 2-D stack "
+                                  "of spectra: pixel,raman_shift); checked against the file's "
+                                  "dimension labels and the shift and position datasets, and "
+                                  "reported when nothing in the file can confirm it")
     g.add_argument("--shift-dataset", dest="shift_path",
-                   help="path of the Raman shift dataset (cm-1)")
-    g.add_argument("--x", dest="x_path", help="path of the x positions dataset (um)")
+                   help="path of the shift axis dataset; its units attribute is honoured "
+                        "(1/cm, cm-1, cm^-1: Raman shift; nm: wavelength, converted with "
+                        "--laser); other units are refused")
+    g.add_argument("--x", dest="x_path", help="path of the x positions dataset (um; one per "
+                                              "column, or one per spectrum of a 2-D stack)")
     g.add_argument("--y", dest="y_path", help="path of the y positions dataset (um)")
     g.add_argument("--pixel-size", type=float, help="step in um when no position datasets exist")
+    p.add_argument("--position-tolerance", type=float, metavar="UM",
+                   help="text tables and 2-D stacks: snap positions that jitter by up to UM "
+                        "around a grid onto it (reported); default: positions must repeat "
+                        "exactly")
     if laser:
-        p.add_argument("--laser", type=float, help="excitation wavelength in nm, if the file lacks it")
+        p.add_argument("--laser", type=float, help="excitation wavelength in nm, if the file lacks "
+                                                   "it (converts a wavelength axis to shift)")
 
 
 def _open_kwargs(a) -> dict:
@@ -54,7 +65,29 @@ def _open_kwargs(a) -> dict:
     # every command is a pass over whole maps: read them in blocks, not pixel tiles
     return {"dataset": a.dataset, "axes": a.axes, "shift": a.shift_path, "x": a.x_path,
             "y": a.y_path, "pixel_size": a.pixel_size, "laser_wavelength": a.laser,
-            "block_bytes": layout.READ_BYTES}
+            "position_tolerance": a.position_tolerance, "block_bytes": layout.READ_BYTES}
+
+
+def _print_notes(m, prefix="notice    ", file=None):
+    """Print what the reader converted, snapped or could not confirm."""
+    from .read.dispatch import read_notes
+
+    for note in read_notes(m):
+        print(f"{prefix}{note}", file=file or sys.stdout)
+
+
+def _check_outputs(out, overwrite, names=("results.h5",)):
+    """Refuse, before any work, an output folder that is a file or holds earlier outputs."""
+    out = Path(out)
+    if out.exists() and not out.is_dir():
+        raise MapkitError("the output path is a file, not a folder", file=out, field="--out",
+                          fix="give a folder for the outputs")
+    if overwrite:
+        return
+    for name in names:
+        if (out / name).exists():
+            raise MapkitError("the output file exists (from an earlier run)", file=out / name,
+                              field="--out", fix="choose another --out folder or pass --overwrite")
 
 
 def _add_analysis_options(p, default_out="mapkit-output"):
@@ -80,12 +113,7 @@ def _add_analysis_options(p, default_out="mapkit-output"):
     q.add_argument("--model-file", help="saved quantification model (from 'mapkit calibrate')")
     q.add_argument("--calibration-model", choices=("linear", "quadratic", "pls"),
                    default="linear", help="model fitted to --standards (default linear)")
-    q.add_argument("--weighting", choices=("none", "replicates"), default="none",
-                   help="least-squares weighting of the standards (default none)")
-    q.add_argument("--response-band", type=_range_arg, metavar="LO-HI",
-                   help="use a band area as response instead of the unmixing fraction")
-    q.add_argument("--internal-standard", type=_range_arg, metavar="LO-HI",
-                   help="divide the response band by this band's area")
+    add_response_options(q, _range_arg)
     q.add_argument("--region", action="append", metavar="NAME:X,Y;X,Y;X,Y",
                    help="polygon (um) for separate content statistics (repeatable)")
     p.add_argument("--overwrite", action="store_true", help="replace existing outputs")
@@ -153,6 +181,19 @@ def _print_optical(info):
                                                                 reg["residuals_um"]) + " um")
 
 
+def add_response_options(g, range_type):
+    """Options that define the calibration response (analyse and calibrate share them)."""
+    g.add_argument("--weighting", choices=("none", "replicates"), default="none",
+                   help="least-squares weights of the standards: none (default), or "
+                        "replicates (1/variance, a line fitted to the replicate variances "
+                        "at each level)")
+    g.add_argument("--response-band", type=range_type, metavar="LO-HI",
+                   help="response: the band area over LO-HI 1/cm above a straight line "
+                        "through its end points (default: the unmixing fraction)")
+    g.add_argument("--internal-standard", type=range_type, metavar="LO-HI",
+                   help="divide the response band by this band's area")
+
+
 def _range_arg(text):
     from .cli_reduce import _range
 
@@ -174,6 +215,7 @@ def _run_analysis(a, map_path, library, standards, bands):
     from .pipeline import Settings, analyse
 
     recipe = _recipe(a)  # checked before any data is read
+    _check_outputs(a.out, a.overwrite)
 
     from .quantify import QuantModel
     from .quantify.regions import parse_region
@@ -185,6 +227,8 @@ def _run_analysis(a, map_path, library, standards, bands):
     if bands:
         s.bands = bands
     model = QuantModel.load(a.model_file) if a.model_file else None
+    if model is not None:
+        recipe = _model_recipe(a, model, recipe)
     regions = dict(parse_region(r) for r in a.region or [])
     optical = _optical_request(a, getattr(a, "optical", None)) if hasattr(a, "transform") \
         else None
@@ -236,6 +280,22 @@ def _run_analysis(a, map_path, library, standards, bands):
     return out
 
 
+def _model_recipe(a, model, recipe):
+    """The recipe to clean with when a saved model is applied: its own, unless one is given."""
+    from .preprocess.recipe import Recipe
+
+    if not getattr(a, "recipe", None):
+        print(f"recipe    the one saved in {a.model_file}")
+        return Recipe.from_text(model.recipe_text, f"{a.model_file} (recipe)")
+    try:
+        model.check_recipe(recipe)
+    except MapkitError as exc:
+        raise MapkitError(exc.problem, file=a.recipe, field="--recipe",
+                          fix="omit --recipe to clean with the recipe saved in the model, or "
+                              "pass the recipe.toml 'mapkit calibrate' wrote beside it") from None
+    return recipe
+
+
 def _choose_mode(a, map_path):
     """None for the in-memory path, else the reason to go chunk-wise."""
     from .read import open_map
@@ -259,6 +319,14 @@ def _run_large(a, map_path, recipe, reason, library, standards, model):
     from .read import read_library
 
     refs = read_library(library) if library else None
+    from .read import open_map
+
+    # the axis alone (lazy open): a crop too narrow or a short library fail before cleaning
+    notes = []
+    recipe.check_axis(open_map(map_path).raman_shift, need=a.components,
+                      why=f"NMF with {a.components} components", library=refs, notes=notes)
+    for note in notes:
+        print(f"notice    {note}")
     if standards:
         s = Settings(analyte=a.analyte, calibration_model=a.calibration_model,
                      weighting=a.weighting, response_band=a.response_band,
@@ -359,6 +427,7 @@ def cmd_info(a):
 
     m = open_map(a.map, **_open_kwargs(a))
     print(repr(m))
+    _print_notes(m)
     if m.laser_wavelength:
         print(f"laser     {m.laser_wavelength:g} nm")
     for step in m.provenance:
@@ -377,10 +446,20 @@ def cmd_info(a):
 
 def cmd_convert(a):
     from .export import write_map
+    from .export.atomic import check_target
     from .read import open_map
 
+    out = Path(a.output)
+    folder = next((q for q in [out.parent, *out.parent.parents] if q.exists()), None)
+    if folder is not None and not folder.is_dir():
+        raise MapkitError("the output folder does not exist: it would lie under a file",
+                          file=out, fix=f"{folder} is a file; give a path in a folder")
+    if out.parent.is_dir():
+        check_target(out, overwrite=a.overwrite)   # before the input is read
     m = open_map(a.input, **_open_kwargs(a))
-    write_map(a.output, m, overwrite=a.overwrite)
+    _print_notes(m)
+    out.parent.mkdir(parents=True, exist_ok=True)   # as analyse --out does
+    write_map(out, m, overwrite=a.overwrite)
     print(f"wrote {a.output}: {m!r}")
 
 
@@ -390,9 +469,18 @@ def cmd_spectrum(a):
     from .read import open_map
 
     m = open_map(a.map, **_open_kwargs(a))
+    for name, want, axis in (("x", a.at[0], m.x), ("y", a.at[1], m.y)):
+        # a pixel covers half a step on each side of its position: beyond that is outside
+        half = 0.5 * float(np.median(np.abs(np.diff(axis)))) if axis.size > 1 else 0.5
+        lo, hi = float(axis.min()) - half, float(axis.max()) + half
+        if not lo <= want <= hi:
+            raise MapkitError(f"{name} = {want:g} um lies outside the map ({name} "
+                              f"{axis.min():g} to {axis.max():g} um)", file=a.map, field="--at",
+                              fix=f"give a position from {lo:g} to {hi:g} um")
     ix = int(np.argmin(np.abs(m.x - a.at[0])))
     iy = int(np.argmin(np.abs(m.y - a.at[1])))
     s = m.spectrum(iy, ix)
+    _print_notes(m, prefix="# notice: ")
     print(f"# pixel x={m.x[ix]:g} um, y={m.y[iy]:g} um (column {ix}, row {iy})")
     print("raman_shift_cm-1,intensity")
     for sh, v in zip(m.raman_shift, s):
@@ -419,9 +507,15 @@ def cmd_preprocess(a):
     recipe = _recipe(a)
     files = _map_files(a.target)
     out = Path(a.out)
+    _check_outputs(out, a.overwrite, [f"{f.stem}_clean.h5" for f in files])  # before any read
     out.mkdir(parents=True, exist_ok=True)
     for f in files:
         m = open_map(f, **_open_kwargs(a))
+        _print_notes(m)
+        notes = []
+        recipe.check_axis(m.raman_shift, notes=notes)
+        for note in notes:
+            print(f"notice    {note}")
         clean, extras = recipe.apply(m)
         target = out / f"{f.stem}_clean.h5"
         write_map(target, clean, overwrite=a.overwrite)
@@ -520,21 +614,22 @@ def build_parser() -> argparse.ArgumentParser:
     mi.set_defaults(func=cmd_micrograph)
 
     i = sub.add_parser("info", help="describe a map or results file")
-    i.add_argument("map")
+    i.add_argument("map", help="map or results file")
     _add_read_options(i)
     i.set_defaults(func=cmd_info)
 
     c = sub.add_parser("convert", help="write any readable map in the mapkit HDF5 layout")
-    c.add_argument("input")
-    c.add_argument("output")
-    c.add_argument("--overwrite", action="store_true")
+    c.add_argument("input", help="map file (text table, any HDF5 with --dataset, mapkit file)")
+    c.add_argument("output", help="mapkit HDF5 file to write (its folder is created)")
+    c.add_argument("--overwrite", action="store_true", help="replace an existing output")
     _add_read_options(c)
     c.set_defaults(func=cmd_convert)
 
     s = sub.add_parser("spectrum", help="print one pixel's spectrum as CSV")
-    s.add_argument("map")
+    s.add_argument("map", help="map file")
     s.add_argument("--at", nargs=2, type=float, metavar=("X_UM", "Y_UM"), required=True,
-                   help="stage position in um (nearest pixel)")
+                   help="stage position in um (nearest pixel; a position more than half a "
+                        "pixel outside the map is an error)")
     _add_read_options(s)
     s.set_defaults(func=cmd_spectrum)
 
@@ -548,7 +643,7 @@ def build_parser() -> argparse.ArgumentParser:
     pp.add_argument("target", help="map file or folder of maps")
     pp.add_argument("--recipe", help="TOML recipe (default: see 'mapkit steps')")
     pp.add_argument("--out", default="mapkit-output", help="folder for the cleaned maps")
-    pp.add_argument("--overwrite", action="store_true")
+    pp.add_argument("--overwrite", action="store_true", help="replace existing outputs")
     _add_read_options(pp)
     pp.set_defaults(func=cmd_preprocess)
 
@@ -565,15 +660,15 @@ def build_parser() -> argparse.ArgumentParser:
     ac.add_argument("--window", type=float, default=10.0,
                     help="search half-width around each tabulated band, 1/cm (default 10)")
     ac.add_argument("--out", help="write the recipe step to this TOML file")
-    ac.add_argument("--overwrite", action="store_true")
+    ac.add_argument("--overwrite", action="store_true", help="replace an existing output")
     ac.set_defaults(func=cmd_axis_calibrate)
 
     g = sub.add_parser("samples", help="regenerate the synthetic sample data")
-    g.add_argument("outdir")
+    g.add_argument("outdir", help="folder to write the sample files into")
     g.set_defaults(func=cmd_samples)
 
     v = sub.add_parser("view", help="open a map in napari with the mapkit panels")
-    v.add_argument("map")
+    v.add_argument("map", help="map or results file")
     v.set_defaults(func=cmd_view)
     return p
 
@@ -582,6 +677,10 @@ def main(argv=None) -> int:
     args = build_parser().parse_args(argv)
     try:
         args.func(args)
+    except BrokenPipeError:
+        # the reader stopped reading (e.g. '| head'): not an error, and nothing to report
+        _silence_stdout()
+        return 0
     except MapkitError as exc:
         print(f"mapkit: error: {exc}", file=sys.stderr)
         return 2
@@ -596,6 +695,15 @@ def main(argv=None) -> int:
               "(rerun with MAPKIT_DEBUG=1 for the traceback and report it)", file=sys.stderr)
         return 1
     return 0
+
+
+def _silence_stdout():
+    """Point stdout at /dev/null, so flushing at exit does not raise a second BrokenPipeError."""
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    except (OSError, ValueError, AttributeError):  # no real file descriptor (captured output)
+        pass
 
 
 if __name__ == "__main__":  # pragma: no cover

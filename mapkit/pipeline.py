@@ -55,6 +55,18 @@ def quantification_model(standards, library, recipe, settings):
 
     cs = read_calibration_set(standards)
     analyte = settings.analyte or cs.analyte
+    if (settings.calibration_model != "pls" and settings.response_band is None
+            and library is not None):   # the unmixing fraction: the analyte is a reference
+        names = [r.name for r in library]
+        if not settings.analyte and not cs.analyte_named:
+            raise MapkitError("the standards file does not name its analyte", file=standards,
+                              field="# analyte:", fix=f"add a line '# analyte: NAME; unit: UNIT' "
+                              f"with NAME one of {', '.join(names)}, or pass --analyte NAME")
+        if analyte not in names:
+            raise MapkitError(f"the analyte {analyte!r} is not among the references "
+                              f"({', '.join(names)})", file=standards,
+                              field="--analyte" if settings.analyte else "# analyte:",
+                              fix="name the reference spectrum of the analyte")
     if settings.calibration_model == "pls":
         response = Response("spectrum", analyte)
     elif settings.response_band is not None:
@@ -103,6 +115,10 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     if outdir.exists() and not outdir.is_dir():
         raise MapkitError("the output path is a file, not a folder", file=outdir,
                           fix="give a folder for the outputs")
+    if not overwrite and (outdir / "results.h5").exists():   # before any work, not after it
+        raise MapkitError("the output file exists (from an earlier run)",
+                          file=outdir / "results.h5", field="--out",
+                          fix="choose another --out folder or pass --overwrite")
     placed, optical_notices = (None, []) if optical is None else place_optical(
         optical, open_map_axes(map_path, open_kwargs))
     outdir.mkdir(parents=True, exist_ok=True)
@@ -129,6 +145,16 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
 
     stage("read")
     raw = open_map(map_path, **{"block_bytes": layout.READ_BYTES, **(open_kwargs or {})})
+    # the axis alone, before the cube is read: a crop too narrow for NMF or unmixing, or a
+    # library that does not cover what the recipe leaves, fails here with the recipe line
+    need, why = s.n_components, f"NMF with {s.n_components} components"
+    if refs:
+        terms = s.unmix_baseline_order + 1
+        if len(refs) + terms + 1 > need:
+            need, why = len(refs) + terms + 1, f"unmixing {len(refs)} references with {terms} " \
+                                                "baseline terms"
+    axis_notes = []
+    recipe.check_axis(raw.raman_shift, need=need, why=why, library=refs, notes=axis_notes)
     need = raw.n_pixels * raw.shape[2] * 8 * 4  # float64 working copies of the cube
     if need > s.memory_fraction * _memory_available():
         raise MapkitError(f"the map needs about {need / 2**30:.1f} GiB to process in memory",
@@ -166,7 +192,9 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     results.append(km_result)
     bar.update()
     stage("unmixing")
-    notices = list(optical_notices)
+    from .read.dispatch import read_notes
+
+    notices = list(optical_notices) + read_notes(raw) + axis_notes
     calibration = None
     if refs is not None:
         unmix_result, = run_method(corrected, "unmix", library=refs,

@@ -1,6 +1,7 @@
 """Quantification from the command line: calibrate, analyse with a model, batch, physics maps."""
 
 import csv
+import json
 import shutil
 
 import h5py
@@ -159,3 +160,28 @@ def test_crystallite_command(tmp_path):
     with h5py.File(tmp_path / "o" / "results.h5") as f:
         la = f["/entry/results/crystallite_size/crystallite_size/crystallite_size"][...]
     assert np.median(la) == pytest.approx(19.2, rel=0.05)   # I_D/I_G = 1 at 532 nm
+
+
+def test_a_saved_model_cleans_with_its_own_recipe(model_dir, sample_dir, tmp_path, capsys):
+    # the model was calibrated with tablet_recipe.toml, not the default recipe: without
+    # --recipe its own recipe is used (and said so); another recipe is refused before any
+    # work with the way out
+    rc = main(["analyse", str(sample_dir / "blend_map.h5"), "--model-file",
+               str(model_dir / "quant_model.json"), "--library", str(sample_dir / "library"),
+               "--out", str(tmp_path / "o"), "--quiet", "--no-figures", "--components", "2",
+               "--classes", "2"])
+    out, err = capsys.readouterr()
+    assert rc == 0, err
+    assert "recipe    the one saved in" in out
+    with h5py.File(tmp_path / "o" / "results.h5") as f:
+        steps = [s.decode() if isinstance(s, bytes) else s for s in f["/entry/provenance/steps"]]
+    saved = (model_dir / "recipe.toml").read_text()
+    assert any('"recipe"' in s and json.loads(s)["parameters"]["text"] == saved for s in steps)
+    other = tmp_path / "other.toml"
+    other.write_text(saved.replace("1e6", "1e5"))
+    rc = main(["analyse", str(tmp_path / "missing.h5"), "--model-file",
+               str(model_dir / "quant_model.json"), "--recipe", str(other),
+               "--out", str(tmp_path / "o2"), "--quiet"])
+    err = capsys.readouterr().err
+    assert rc == 2 and "other.toml: --recipe: the map is cleaned with another recipe" in err
+    assert "omit --recipe" in err and "file not found" not in err

@@ -353,7 +353,11 @@ def _scatter(m, method, order=0):
           Param("low", float, 0.0, "lowest shift kept, cm⁻¹", required=True),
           Param("high", float, 0.0, "highest shift kept, cm⁻¹", required=True))
 def _crop(m, low, high):
-    """Keep the channels between low and high cm⁻¹."""
+    """Keep the channels between low and high cm⁻¹ (low below high: not swapped)."""
+    if low >= high:
+        raise MapkitError(f"crop low = {low:g} is not below high = {high:g} (a reversed "
+                          "range is not swapped)", field="step 'crop'",
+                          fix="give low < high, both in 1/cm")
     idx = _axis.crop_indices(m.raman_shift, low, high)
     sel = slice(int(idx[0]), int(idx[-1]) + 1)
     return m.derive(m.intensity[:, :, sel], Step("crop", {"low": low, "high": high}),
