@@ -99,7 +99,14 @@ def _add_analysis_options(p, default_out="mapkit-output"):
     p.add_argument("--band", action="append", type=_band, metavar="NAME:LO-HI",
                    help="band image to integrate, cm-1 (repeatable)")
     p.add_argument("--components", type=_positive_int, default=4, help="NMF components (default 4)")
-    p.add_argument("--classes", type=_positive_int, default=4, help="k-means classes (default 4)")
+    p.add_argument("--class-method", choices=("dominant", "kmeans", "minibatch", "ward"),
+                   default="dominant",
+                   help="classes: 'dominant' (default) puts each pixel in the NMF component "
+                        "with the largest abundance, one class per component; kmeans, "
+                        "minibatch or ward cluster the spectra's shapes")
+    p.add_argument("--classes", type=_positive_int,
+                   help="number of classes for kmeans, minibatch or ward (default: as many as "
+                        "--components)")
     p.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
     p.add_argument("--recipe", help="TOML recipe of cleaning steps (default: mask bad pixels, "
                                     "despike, arPLS baseline; see 'mapkit steps')")
@@ -220,7 +227,11 @@ def _run_analysis(a, map_path, library, standards, bands):
     from .quantify import QuantModel
     from .quantify.regions import parse_region
 
-    s = Settings(n_components=a.components, n_classes=a.classes, seed=a.seed,
+    if a.class_method == "dominant" and a.classes not in (None, a.components):
+        raise MapkitError("dominant-component classes come one per NMF component",
+                          field="--classes", fix="drop --classes, or add --class-method kmeans")
+    s = Settings(n_components=a.components, class_method=a.class_method,
+                 n_classes=a.classes, seed=a.seed,
                  analyte=a.analyte, calibration_model=a.calibration_model,
                  weighting=a.weighting, response_band=a.response_band,
                  internal_standard=a.internal_standard)
@@ -254,7 +265,7 @@ def _run_analysis(a, map_path, library, standards, bands):
         print(f"notice    {note}")
     if "optical" in summ:
         _print_optical(summ["optical"])
-    km = summ["results"].get("kmeans", {})
+    km = summ["results"].get("classes") or summ["results"].get("kmeans", {})
     names = {r["spectrum"]: r["match"] for r in km.get("identification", [])}
     if km.get("areas"):
         print("classes   " + ", ".join(
@@ -333,8 +344,11 @@ def _run_large(a, map_path, recipe, reason, library, standards, model):
                      internal_standard=a.internal_standard)
         model = quantification_model(standards, refs, recipe, s)
     print(f"mode      chunk-wise ({reason})")
+    if a.class_method != "minibatch":
+        print("notice    chunk-wise classes are mini-batch k-means clusters and unmixing runs on "
+              "the baseline-corrected cube (the in-memory path does both the default way)")
     out = analyse_large(map_path, a.out, recipe=recipe, n_components=a.components,
-                        n_classes=a.classes, seed=a.seed, workers=a.workers,
+                        n_classes=a.classes or a.components, seed=a.seed, workers=a.workers,
                         address=a.scheduler, overwrite=a.overwrite, figures=not a.no_figures,
                         progress=not a.quiet, bands=a.band or (), library=refs, model=model)
     if model is not None:

@@ -25,9 +25,16 @@ class Settings:
     bands: list = field(default_factory=list)
     normalisation: str = "vector"
     n_components: int = 4
-    n_classes: int = 4
+    #: "dominant" (each pixel joins its dominant NMF component) or a clustering method
+    #: ("kmeans", "minibatch", "ward") of the spectra's shapes
+    class_method: str = "dominant"
+    #: classes for the clustering methods (None: as many as components)
+    n_classes: int | None = None
     seed: int = 0
-    unmix_baseline_order: int = 5
+    #: polynomial baseline terms fitted with the references; "auto": chosen by the data
+    unmix_baseline_order: int | str | None = "auto"
+    #: baseline terms of an unmixing response fitted to standards (stored in the model)
+    content_baseline_order: int = 5
     analyte: str | None = None
     calibration_model: str = "linear"
     weighting: str = "none"
@@ -78,7 +85,7 @@ def quantification_model(standards, library, recipe, settings):
             raise MapkitError("calibration standards need a reference library to unmix against",
                               field="--standards", fix="pass --library too, or --response-band")
         response = Response("unmix_fraction", analyte, references=tuple(r.name for r in library),
-                            baseline_order=settings.unmix_baseline_order)
+                            baseline_order=settings.content_baseline_order)
     return QuantModel.fit(cs, response, model=settings.calibration_model,
                           weighting=settings.weighting, library=library, recipe=recipe)
 
@@ -124,7 +131,7 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     outdir.mkdir(parents=True, exist_ok=True)
     recipe = recipe or Recipe.default()
     stages = ["read"] + [name for name, _ in recipe.steps] + [
-        "bands", "NMF", "k-means", "unmixing", "concentration", "write"]
+        "bands", "NMF", "classes", "unmixing", "concentration", "write"]
     bar = tqdm(total=len(stages), desc="mapkit", unit="step", disable=not progress, leave=False)
 
     def stage(name):
@@ -149,7 +156,8 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     # library that does not cover what the recipe leaves, fails here with the recipe line
     need, why = s.n_components, f"NMF with {s.n_components} components"
     if refs:
-        terms = s.unmix_baseline_order + 1
+        order = s.unmix_baseline_order
+        terms = 1 if order == "auto" else 0 if order is None else order + 1
         if len(refs) + terms + 1 > need:
             need, why = len(refs) + terms + 1, f"unmixing {len(refs)} references with {terms} " \
                                                 "baseline terms"
@@ -167,7 +175,19 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
         stage(name)
         bar.update()
 
-    corrected, extras = recipe.apply(m, progress=step_progress)
+    # unmixing fits the background together with the references, so it takes the map as
+    # it was before the recipe's first baseline step (a baseline subtracted first eats the
+    # wings of broad bands); a later binning step would change the grid, so then it cannot
+    corrected, extras, with_background = m, {}, None
+    previous = m
+    for name, corrected, extra in recipe.iter_apply(m, progress=step_progress):
+        extras[name] = extra
+        if name == "baseline" and with_background is None:
+            with_background = previous
+        previous = corrected
+    names = [n for n, _ in recipe.steps]
+    if with_background is None or "bin" in names[names.index("baseline"):]:
+        with_background = corrected
     bad_report = extras.get("mask_bad_pixels", {}).get("report",
                                                        {"nonfinite": 0, "dead": 0, "saturated": 0})
     spikes = extras.get("despike", {}).get("spikes")
@@ -186,9 +206,14 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     nmf_result, = run_method(corrected, "nmf", n=s.n_components, seed=s.seed, library=refs)
     results.append(nmf_result)
     bar.update()
-    stage("k-means")
-    km_result, = run_method(corrected, "kmeans", n=s.n_classes, seed=s.seed, library=refs,
-                            normalisation=s.normalisation, name="kmeans")
+    stage("classes")
+    if s.class_method == "dominant":
+        km_result, = run_method(corrected, "dominant", n=s.n_components, library=refs,
+                                images=nmf_result.fields["images"].data, name="classes")
+    else:
+        km_result, = run_method(corrected, s.class_method, n=s.n_classes or s.n_components,
+                                seed=s.seed, library=refs, normalisation=s.normalisation,
+                                name="classes")
     results.append(km_result)
     bar.update()
     stage("unmixing")
@@ -197,7 +222,7 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     notices = list(optical_notices) + read_notes(raw) + axis_notes
     calibration = None
     if refs is not None:
-        unmix_result, = run_method(corrected, "unmix", library=refs,
+        unmix_result, = run_method(with_background, "unmix", library=refs,
                                    baseline_order=s.unmix_baseline_order)
         notices += unmix_result.summary.pop("notices", [])
         results.append(unmix_result)
@@ -320,24 +345,28 @@ def optical_summary(placed) -> dict:
     return out
 
 
-METHODS = ("nmf", "mcr", "pca", "kmeans", "minibatch", "ward", "unmix", "fcls", "content")
+METHODS = ("nmf", "mcr", "pca", "kmeans", "minibatch", "ward", "dominant", "unmix", "fcls",
+           "content")
 
 
 def run_method(m, method: str, *, n: int = 4, seed: int = 0, library=None, model=None,
                init: str = "nndsvda", closure: bool = False, smooth: float = 0.0,
-               baseline_order: int | None = 5, min_score: float = 0.9,
-               normalisation: str = "vector", name: str = "classes"):
+               baseline_order: int | str | None = "auto", min_score: float = 0.9,
+               images=None, normalisation: str = "vector", name: str = "classes"):
     """Run one reduction or quantification method on a cleaned map; returns its Results.
 
     The command line's ``analyse``, ``components``, ``classes`` and ``unmix`` subcommands
     and the napari analysis panel all call this, so they give the same numbers.
     ``normalisation`` and ``name`` apply to the classifications (spectra are normalised
-    before clustering; ``name`` is the result's name).
+    before clustering; ``name`` is the result's name). ``"dominant"`` classes follow the
+    largest of the component ``images`` (default: those of an NMF of ``m`` with ``n``
+    components); ``baseline_order`` is the unmixing's ("auto": chosen by the data).
     """
     import warnings
 
     from .preprocess import normalise_map
-    from .reduce import MCRALS, KMeansClasses, NMFComponents, PCAScores, ReferenceUnmixing
+    from .reduce import (MCRALS, DominantClasses, KMeansClasses, NMFComponents, PCAScores,
+                         ReferenceUnmixing)
     from .reduce import match_library
 
     if method not in METHODS:
@@ -356,6 +385,16 @@ def run_method(m, method: str, *, n: int = 4, seed: int = 0, library=None, model
         if library:
             res.summary["identification"] = match_library(est.components_, m.raman_shift,
                                                           library, names=names,
+                                                          min_score=min_score)
+        return [res]
+    if method == "dominant":
+        if images is None:   # the components of an NMF of this map
+            images = run_method(m, "nmf", n=n, seed=seed)[0].fields["images"].data
+        dom = DominantClasses(n_classes=len(images)).fit(m, images)
+        res = dom.result(m, name=name)
+        if library:
+            res.summary["identification"] = match_library(dom.class_mean_, m.raman_shift,
+                                                          library, names=list(res.summary["areas"]),
                                                           min_score=min_score)
         return [res]
     if method in ("kmeans", "minibatch", "ward"):

@@ -28,7 +28,7 @@ def test_demo_writes_everything(demo_out):
     names = {p.name for p in out.iterdir()}
     for expected in ("results.h5", "summary.json", "quant_model.json", "report.html",
                      "tablet_map_maps.csv",
-                     "tablet_map_kmeans_labels.tif", "tablet_map_kmeans_labels.png",
+                     "tablet_map_classes_labels.tif", "tablet_map_classes_labels.png",
                      "tablet_map_concentration.tif", "tablet_map_concentration_uncertainty.tif",
                      "tablet_map_nmf_images.tif", "tablet_map_unmixing_abundance.tif"):
         assert expected in names, expected
@@ -38,7 +38,7 @@ def test_demo_writes_everything(demo_out):
 def test_demo_results_file_layout(demo_out):
     _, out, *_ = demo_out
     with h5py.File(out / "results.h5", "r") as f:
-        for group in ("nmf/images", "nmf/spectra", "kmeans/labels", "kmeans/class_spectra",
+        for group in ("nmf/images", "nmf/spectra", "classes/labels", "classes/class_spectra",
                       "unmixing/abundance", "concentration/concentration", "spikes/replaced"):
             assert f"/entry/results/{group}" in f, group
         conc = f["/entry/results/concentration/concentration"]
@@ -80,7 +80,7 @@ def test_demo_is_reproducible(demo_out, tmp_path):
     assert main(["demo", "--out", str(tmp_path), "--quiet", "--no-figures"]) == 0
     with h5py.File(out / "results.h5") as a, h5py.File(tmp_path / "results.h5") as b:
         for path in ("/entry/map/intensity", "/entry/results/nmf/images/abundance",
-                     "/entry/results/kmeans/labels/labels",
+                     "/entry/results/classes/labels/labels",
                      "/entry/results/concentration/concentration/concentration"):
             np.testing.assert_array_equal(a[path][...], b[path][...])
 

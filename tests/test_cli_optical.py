@@ -44,7 +44,7 @@ def test_analyse_stores_and_reports_the_micrograph(analysed, capsys):
                                    reg["residuals_um"])
         inputs = json.loads(f["/entry/provenance"].attrs["inputs"])
         assert set(inputs) >= {"map", "optical", "control_points"}
-    for name in ("tablet_map_kmeans_labels_on_optical.png",
+    for name in ("tablet_map_classes_labels_on_optical.png",
                  "tablet_map_nmf_component_1_on_optical.png",
                  "tablet_map_unmixing_acetaminophen_on_optical.png",
                  "tablet_map_optical_side_by_side.png"):
@@ -66,7 +66,7 @@ def test_micrograph_subcommand_writes_a_new_file(analysed, sample_dir, tmp_path,
     with h5py.File(out) as f:
         assert f["/entry/optical_registration"].attrs["transform"] == "affine"
         assert f["/entry/optical/image"].shape == (270, 350, 3)      # full size this time
-        assert "/entry/results/kmeans/labels" in f                   # the results came along
+        assert "/entry/results/classes/labels" in f                   # the results came along
     # a second run refuses to replace the file without --overwrite, and writes nothing
     assert main(["micrograph", str(src), str(sample_dir / "tablet_micrograph.png"),
                  "--out", str(out), "--no-figures"]) == 2

@@ -64,8 +64,8 @@ def test_results_open_as_layers(make_napari_viewer, tmp_path):
     viewer = make_napari_viewer()
     viewer.open(str(tmp_path / "results.h5"), plugin="mapkit-napari")
     names = [layer.name for layer in viewer.layers]
-    assert "kmeans: classes" in names and "unmixing: acetaminophen" in names
-    labels = viewer.layers["kmeans: classes"]
+    assert "classes" in names and "unmixing: acetaminophen" in names
+    labels = viewer.layers["classes"]
     assert labels.data.max() == 4
     # quantity layers use the figures' perceptually uniform map (Nuñez, Anderton & Renslow
     # 2018, PLoS ONE 13:e0199239, "cividis"), as the docs say
@@ -263,7 +263,7 @@ def test_micrograph_layer_sits_in_map_coordinates(make_napari_viewer, optical_re
         np.testing.assert_allclose(world, (placed.pixel_to_map() @ [row, col, 1])[:2],
                                    atol=1e-9)
     # the maps above it are see-through
-    assert viewer.layers["kmeans: classes"].opacity < 1
+    assert viewer.layers["classes"].opacity < 1
     assert viewer.layers["nmf: component 1"].opacity < 1
 
 
@@ -278,8 +278,8 @@ def test_class_legend_matches_the_summary(make_napari_viewer, optical_results):
     viewer.open(str(optical_results / "results.h5"), plugin="mapkit-napari")
     spectra = SpectrumPanel(viewer)
     legend = ClassLegend(viewer, on_class=spectra.show_class_spectrum)
-    viewer.layers.selection.active = viewer.layers["kmeans: classes"]
-    summary = json.loads((optical_results / "summary.json").read_text())["results"]["kmeans"]
+    viewer.layers.selection.active = viewer.layers["classes"]
+    summary = json.loads((optical_results / "summary.json").read_text())["results"]["classes"]
     ident = {i["spectrum"]: i for i in summary["identification"]}
     assert legend.table.rowCount() == len(summary["areas"])
     for i, (name, area) in enumerate(summary["areas"].items()):
@@ -289,13 +289,13 @@ def test_class_legend_matches_the_summary(make_napari_viewer, optical_results):
                                                                        abs=0.05)
         assert float(legend.table.item(i, 3).text()) == pytest.approx(area["area_um2"], abs=0.5)
     # the fractions are those of the label image itself (count of pixels per class)
-    labels = viewer.layers["kmeans: classes"].data
+    labels = viewer.layers["classes"].data
     good = labels > 0
     for i, area in enumerate(summary["areas"].values()):
         assert area["fraction_pct"] == pytest.approx(100 * np.mean(labels[good] == i + 1))
     # clicking a row draws that class's mean ± sd from the results file
     row = legend.select(1)
-    stored = read_results(optical_results / "results.h5")["kmeans"]["fields"]["class_spectra"]
+    stored = read_results(optical_results / "results.h5")["classes"]["fields"]["class_spectra"]
     line = spectra.region_lines[0]
     np.testing.assert_allclose(line.get_ydata(), stored["data"][1])
     np.testing.assert_allclose(row["sd"], stored["errors"][1])
@@ -383,8 +383,8 @@ def test_screenshot_with_micrograph_and_legend(make_napari_viewer, optical_resul
     viewer.window.add_dock_widget(legend, area="right", name="Class legend")
     viewer.window._qt_window.resize(1500, 950)
     for layer in viewer.layers:
-        layer.visible = layer.name in ("micrograph", "kmeans: classes")
-    viewer.layers.selection.active = viewer.layers["kmeans: classes"]
+        layer.visible = layer.name in ("micrograph", "classes")
+    viewer.layers.selection.active = viewer.layers["classes"]
     legend.select(0)
     viewer.reset_view()
     qtbot.wait(300)

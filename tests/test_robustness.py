@@ -160,7 +160,7 @@ def test_every_output_records_versions(tmp_path):
     with h5py.File(tmp_path / "results.h5") as f:
         versions = json.loads(f["/entry/provenance"].attrs["versions"])
     assert all(versions.get(k) for k in needed)
-    with tifffile.TiffFile(tmp_path / "tablet_map_kmeans_labels.tif") as tif:
+    with tifffile.TiffFile(tmp_path / "tablet_map_classes_labels.tif") as tif:
         info = json.loads(tif.imagej_metadata["Info"])
     assert all(info["versions"].get(k) for k in needed)
     for name in ("summary.json", "quant_model.json"):

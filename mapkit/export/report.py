@@ -96,8 +96,9 @@ def write_report(path, *, map_name: str, summary: dict, results, model=None, rec
                          "image of where it sits; identification against the reference "
                          "library uses the hit-quality index (1 = same shape).</p>"
                          + table + f'<div class="figs">{"".join(figs)}</div>')
-        if "kmeans" in res:
-            r = res["kmeans"]
+        classes = res.get("classes") or res.get("kmeans")
+        if classes is not None:
+            r = classes
             names = {i["spectrum"]: i["match"] for i in r.summary.get("identification", [])}
             rows = [(k, names.get(k, ""), v["fraction_pct"], v["area_um2"], v.get("domains"),
                      v.get("ecd_median_um")) for k, v in r.summary["areas"].items()]
@@ -150,10 +151,11 @@ def _overview(map_name, summary, res):
     found = sorted({i["match"] for i in ident if i["match"] != "unmatched"})
     if found:
         lines.append("Its components were identified as " + ", ".join(found) + ".")
-    if "kmeans" in res:
-        names = {i["spectrum"]: i["match"] for i in res["kmeans"].summary.get("identification", [])}
+    classes = res.get("classes") or res.get("kmeans")
+    if classes is not None:
+        names = {i["spectrum"]: i["match"] for i in classes.summary.get("identification", [])}
         parts = [f"{names.get(k, k)} {v['fraction_pct']:.1f} %"
-                 for k, v in res["kmeans"].summary["areas"].items()]
+                 for k, v in classes.summary["areas"].items()]
         lines.append("Area fractions of the spectral classes: " + "; ".join(parts) + ".")
     if "concentration" in res:
         c = res["concentration"].summary

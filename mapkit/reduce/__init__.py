@@ -5,9 +5,9 @@ from .endmembers import vca
 from .factorise import MCRALS, NMFComponents, PCAScores
 from .match import correlation, hit_quality_index, match_library
 from .peakfit import fit_peaks, peak_fit_map, silicon_stress, stress_result
-from .segment import KMeansClasses, class_domains, class_number_guidance
+from .segment import DominantClasses, KMeansClasses, class_domains, class_number_guidance
 from .spectra import region_spectrum
-from .unmix import ReferenceUnmixing, nnls_batch, unmix_spectra
+from .unmix import ReferenceUnmixing, choose_baseline_order, nnls_batch, unmix_spectra
 
 __all__ = ["band_integral", "band_height", "band_centroid", "band_image", "band_ratio_image",
            "vca", "PCAScores", "NMFComponents", "MCRALS", "KMeansClasses", "class_domains",

@@ -47,3 +47,34 @@ def vca(X, n_endmembers: int, *, random_state: int = 0) -> np.ndarray:
         chosen.append(k)
         A[:, i] = Y[k]
     return np.array(chosen)
+
+
+def successive_projections(Y, n_endmembers: int) -> np.ndarray:
+    """Successive projection algorithm: the rows of ``Y`` that span its cone best.
+
+    Picks the row of largest norm, projects every row onto the orthogonal complement of
+    it, and repeats (Araújo et al. 2001, Chemom. Intell. Lab. Syst. 57:65; its robustness
+    to noise for separable non-negative factorisation: Gillis & Vavasis 2014, IEEE TPAMI
+    36:698). Unlike :func:`vca` it needs no positive data, so it works on spectra whose
+    background has been projected out. Returns the row indices.
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(0)
+    >>> E = rng.normal(size=(3, 40))
+    >>> F = rng.dirichlet(np.ones(3), 200); F[[5, 50, 150]] = np.eye(3)
+    >>> sorted(successive_projections(F @ E, 3).tolist())
+    [5, 50, 150]
+    """
+    R = np.array(Y, dtype=np.float64)
+    if not 1 <= n_endmembers <= min(R.shape):
+        raise MapkitError(f"cannot extract {n_endmembers} endmembers from {R.shape[0]} spectra "
+                          f"of {R.shape[1]} channels", field="n_components",
+                          fix=f"choose at most {min(R.shape)}")
+    chosen = []
+    for _ in range(n_endmembers):
+        j = int(np.argmax(np.einsum("ij,ij->i", R, R)))
+        chosen.append(j)
+        u = R[j] / (np.linalg.norm(R[j]) or 1.0)
+        R -= np.outer(R @ u, u)
+    return np.array(chosen)

@@ -53,7 +53,53 @@ def _cluster(S, n, method, random_state, n_init):
     return np.argmin(((S[:, None, :] - centres[None]) ** 2).sum(axis=-1), axis=1)
 
 
-class KMeansClasses(ClusterMixin, BaseEstimator):
+class _ClassMap(ClusterMixin, BaseEstimator):
+    """What every class map shares: labels, class spectra, areas, domains, the result."""
+
+    def _store(self, m: RamanMap, X, good, lab):
+        n = self.n_classes
+        self.labels_ = to_images(m, lab[:, None], good, fill=-1)[0].astype(np.int16)
+        # a class no pixel falls into keeps NaN spectra and a zero area (not an error)
+        self.class_mean_ = np.full((n, X.shape[1]), np.nan)
+        self.class_sd_ = np.full((n, X.shape[1]), np.nan)
+        for k in range(n):
+            if np.any(lab == k):
+                self.class_mean_[k] = X[lab == k].mean(axis=0)
+                self.class_sd_[k] = X[lab == k].std(axis=0)
+        self.area_fraction_ = np.bincount(lab, minlength=n)[:n] / lab.size
+        self.pixel_size_ = m.pixel_size
+        return self
+
+    def fit_predict(self, m: RamanMap, y=None):
+        return self.fit(m).labels_
+
+    def result(self, m: RamanMap, name: str | None = None) -> Result:
+        dy, dx = m.pixel_size
+        cls = Axis("class", np.array([f"class {k + 1}" for k in range(self.n_classes)]))
+        labels = Field("labels", self.labels_, image_axes(m), "",
+                       long_name="class index (0-based, -1 masked)")
+        spectra = Field("mean_spectrum", self.class_mean_, (cls, shift_axis(m)), "a.u.",
+                        errors=self.class_sd_, long_name="class mean spectrum (errors: sd)")
+        n_good = int((self.labels_ >= 0).sum())
+        domains = class_domains(self.labels_, (dy, dx), n_classes=self.n_classes)
+        areas = {f"class {k + 1}": {"fraction_pct": float(100 * f),
+                                    "area_um2": float(f * n_good * dx * dy),
+                                    **domains[k]["summary"]}
+                 for k, f in enumerate(self.area_fraction_)}
+        domain_img = np.full(self.labels_.shape, -1, np.int32)
+        offset = 0
+        for k in range(self.n_classes):
+            lab = domains[k]["labels"]
+            domain_img[lab > 0] = lab[lab > 0] - 1 + offset
+            offset += domains[k]["summary"]["domains"]
+        return Result(name or self.method, self.method, self.get_params(),
+                      {"labels": labels, "class_spectra": spectra,
+                       "domains": Field("domain", domain_img, image_axes(m), "",
+                                        long_name="connected domain index (-1 masked)")},
+                      {"areas": areas})
+
+
+class KMeansClasses(_ClassMap):
     """Spectral classes of the map, clustered on the leading PCA scores of its spectra.
 
     Parameters
@@ -105,44 +151,73 @@ class KMeansClasses(ClusterMixin, BaseEstimator):
         order = np.argsort(-np.bincount(raw, minlength=self.n_classes), kind="stable")
         relabel = np.empty_like(order)
         relabel[order] = np.arange(self.n_classes)
-        lab = relabel[raw]
-        self.labels_ = to_images(m, lab[:, None], good, fill=-1)[0].astype(np.int16)
-        self.class_mean_ = np.stack([X[lab == k].mean(axis=0) for k in range(self.n_classes)])
-        self.class_sd_ = np.stack([X[lab == k].std(axis=0) for k in range(self.n_classes)])
-        self.area_fraction_ = np.bincount(lab, minlength=self.n_classes) / lab.size
-        self.pixel_size_ = m.pixel_size
-        return self
-
-    def fit_predict(self, m: RamanMap, y=None):
-        return self.fit(m).labels_
-
-    def result(self, m: RamanMap, name: str = "kmeans") -> Result:
-        dy, dx = m.pixel_size
-        cls = Axis("class", np.array([f"class {k + 1}" for k in range(self.n_classes)]))
-        labels = Field("labels", self.labels_, image_axes(m), "",
-                       long_name="class index (0-based, -1 masked)")
-        spectra = Field("mean_spectrum", self.class_mean_, (cls, shift_axis(m)), "a.u.",
-                        errors=self.class_sd_, long_name="class mean spectrum (errors: sd)")
-        n_good = int((self.labels_ >= 0).sum())
-        domains = class_domains(self.labels_, (dy, dx))
-        areas = {f"class {k + 1}": {"fraction_pct": float(100 * f),
-                                    "area_um2": float(f * n_good * dx * dy),
-                                    **domains[k]["summary"]}
-                 for k, f in enumerate(self.area_fraction_)}
-        domain_img = np.full(self.labels_.shape, -1, np.int32)
-        offset = 0
-        for k in range(self.n_classes):
-            lab = domains[k]["labels"]
-            domain_img[lab > 0] = lab[lab > 0] - 1 + offset
-            offset += domains[k]["summary"]["domains"]
-        return Result(name, self.method, self.get_params(),
-                      {"labels": labels, "class_spectra": spectra,
-                       "domains": Field("domain", domain_img, image_axes(m), "",
-                                        long_name="connected domain index (-1 masked)")},
-                      {"areas": areas})
+        return self._store(m, X, good, relabel[raw])
 
 
-def class_domains(labels, pixel_size, *, connectivity: int = 1):
+class DominantClasses(_ClassMap):
+    """Classes that follow the dominant component: each pixel joins the component with
+    the largest abundance.
+
+    Component images from a factorisation (NMF, MCR-ALS) or from unmixing carry an
+    arbitrary scale per component, so each image is first divided by its level in the
+    purest pixels (its ``purity_percentile`` over the map): abundances then read as shares
+    of the pure material, and the largest one names the pixel. At blurred grain boundaries
+    and in mixtures this follows composition, where clustering by spectral shape
+    (:class:`KMeansClasses`) splits on shape alone. It assumes that every component is
+    close to pure somewhere on the map (grains, domains, particles); for a map of
+    continuous mixtures without pure pixels the shares are relative, not absolute.
+
+    Parameters
+    ----------
+    n_classes : int
+        Number of component images (one class per component).
+    purity_percentile : float
+        Percentile of each image taken as its pure level.
+
+    Attributes
+    ----------
+    labels_ : int array (ny, nx)
+        Class of each pixel (the index of its dominant component), -1 where masked.
+    class_mean_, class_sd_ : arrays (n_classes, n_shift)
+        Mean ± sd spectrum of each class (NaN for a class no pixel falls into).
+    area_fraction_ : array (n_classes,)
+    shares_ : array (n_classes, ny, nx)
+        The normalised abundances the classes were taken from.
+
+    Examples
+    --------
+    >>> a = np.zeros((2, 3, 4)); a[:, :2, 0] = 1; a[:, 2:, 1] = 3
+    >>> m = RamanMap(a, raman_shift=[1., 2., 3., 4.], x=np.arange(3.), y=np.arange(2.))
+    >>> images = np.stack([a[..., 0], a[..., 1] / 3])
+    >>> DominantClasses(n_classes=2).fit(m, images).labels_.tolist()
+    [[0, 0, 1], [0, 0, 1]]
+    """
+
+    method = "dominant"
+
+    def __init__(self, n_classes: int = 4, purity_percentile: float = 99.5):
+        self.n_classes = n_classes
+        self.purity_percentile = purity_percentile
+
+    def fit(self, m: RamanMap, images=None):
+        if images is None:
+            raise MapkitError("dominant-component classes need component images",
+                              field="images", fix="pass the images of a factorisation or "
+                                                  "unmixing of this map")
+        images = np.asarray(images, float)
+        if images.shape != (self.n_classes, *m.shape[:2]):
+            raise MapkitError(f"component images have shape {images.shape}, expected "
+                              f"{(self.n_classes, *m.shape[:2])}", field="images",
+                              fix="give one image per class on the map's grid")
+        X, good = good_spectra(m, what="classification")
+        A = np.nan_to_num(images.reshape(self.n_classes, -1)[:, good])
+        level = np.percentile(A, self.purity_percentile, axis=1)
+        shares = A / np.where(level > 0, level, 1.0)[:, None]
+        self.shares_ = to_images(m, shares.T, good)
+        return self._store(m, X, good, np.argmax(shares, axis=0))
+
+
+def class_domains(labels, pixel_size, *, connectivity: int = 1, n_classes: int | None = None):
     """Connected domains of each class and their sizes.
 
     Returns, for each class k, ``{"labels": int image (0 = not in a domain of k),
@@ -162,7 +237,8 @@ def class_domains(labels, pixel_size, *, connectivity: int = 1):
     dy, dx = pixel_size
     structure = generate_binary_structure(2, connectivity)
     out = []
-    n_classes = int(labels.max()) + 1 if labels.size else 0
+    if n_classes is None:
+        n_classes = int(labels.max()) + 1 if labels.size else 0
     for k in range(n_classes):
         lab, n = label(labels == k, structure=structure)
         counts = np.bincount(lab.ravel(), minlength=n + 1)[1:]

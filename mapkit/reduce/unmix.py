@@ -138,6 +138,50 @@ def unmix_spectra(R, X, shift, baseline_order: int | None = None, *, sum_to_one:
     return A, rms
 
 
+#: Largest polynomial baseline order the automatic choice considers.
+MAX_AUTO_ORDER = 16
+
+
+def choose_baseline_order(R, X, shift, *, max_order: int = MAX_AUTO_ORDER, sample: int = 1000,
+                          random_state: int = 0) -> int:
+    """Polynomial baseline order for unmixing, chosen by the data.
+
+    Each order 0..``max_order`` is fitted jointly with the references ``R`` (k, n) to a
+    random sample of at most ``sample`` spectra of ``X`` (m, n); the order with the lowest
+    Bayesian information criterion (Schwarz 1978, Ann. Stat. 6:461), summed over the
+    spectra, wins: BIC = n ln(RSS/n) + (k + order + 1) ln n per spectrum. Too few terms
+    leave fluorescence in the residual; too many start to absorb the wings of broad bands
+    and inflate the abundance variance, which the penalty weighs against.
+
+    Examples
+    --------
+    >>> s = np.linspace(0, 1, 300)
+    >>> R = np.exp(-0.5 * ((s - 0.5) / 0.01) ** 2)[None]
+    >>> rng = np.random.default_rng(0)
+    >>> bg = np.polynomial.legendre.legval(2 * s - 1, [5, 2, -3, 1])   # a cubic
+    >>> X = rng.uniform(1, 2, (50, 1)) * R + bg + rng.normal(0, 0.05, (50, 300))
+    >>> choose_baseline_order(R, X, s)
+    3
+    """
+    R = np.asarray(R, float)
+    X = np.asarray(X, float)
+    n = X.shape[1]
+    # keep at least four channels per fitted term
+    max_order = int(max(0, min(max_order, n // 4 - R.shape[0] - 1)))
+    rng = np.random.default_rng(random_state)
+    if X.shape[0] > sample:
+        X = X[np.sort(rng.choice(X.shape[0], sample, replace=False))]
+    best, best_bic = 0, np.inf
+    for order in range(max_order + 1):
+        _, rms = unmix_spectra(R, X, shift, order, tol=1e-6)
+        rss = np.maximum(rms ** 2 * n, 1e-300)
+        bic = float(np.sum(n * np.log(rss / n)) + X.shape[0] * (R.shape[0] + order + 1)
+                    * np.log(n))
+        if bic < best_bic:
+            best, best_bic = order, bic
+    return best
+
+
 def polynomial_basis(shift, order: int) -> np.ndarray:
     """Orthonormal basis (n, order+1) of polynomials on the shift axis (Legendre, QR'd)."""
     s = np.asarray(shift, float)
@@ -155,6 +199,9 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
     ``baseline_order``, so fluorescence is fitted jointly with the references
     instead of being subtracted first. The polynomial part is eliminated
     exactly by projecting data and references onto its orthogonal complement.
+    Fit it on spectra that still carry their background (despiked counts): a baseline
+    removed beforehand eats the wings of broad bands, and the joint fit then has nothing
+    left to correct (measured on the scene family: benchmarks/RESULTS.md).
 
     With ``method="fcls"`` the abundances are also forced to sum to one (fully
     constrained least squares, Heinz & Chang 2001); that only makes sense when spectra
@@ -163,12 +210,16 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
     Parameters
     ----------
     references : list of mapkit.read.Spectrum
-    baseline_order : int or None
-        Polynomial order of the baseline terms; None for none.
+    baseline_order : int, None or "auto"
+        Polynomial order of the baseline terms; None for none; "auto" (default) chooses
+        it on the fitted map by the information criterion of
+        :func:`choose_baseline_order`.
     method : {"nnls", "fcls"}
 
     Attributes
     ----------
+    baseline_order_ : int or None
+        The order used (the chosen one with "auto").
     names_ : list of str
     references_ : array (k, n_shift)
         References on the map's axis.
@@ -176,7 +227,8 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
         True when the references were interpolated onto the map's axis.
     """
 
-    def __init__(self, references=(), baseline_order: int | None = 5, method: str = "nnls"):
+    def __init__(self, references=(), baseline_order: int | str | None = "auto",
+                 method: str = "nnls"):
         self.references = references
         self.baseline_order = baseline_order
         self.method = method
@@ -193,7 +245,12 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
         if len(set(names)) != len(names):
             raise MapkitError("two references share a name", field="references",
                               fix="give every reference a unique name")
-        if len(refs) + (0 if self.baseline_order is None else self.baseline_order + 1) >= m.shape[2]:
+        order = self.baseline_order
+        if isinstance(order, str) and order != "auto":
+            raise MapkitError(f"baseline order {order!r} is not a whole number",
+                              field="baseline_order", fix="give an order such as 5, none or auto")
+        terms = 1 if order == "auto" else 0 if order is None else order + 1
+        if len(refs) + terms >= m.shape[2]:
             raise MapkitError(f"{len(refs)} references and the baseline terms need more channels "
                               f"than the map's {m.shape[2]}", file=m.source, field="references",
                               fix="use fewer references or a lower baseline order")
@@ -206,6 +263,10 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
         self.names_ = names
         self.references_ = R
         self.raman_shift_ = m.raman_shift.copy()
+        if order == "auto":
+            X, _ = good_spectra(m, what="unmixing")
+            order = choose_baseline_order(R, X, m.raman_shift)
+        self.baseline_order_ = order
         return self
 
     def transform(self, m: RamanMap):
@@ -214,7 +275,7 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
             raise MapkitError("the map's shift axis differs from the one the model was fitted on",
                               file=m.source, field="raman_shift", fix="fit on this map")
         X, good = good_spectra(m, what="unmixing")
-        A, rms = unmix_spectra(self.references_, X, m.raman_shift, self.baseline_order,
+        A, rms = unmix_spectra(self.references_, X, m.raman_shift, self.baseline_order_,
                                sum_to_one=self.method == "fcls")
         return to_images(m, A.T, good), to_images(m, rms[:, None], good)[0]
 
@@ -222,7 +283,8 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
         abundance, rms = self.transform(m)
         comp = Axis("component", np.array(self.names_))
         return Result(name, f"{self.method}_unmixing",
-                      {"references": self.names_, "baseline_order": self.baseline_order,
+                      {"references": self.names_, "baseline_order": self.baseline_order_,
+                       "baseline_order_requested": self.baseline_order,
                        "method": self.method, "resampled": self.resampled_},
                       {"abundance": Field("abundance", abundance, (comp, *image_axes(m)),
                                           "reference units",

@@ -59,7 +59,7 @@ def result_layers(results, common, *, visible: bool = False):
                 colours.update({k + 1: CLASS_COLOURS[k % len(CLASS_COLOURS)]
                                 for k in range(int(data.max()))})
                 meta["mapkit_classes"] = class_legend_data(r)
-                layers.append((data, {**kw, "name": f"{r.name}: classes", "opacity": 0.7,
+                layers.append((data, {**kw, "name": "classes" if r.name == "classes" else f"{r.name}: classes", "opacity": 0.7,
                                       "colormap": colours}, "labels"))
             else:
                 img = np.asarray(f.data, np.float32)
