@@ -235,7 +235,10 @@ def add_parsers(sub, add_read_options, band_type, positive_int):
     u = sub.add_parser("unmix", help="abundance maps against reference spectra (NNLS, FCLS)")
     _common(u)
     u.add_argument("--library", required=True, help="folder of reference spectra")
-    u.add_argument("--method", choices=("nnls", "fcls"), default="nnls")
+    u.add_argument("--method", choices=("nnls", "fcls"), default="nnls",
+                   help="nnls: non-negative abundances in reference units; fcls: shares that "
+                        "sum to 1 in every pixel, with a fitted per-pixel scale (so raw counts "
+                        "are fine; the scale is written as its own image)")
     u.add_argument("--baseline-order", type=int, default=5,
                    help="polynomial baseline terms fitted with the references (-1: none)")
     add_read_options(u)

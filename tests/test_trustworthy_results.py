@@ -1,0 +1,129 @@
+"""No silent wrong answers: FCLS on counts, collinear references, library matching with an
+offset, peak-fit masking, lack of fit of a calibration, class numbering in every output."""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pytest
+
+from mapkit import RamanMap
+from mapkit.read.reference import Spectrum
+
+
+def _bands(s, centres, width=8.0):
+    return np.stack([1.0 / (1 + ((s - c) / width) ** 2) for c in centres])
+
+
+def _counts_map(seed=0, ny=4, nx=5):
+    """Pixels of three invented materials in raw counts: a per-pixel total (focus, laser
+    power) of 2000-9000 counts, a sloping background and Poisson noise."""
+    rng = np.random.default_rng(seed)
+    s = np.linspace(200.0, 1800.0, 400)
+    R = _bands(s, (465.0, 1086.0, 820.0)) + 0.3 * _bands(s, (700.0, 1400.0, 960.0), 20.0)
+    shares = rng.dirichlet(np.ones(3), size=ny * nx)
+    total = rng.uniform(2000, 9000, ny * nx)
+    clean = (total[:, None] * shares) @ R + 300 + 0.1 * s
+    cube = rng.poisson(clean).astype(float).reshape(ny, nx, -1)
+    refs = [Spectrum(n, s, R[i]) for i, n in enumerate(("quartz", "calcite", "forsterite"))]
+    return RamanMap(cube, raman_shift=s, x=np.arange(nx) * 1.0, y=np.arange(ny) * 1.0), refs, \
+        shares, total
+
+
+# --- item 4: FCLS on raw counts
+def test_fcls_on_counts_matches_a_scaled_constrained_optimum():
+    from scipy.optimize import minimize
+
+    from mapkit.reduce import ReferenceUnmixing
+    from mapkit.reduce.unmix import polynomial_basis
+
+    m, refs, shares, total = _counts_map()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        un = ReferenceUnmixing(refs, baseline_order=1, method="fcls").fit(m)
+    res = un.result(m)
+    est = res.fields["abundance"].data.reshape(3, -1)
+    np.testing.assert_allclose(est.sum(axis=0), 1.0, atol=1e-9)
+    # independent optimum: scipy's SLSQP on y = s R^T a + c0 + c1 t, a >= 0, sum(a) = 1,
+    # s >= 0 (the fully constrained problem of Heinz & Chang 2001, IEEE TGRS 39:529, with a
+    # free scale and free linear baseline terms)
+    R = np.stack([r.intensity for r in refs])
+    Q = polynomial_basis(m.raman_shift, 1)
+    X = m.intensity.reshape(-1, m.shape[2])
+    for i in range(X.shape[0]):
+        y = X[i] / X[i].max()
+
+        def cost(v):
+            return np.sum((v[3] * (v[:3] @ R) + Q @ v[4:] - y) ** 2)
+
+        ref = minimize(cost, np.r_[np.ones(3) / 3, 1.0, 0.0, 0.0], method="SLSQP",
+                       bounds=[(0, None)] * 4 + [(None, None)] * 2,
+                       constraints={"type": "eq", "fun": lambda v: v[:3].sum() - 1},
+                       options={"ftol": 1e-14, "maxiter": 500})
+        assert ref.success
+        np.testing.assert_allclose(est[:, i], ref.x[:3], atol=2e-3)
+        scale = res.fields["scale"].data.ravel()[i]
+        assert scale == pytest.approx(ref.x[3] * X[i].max(), rel=2e-3)
+    # and the shares are the invented ones (the mean total of ~5000 counts keeps noise small)
+    rmse = np.sqrt(np.mean((est - shares.T) ** 2))
+    assert rmse < 0.02, rmse
+    assert np.corrcoef(res.fields["scale"].data.ravel(), total)[0, 1] > 0.99
+
+
+def test_fcls_command_says_what_it_reports(tmp_path, capsys):
+    from mapkit.cli import main
+    from mapkit.export import write_map
+
+    m, refs, _, _ = _counts_map(1)
+    write_map(tmp_path / "counts.h5", m)
+    lib = tmp_path / "lib"
+    lib.mkdir()
+    for r in refs:
+        np.savetxt(lib / f"{r.name}.txt", np.c_[r.raman_shift, r.intensity])
+    assert main(["unmix", str(tmp_path / "counts.h5"), "--library", str(lib), "--method", "fcls",
+                 "--recipe", "none", "--out", str(tmp_path / "o"), "--no-figures"]) == 0
+    out = capsys.readouterr().out
+    assert "notice" in out and "shares summing to 1" in out and "'scale'" in out
+
+
+# --- item 7: duplicate or collinear references
+def test_collinear_references_are_reported_with_their_correlation(tmp_path, capsys):
+    from mapkit.cli import main
+    from mapkit.export import write_map
+    from mapkit.reduce import ReferenceUnmixing
+
+    m, refs, _, _ = _counts_map(2)
+    s = m.raman_shift
+    # a copy of quartz at another scale on a sloping offset: the same spectrum to the fit,
+    # whose baseline terms absorb offset and slope
+    twin = Spectrum("quartz-2", s, 3 * refs[0].intensity + 0.5 + 1e-4 * s)
+    with pytest.warns(UserWarning, match=r"'quartz' and 'quartz-2' are nearly collinear "
+                                         r"\(r = 1\.0000"):
+        un = ReferenceUnmixing([*refs, twin], baseline_order=2).fit(m)
+    assert [(a, b) for a, b, _ in un.collinear_] == [("quartz", "quartz-2")]
+    # the threshold is |r| > 0.98 (common practice); the reference value is numpy's Pearson
+    # r of the residuals after numpy.polyfit removes a quadratic from each spectrum
+    def detrend(v):
+        return v - np.polyval(np.polyfit(s, v, 2), s)
+
+    r = np.corrcoef(detrend(refs[0].intensity), detrend(twin.intensity))[0, 1]
+    assert un.collinear_[0][2] == pytest.approx(r, abs=1e-6)
+    # quartz with 15 % of the calcite spectrum mixed in is still above the threshold
+    near = Spectrum("quartz-ish", s, refs[0].intensity + 0.15 * refs[1].intensity)
+    with pytest.warns(UserWarning, match=r"'quartz' and 'quartz-ish'") as rec:
+        ReferenceUnmixing([refs[0], near, refs[2]], baseline_order=2).fit(m)
+    r2 = np.corrcoef(detrend(refs[0].intensity), detrend(near.intensity))[0, 1]
+    assert f"r = {r2:.4f}" in str(rec[0].message)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")   # distinct references: not a word
+        ReferenceUnmixing(refs, baseline_order=2).fit(m)
+    write_map(tmp_path / "m.h5", m)
+    lib = tmp_path / "lib"
+    lib.mkdir()
+    for r_ in (*refs, twin):
+        np.savetxt(lib / f"{r_.name}.txt", np.c_[r_.raman_shift, r_.intensity])
+    assert main(["unmix", str(tmp_path / "m.h5"), "--library", str(lib), "--recipe", "none",
+                 "--out", str(tmp_path / "o"), "--no-figures"]) == 0
+    out = capsys.readouterr().out
+    assert "notice    references 'quartz-2' and 'quartz' are nearly collinear (r = 1.0000" in out
