@@ -89,9 +89,10 @@ def _write(a, m, results, lines):
 
 
 def _identified(res):
-    return [f"  {r['spectrum']}: {r['match']} (HQI {r['score']:.3f}"
-            + (f", best candidate {r['best_candidate']}" if r["match"] == "unmatched" else "")
-            + ")" for r in res.summary.get("identification", [])]
+    from .reduce.match import describe_match
+
+    return [f"  {r['spectrum']}: {describe_match(r)}"
+            for r in res.summary.get("identification", [])]
 
 
 def cmd_components(a):
@@ -213,7 +214,8 @@ def add_parsers(sub, add_read_options, band_type, positive_int):
     c.add_argument("--closure", action="store_true", help="MCR: concentrations sum to one")
     c.add_argument("--library", help="folder of reference spectra to identify components")
     c.add_argument("--min-score", type=float, default=0.9,
-                   help="lowest hit-quality index that counts as a match (default 0.9)")
+                   help="lowest hit-quality index (0-1, after removing offset and slope on "
+                        "both sides) that counts as a match (default 0.9)")
     add_read_options(c)
     c.set_defaults(func=cmd_components)
 
@@ -228,7 +230,8 @@ def add_parsers(sub, add_read_options, band_type, positive_int):
     k.add_argument("--guide", type=_range_int, metavar="KMIN-KMAX",
                    help="print silhouette, Davies-Bouldin and inertia for each k in the range")
     k.add_argument("--library", help="folder of reference spectra to identify the classes")
-    k.add_argument("--min-score", type=float, default=0.9)
+    k.add_argument("--min-score", type=float, default=0.9,
+                   help="lowest hit-quality index (0-1) that names a class (default 0.9)")
     add_read_options(k)
     k.set_defaults(func=cmd_classes)
 

@@ -34,6 +34,7 @@ class Settings:
     response_band: tuple | None = None
     internal_standard: tuple | None = None
     memory_fraction: float = 0.5
+    min_score: float = 0.9
 
 
 def _memory_available() -> int:
@@ -151,12 +152,14 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     bar.update()
     # the same calls as the reduction subcommands and the viewer make (one place for each)
     stage("NMF")
-    nmf_result, = run_method(corrected, "nmf", n=s.n_components, seed=s.seed, library=refs)
+    nmf_result, = run_method(corrected, "nmf", n=s.n_components, seed=s.seed, library=refs,
+                             min_score=s.min_score)
     results.append(nmf_result)
     bar.update()
     stage("k-means")
     km_result, = run_method(corrected, "kmeans", n=s.n_classes, seed=s.seed, library=refs,
-                            normalisation=s.normalisation, name="kmeans")
+                            normalisation=s.normalisation, name="kmeans",
+                            min_score=s.min_score)
     results.append(km_result)
     bar.update()
     stage("unmixing")

@@ -127,3 +127,57 @@ def test_collinear_references_are_reported_with_their_correlation(tmp_path, caps
                  "--out", str(tmp_path / "o"), "--no-figures"]) == 0
     out = capsys.readouterr().out
     assert "notice    references 'quartz-2' and 'quartz' are nearly collinear (r = 1.0000" in out
+
+
+# --- item 6: library matching compares like with like
+def test_matching_ignores_an_offset_on_the_component():
+    from mapkit.reduce import match_library
+
+    s = np.linspace(100.0, 1800.0, 820)
+    R = _bands(s, (465.0, 1086.0, 820.0), 3.0) + 0.2 * _bands(s, (206.0, 712.0, 1160.0), 3.0)
+    lib = [Spectrum(n, s, R[i]) for i, n in enumerate(("quartz", "calcite", "forsterite"))]
+    rng = np.random.default_rng(0)
+    # NMF components sit on a floor of ~2 % of their maximum, with a little noise
+    comps = R[:2] + 0.02 * R[:2].max(axis=1, keepdims=True) + rng.normal(0, 2e-3, (2, s.size))
+    raw = match_library(comps, s, lib, baseline_order=None)
+    assert all(r["match"] == "unmatched" for r in raw), raw   # what the raw HQI did (< 0.9)
+    res = match_library(comps, s, lib, names=["c1", "c2"])
+    assert [r["match"] for r in res] == ["quartz", "calcite"]
+    # reference value: the squared Pearson r of the residuals after numpy.polyfit removes a
+    # straight line from both sides (HQI as squared cosine, common practice)
+    def detrend(v):
+        return v - np.polyval(np.polyfit(s, v, 1), s)
+
+    for r, c, ref in zip(res, comps, R[:2]):
+        assert r["score"] == pytest.approx(np.corrcoef(detrend(c), detrend(ref))[0, 1] ** 2,
+                                           abs=1e-9)
+        assert r["score"] > 0.99
+    # an inverted spectrum correlates at r = -1 after the trend removal: not a match
+    inverted = match_library(-R[:1] + 1.0, s, lib)[0]
+    assert inverted["match"] == "unmatched" and inverted["score"] < 0.01
+
+
+def test_unmatched_components_name_the_best_candidate(tmp_path, capsys, sample_map_path,
+                                                      sample_dir):
+    from mapkit.cli import main
+
+    assert main(["components", str(sample_map_path), "--library", str(sample_dir / "library"),
+                 "--min-score", "0.99999", "--out", str(tmp_path), "--no-figures"]) == 0
+    out = capsys.readouterr().out
+    assert "unmatched (best candidate " in out and "of 1, below the minimum score 0.99999)" in out
+
+
+def test_analyse_takes_min_score_and_reports_the_best_candidate(tmp_path, capsys,
+                                                               sample_map_path, sample_dir):
+    from mapkit.cli import main
+
+    assert main(["analyse", str(sample_map_path), "--library", str(sample_dir / "library"),
+                 "--min-score", "0.99999", "--out", str(tmp_path), "--quiet"]) == 0
+    out = capsys.readouterr().out
+    line = next(ln for ln in out.splitlines() if ln.startswith("components"))
+    assert line.count("unmatched (best candidate") == 4, line
+    html = (tmp_path / "report.html").read_text()
+    assert "best candidate acetaminophen" in html and "HQI (0-1)" in html
+    with pytest.raises(SystemExit) as e:
+        main(["analyse", str(sample_map_path), "--min-score", "1.5", "--out", str(tmp_path)])
+    assert e.value.code == 2

@@ -85,13 +85,12 @@ def write_report(path, *, map_name: str, summary: dict, results, model=None, rec
             figs += [_img(fig(save_image_figure, imgs, k, title=str(lbl)))
                      for k, lbl in enumerate(imgs.axes[0].values)]
             ident = r.summary.get("identification", [])
-            table = _table([(i["spectrum"], i["match"], i["score"], i.get("runner_up", ""))
-                            for i in ident], ["component", "identified as", "HQI",
-                                              "runner-up"]) if ident else ""
             parts.append("<h2>Components (NMF)</h2><p>Each component is a spectrum and an "
                          "image of where it sits; identification against the reference "
-                         "library uses the hit-quality index (1 = same shape).</p>"
-                         + table + f'<div class="figs">{"".join(figs)}</div>')
+                         "library uses the hit-quality index on a 0-1 scale (1 = same shape), "
+                         "after removing offset and slope from both sides.</p>"
+                         + _identification_table(ident, "component")
+                         + f'<div class="figs">{"".join(figs)}</div>')
         if "kmeans" in res:
             r = res["kmeans"]
             names = {i["spectrum"]: i["match"] for i in r.summary.get("identification", [])}
@@ -99,7 +98,9 @@ def write_report(path, *, map_name: str, summary: dict, results, model=None, rec
                      v.get("ecd_median_um")) for k, v in r.summary["areas"].items()]
             parts.append("<h2>Spectral classes (k-means)</h2>" + _table(
                 rows, ["class", "identified as", "area %", "area (µm²)", "domains",
-                       "median ECD (µm)"]) + '<div class="figs">'
+                       "median ECD (µm)"])
+                + _identification_table(r.summary.get("identification", []), "class")
+                + '<div class="figs">'
                 + _img(fig(save_image_figure, r.fields["labels"], title="classes",
                            classes=True))
                 + _img(fig(save_spectra_figure, r.fields["class_spectra"],
@@ -128,6 +129,19 @@ def write_report(path, *, map_name: str, summary: dict, results, model=None, rec
     with atomic_path(path, overwrite=overwrite) as tmp_path:
         tmp_path.write_text(doc, encoding="utf-8")
     return Path(path)
+
+
+def _identification_table(ident, what):
+    """Library matches with their score (0-1); unmatched rows name the best candidate."""
+    if not ident:
+        return ""
+    rows = []
+    for i in ident:
+        other = (f"best candidate {i['best_candidate']}" if i["match"] == "unmatched"
+                 else f"runner-up {i['runner_up']} ({i['runner_up_score']:.3f})"
+                 if "runner_up" in i else "")
+        rows.append((i["spectrum"], i["match"], i["score"], other))
+    return _table(rows, [what, "identified as", "HQI (0-1)", "next best"])
 
 
 def _short(params, limit=160):
