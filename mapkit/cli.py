@@ -179,6 +179,10 @@ def _run_analysis(a, map_path, library, standards, bands):
         fit = f"r = {cal['r']:.4f}" if "r" in cal else f"R² = {cal['r2']:.4f}"
         print(f"calibration {cal['analyte']} ({cal['model']}): {fit}, LOD {cal['lod']:.2f} "
               f"{cal['unit']}, LOQ {cal['loq']:.2f} {cal['unit']}")
+        if cal["model"] != "pls":
+            from .quantify.calibration import describe_lack_of_fit
+
+            print(f"          {describe_lack_of_fit(cal.get('lack_of_fit'))}")
         print(f"content   mean {conc['mean']:.2f} {conc['unit']}, median "
               f"{conc['percentiles'][50]:.2f}; {conc['below_loq']} of {conc['pixels']} pixels "
               f"below LOQ, {conc['outside_range']} outside the calibrated range")

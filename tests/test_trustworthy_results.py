@@ -181,3 +181,66 @@ def test_analyse_takes_min_score_and_reports_the_best_candidate(tmp_path, capsys
     with pytest.raises(SystemExit) as e:
         main(["analyse", str(sample_map_path), "--min-score", "1.5", "--out", str(tmp_path)])
     assert e.value.code == 2
+
+
+# --- item 8: lack of fit of a calibration with replicate standards
+def _nested_anova_F(x, y, degree):
+    """Lack-of-fit F as a nested-model comparison, computed here independently: the
+    polynomial against the saturated one-mean-per-level model (Draper & Smith 1998,
+    Applied Regression Analysis, 3rd ed., section 2.1), both by numpy.linalg.lstsq."""
+    from scipy import stats
+
+    levels = np.unique(x)
+    poly = np.vander(x, degree + 1)
+    cells = (x[:, None] == levels[None, :]).astype(float)
+    rss = [np.sum((y - D @ np.linalg.lstsq(D, y, rcond=None)[0]) ** 2) for D in (poly, cells)]
+    df_red, df_full = x.size - (degree + 1), x.size - levels.size
+    F = ((rss[0] - rss[1]) / (df_red - df_full)) / (rss[1] / df_full)
+    return F, stats.f.sf(F, df_red - df_full, df_full)
+
+
+def test_lack_of_fit_matches_a_nested_anova_and_suggests_the_quadratic():
+    from mapkit.quantify import PolynomialCalibration
+
+    rng = np.random.default_rng(3)
+    x = np.repeat([0.0, 5, 10, 20, 30, 40, 50], 3)
+    curved = 2.0 * x - 0.012 * x ** 2 + rng.normal(0, 0.6, x.size)   # saturating response
+    lin = PolynomialCalibration(1).fit(x, curved)
+    F, p = _nested_anova_F(x, curved, 1)
+    lof = lin.lack_of_fit_
+    assert (lof["df_lof"], lof["df_pe"]) == (5, 14)
+    assert lof["F"] == pytest.approx(F, rel=1e-9) and lof["p"] == pytest.approx(p, rel=1e-9)
+    assert lof["p"] < 0.05 and "quadratic" in lof["suggestion"]
+    quad = PolynomialCalibration(2).fit(x, curved)
+    F2, p2 = _nested_anova_F(x, curved, 2)
+    assert quad.lack_of_fit_["F"] == pytest.approx(F2, rel=1e-9)
+    assert quad.lack_of_fit_["p"] > 0.05 and quad.lack_of_fit_["suggestion"] is None
+    # no replicates: no pure error, no test
+    assert PolynomialCalibration(1).fit(np.unique(x), np.unique(x) * 2.0 + 1 +
+                                        rng.normal(0, 0.1, 7)).lack_of_fit_ is None
+
+
+def test_lack_of_fit_rejects_a_true_line_at_its_nominal_rate():
+    # under a straight line with normal errors the test rejects in 5 % of cases (the F
+    # distribution, scipy.stats.f); 600 seeds give a binomial sd of 0.9 %
+    from mapkit.quantify import PolynomialCalibration
+
+    x = np.repeat([0.0, 5, 10, 20, 30, 40, 50], 3)
+    rejected = 0
+    for seed in range(600):
+        y = 1.0 + 2.0 * x + np.random.default_rng(seed).normal(0, 1.0, x.size)
+        rejected += PolynomialCalibration(1).fit(x, y).lack_of_fit_["p"] < 0.05
+    assert 0.03 <= rejected / 600 <= 0.075, rejected
+
+
+def test_calibrate_prints_the_lack_of_fit(tmp_path, capsys, sample_dir):
+    from mapkit.cli import main
+
+    std = str(sample_dir / "calibration_standards.csv")
+    lib = str(sample_dir / "library")
+    assert main(["calibrate", std, "--library", lib, "--out", str(tmp_path / "lin")]) == 0
+    out = capsys.readouterr().out
+    assert "lack of fit F(5, 14) = " in out and "try the quadratic model" in out, out
+    assert main(["calibrate", std, "--library", lib, "--model", "quadratic",
+                 "--out", str(tmp_path / "quad")]) == 0
+    assert "lack of fit F(4, 14) = " in capsys.readouterr().out

@@ -201,6 +201,9 @@ def _calibration(model, fig):
     else:
         rows += [("coefficients b0, b1(, b2)", ", ".join(f"{c:.5g}" for c in s["coefficients"])),
                  ("r" if s["model"] == "linear" else "R", s["r"]), ("s_y/x", s["s_yx"])]
+        from ..quantify.calibration import describe_lack_of_fit
+
+        rows.append(("lack-of-fit F-test", describe_lack_of_fit(s.get("lack_of_fit"))))
     rows += [("LOD (ICH Q2(R2), 3.3σ/S)", f"{s['lod']:.3g} {s['unit']}"),
              ("LOQ (ICH Q2(R2), 10σ/S)", f"{s['loq']:.3g} {s['unit']}")]
     return ("<h2>Calibration</h2>" + _table(rows, ["quantity", "value"])
