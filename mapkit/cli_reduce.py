@@ -158,13 +158,18 @@ def cmd_peaks(a):
     m, _ = _prepare(a, minimal=True, lazy_ok=True)
     lo, hi = a.range
     res = peak_fit_map(m, lo, hi, shape=a.shape, n_peaks=a.peaks, centres=a.centres,
-                       weights=a.weights)
+                       weights=a.weights, min_significance=a.min_significance)
     results = [res]
     c = res.fields["centre" if a.peaks == 1 else "centre_1"]
-    lines = [f"{a.shape} fit in {lo:g}-{hi:g} 1/cm: {res.summary['pixels']} pixels, "
-             f"{res.summary['not_converged']} not converged",
-             f"centre median {np.nanmedian(c.data):.3f} 1/cm, median standard error "
-             f"{np.nanmedian(c.errors):.3f} 1/cm"]
+    s = res.summary
+    lines = [f"{a.shape} fit in {lo:g}-{hi:g} 1/cm: {s['pixels']} pixels, "
+             f"{s['not_converged']} not converged",
+             f"reported  {s['reported']} pixels; masked {s['pixels'] - s['reported']} (band "
+             f"under {a.min_significance:g} standard errors: {s['no_band']}, centre outside "
+             f"the window: {s['left_window']})"]
+    if s["reported"]:
+        lines.append(f"centre median {np.nanmedian(c.data):.3f} 1/cm, median standard error "
+                     f"{np.nanmedian(c.errors):.3f} 1/cm (over the reported pixels)")
     if a.stress:
         if a.peaks != 1:
             raise MapkitError("a stress map needs a single-peak fit", field="--stress",
@@ -258,6 +263,10 @@ def add_parsers(sub, add_read_options, band_type, positive_int):
     pk.add_argument("--peaks", type=positive_int, default=1)
     pk.add_argument("--centres", type=float, nargs="+", help="starting centres, one per peak")
     pk.add_argument("--weights", choices=("auto", "poisson", "uniform"), default="auto")
+    pk.add_argument("--min-significance", type=float, default=3.0, metavar="Z",
+                    help="report a pixel only where every peak's height exceeds Z standard "
+                         "errors and its centre stays in the window (default 3); the others "
+                         "are blank in the maps and counted")
     pk.add_argument("--stress", choices=("uniaxial", "biaxial"),
                     help="also write a silicon stress map from the band centre")
     pk.add_argument("--reference", type=float, default=520.7,

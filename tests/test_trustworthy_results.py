@@ -244,3 +244,158 @@ def test_calibrate_prints_the_lack_of_fit(tmp_path, capsys, sample_dir):
     assert main(["calibrate", std, "--library", lib, "--model", "quadratic",
                  "--out", str(tmp_path / "quad")]) == 0
     assert "lack of fit F(4, 14) = " in capsys.readouterr().out
+
+
+# --- item 5: peak-fit maps over pixels without the band
+def _partly_banded_map(seed=0):
+    """Silicon-like band in the five left columns (centre 520.0 + 0.4 cm-1 per column, a
+    1.6 cm-1 gradient), a flat background of 100 counts alone in the seven right ones."""
+    rng = np.random.default_rng(seed)
+    s = np.arange(480.0, 561.0, 1.0)
+    yy, xx = np.mgrid[:8, :12]
+    centre = 520.0 + 0.4 * xx
+    height = np.where(xx < 5, 500.0, 0.0)
+    mu = 100 + height[..., None] / (1 + (2 * (s - centre[..., None]) / 6.0) ** 2)
+    cube = rng.poisson(mu).astype(float)
+    return RamanMap(cube, raman_shift=s, x=xx[0] * 1.0, y=yy[:, 0] * 1.0), xx < 5
+
+
+def _cramer_rao_centre_sd(s, h=500.0, w=6.0, bg=100.0, c=520.8):
+    """sqrt of the Cramér–Rao bound of a Lorentzian centre for Poisson counts (Kay 1993,
+    Fundamentals of Statistical Signal Processing, vol. 1, ch. 3): the Fisher information
+    sum_i (d mu_i/d theta)(d mu_i/d theta)^T / mu_i, by finite differences here."""
+    def mu(t):
+        return t[3] + t[4] * (s - s.mean()) + t[0] / (1 + (2 * (s - t[1]) / t[2]) ** 2)
+
+    t0 = np.array([h, c, w, bg, 0.0])
+    J = np.stack([(mu(t0 + e) - mu(t0 - e)) / 2e-5 for e in np.eye(5) * 1e-5], axis=1)
+    return float(np.sqrt(np.linalg.inv(J.T @ (J / mu(t0)[:, None]))[1, 1]))
+
+
+def test_peak_maps_mask_pixels_without_the_band(tmp_path, capsys):
+    from mapkit.cli import main
+    from mapkit.export import write_map
+    from mapkit.reduce import peak_fit_map
+    from mapkit.reduce.peakfit import NO_BAND
+
+    m, band = _partly_banded_map()
+    r = peak_fit_map(m, 500, 540)
+    centre, rejected = r.fields["centre"], r.fields["rejected"].data
+    assert (rejected[band] == 0).all()                       # every real band is kept
+    assert (rejected[~band] > 0).mean() >= 0.9                # pixels of noise are not
+    assert np.isnan(centre.data[rejected > 0]).all() and np.isnan(centre.errors[rejected > 0]).all()
+    assert ((rejected[~band] & NO_BAND) > 0).mean() >= 0.9
+    assert r.summary["reported"] == int((rejected == 0).sum())
+    # the gradient survives: 0.4 cm-1 per column over the reported pixels
+    xx = np.broadcast_to(m.x, band.shape)
+    keep = rejected == 0
+    assert np.polyfit(xx[keep], centre.data[keep], 1)[0] == pytest.approx(0.4, abs=0.05)
+    write_map(tmp_path / "wafer.h5", m)
+    assert main(["peaks", str(tmp_path / "wafer.h5"), "--range", "500-540", "--out",
+                 str(tmp_path / "o"), "--no-figures"]) == 0
+    out = capsys.readouterr().out
+    line = next(ln for ln in out.splitlines() if "median standard error" in ln)
+    se = float(line.split("median standard error")[1].split()[0])
+    # over the band pixels only: the physical limit of the centre's precision
+    bound = _cramer_rao_centre_sd(np.arange(500.0, 541.0))
+    assert se == pytest.approx(bound, rel=0.15), (se, bound)
+    assert "band under 3 standard errors" in out
+
+
+def _capture_figures(monkeypatch):
+    import mapkit.export.figures as figures
+
+    made = []
+    original = figures._figure
+
+    def capture(**kw):
+        fig = original(**kw)
+        made.append(fig)
+        return fig
+
+    monkeypatch.setattr(figures, "_figure", capture)
+    return made
+
+
+def test_map_figures_use_robust_colour_limits(tmp_path, monkeypatch):
+    from mapkit.core.result import Axis, Field
+    from mapkit.export.figures import save_image_figure
+
+    made = _capture_figures(monkeypatch)
+    rng = np.random.default_rng(1)
+    img = 520.0 + np.tile(np.linspace(0, 2, 20), (16, 1)) + rng.normal(0, 0.05, (16, 20))
+    img[3, 4], img[9, 11] = 418.0, 612.0                       # two fits that ran off
+    f = Field("centre", img, (Axis("y", np.arange(16.0), "um"), Axis("x", np.arange(20.0), "um")),
+              "1/cm")
+    save_image_figure(tmp_path / "c.png", f)
+    lo, hi = made[-1].axes[0].images[0].get_clim()
+    # the 2nd and 98th percentiles (numpy.percentile as the reference): the 2 cm-1 gradient
+    # spans the colour scale instead of a sliver of it
+    assert (lo, hi) == pytest.approx(tuple(np.percentile(img, [2, 98])))
+    assert 519.9 < lo < 520.2 and 521.8 < hi < 522.1
+
+
+# --- friction: bit fields with a categorical legend, classes numbered from 1 with names
+def test_flags_figure_has_a_categorical_legend(tmp_path, monkeypatch):
+    from mapkit.core.result import Axis, Field, Result
+    from mapkit.export.bundle import write_bundle
+    from mapkit.quantify.concentration import FLAG_MEANING
+
+    made = _capture_figures(monkeypatch)
+    axes = (Axis("y", np.arange(4.0), "um"), Axis("x", np.arange(5.0), "um"))
+    flags = np.zeros((4, 5), np.uint8)
+    flags[0, :2], flags[1, 0], flags[3, 4] = 3, 7, 8
+    conc = Result("concentration", "calibration", {}, {
+        "concentration": Field("concentration", np.ones((4, 5)), axes, "% w/w"),
+        "flags": Field("flags", flags, axes, "", long_name=FLAG_MEANING)})
+    m = RamanMap(np.ones((4, 5, 6)), raman_shift=np.arange(6.0), x=np.arange(5.0),
+                 y=np.arange(4.0))
+    write_bundle(tmp_path, m, [conc], stem="t", write_h5=False, csv=False)
+    fig = next(f for f in made if f.axes[0].get_title() == "concentration: flags")
+    assert len(fig.axes) == 1                                   # no colourbar
+    texts = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
+    assert texts == ["none", "below LOD + below LOQ",
+                     "below LOD + below LOQ + outside the calibrated range",
+                     "masked or no response"]
+
+
+def test_classes_are_numbered_from_one_with_their_names_in_every_output(
+        tmp_path, monkeypatch, sample_map_path, sample_dir):
+    import csv
+    import json
+
+    import h5py
+    import tifffile
+
+    from mapkit.cli import main
+    from mapkit.read.nexus import read_result_objects
+
+    made = _capture_figures(monkeypatch)
+    assert main(["classes", str(sample_map_path), "--library", str(sample_dir / "library"),
+                 "--out", str(tmp_path)]) == 0
+    with h5py.File(tmp_path / "results.h5") as f:
+        d = f["/entry/results/classes/labels/labels"]
+        h5_labels, numbering = d[...], d.attrs["numbering"]
+        ident = json.loads(f["/entry/results/classes"].attrs["summary"])["identification"]
+    names = {i["spectrum"]: i["match"] for i in ident if i["match"] != "unmatched"}
+    assert len(names) == 4
+    masked = h5_labels == 0
+    assert "from 1" in numbering and h5_labels.max() == 4 and masked.any()
+    with tifffile.TiffFile(tmp_path / "tablet_map_classes_labels.tif") as tif:
+        tif_labels = tif.asarray()
+        info = json.loads(tif.imagej_metadata["Info"])
+    np.testing.assert_array_equal(tif_labels, h5_labels)
+    assert info["classes"]["1"] == f"class 1 ({names['class 1']})"
+    lines = (tmp_path / "tablet_map_maps.csv").read_text().splitlines()
+    assert any(ln.startswith("# classes.labels: 1 = class 1 (") for ln in lines)
+    rows = list(csv.reader(ln for ln in lines if not ln.startswith("#")))
+    col = next(i for i, h in enumerate(rows[0]) if h.startswith("classes.labels"))
+    csv_labels = np.array([int(r[col]) for r in rows[1:]]).reshape(h5_labels.shape)
+    np.testing.assert_array_equal(csv_labels, h5_labels)
+    # the class figure's legend: numbered from 1, with the library names
+    fig = next(f for f in made if f.axes[0].get_title() == "classes: classes")
+    texts = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
+    assert texts[0] == f"class 1: {names['class 1']}" and len(texts) == 4
+    # reading the file back gives the 0-based indices of the estimator again
+    back = next(r for r in read_result_objects(tmp_path / "results.h5") if r.name == "classes")
+    np.testing.assert_array_equal(back.fields["labels"].data, np.where(masked, -1, h5_labels - 1))

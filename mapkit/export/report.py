@@ -11,6 +11,7 @@ from pathlib import Path
 
 from ..core.provenance import library_versions
 from .atomic import atomic_path
+from .labels import class_names, display_label, identified_names
 from .figures import (save_calibration_figure, save_histogram_figure, save_image_figure,
                       save_spectra_figure)
 
@@ -80,9 +81,10 @@ def write_report(path, *, map_name: str, summary: dict, results, model=None, rec
         if "nmf" in res:
             r = res["nmf"]
             imgs = r.fields["images"]
-            figs = [_img(fig(save_spectra_figure, r.fields["spectra"], title="component spectra"),
-                         "wide")]
-            figs += [_img(fig(save_image_figure, imgs, k, title=str(lbl)))
+            named = identified_names(r)
+            figs = [_img(fig(save_spectra_figure, r.fields["spectra"], title="component spectra",
+                             names=named), "wide")]
+            figs += [_img(fig(save_image_figure, imgs, k, title=display_label(lbl, named)))
                      for k, lbl in enumerate(imgs.axes[0].values)]
             ident = r.summary.get("identification", [])
             parts.append("<h2>Components (NMF)</h2><p>Each component is a spectrum and an "
@@ -102,9 +104,10 @@ def write_report(path, *, map_name: str, summary: dict, results, model=None, rec
                 + _identification_table(r.summary.get("identification", []), "class")
                 + '<div class="figs">'
                 + _img(fig(save_image_figure, r.fields["labels"], title="classes",
-                           classes=True))
+                           classes=True, class_names=class_names(r, len(r.summary["areas"]))))
                 + _img(fig(save_spectra_figure, r.fields["class_spectra"],
-                           title="class mean ± sd"), "wide") + "</div>")
+                           title="class mean ± sd", names=identified_names(r)), "wide")
+                + "</div>")
         if "unmixing" in res:
             ab = res["unmixing"].fields["abundance"]
             figs = [_img(fig(save_image_figure, ab, k, title=str(lbl)))
