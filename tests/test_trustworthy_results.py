@@ -387,7 +387,8 @@ def test_classes_are_numbered_from_one_with_their_names_in_every_output(
     np.testing.assert_array_equal(tif_labels, h5_labels)
     assert info["classes"]["1"] == f"class 1 ({names['class 1']})"
     lines = (tmp_path / "tablet_map_maps.csv").read_text().splitlines()
-    assert any(ln.startswith("# classes.labels: 1 = class 1 (") for ln in lines)
+    assert lines[0].startswith("# mapkit long-form export")
+    assert f"; classes.labels: 1 = class 1 ({names['class 1']}), 2 = class 2 (" in lines[0]
     rows = list(csv.reader(ln for ln in lines if not ln.startswith("#")))
     col = next(i for i, h in enumerate(rows[0]) if h.startswith("classes.labels"))
     csv_labels = np.array([int(r[col]) for r in rows[1:]]).reshape(h5_labels.shape)

@@ -41,15 +41,15 @@ def image_columns(results):
 
 def write_long_csv(path, m, results, *, overwrite: bool = False):
     """Write x (µm), y (µm), mask and every image value per pixel; a comment line records
-    the library versions. Masked or undefined values are empty cells."""
+    the library versions and the class legends. Masked or undefined values are empty
+    cells."""
     cols = image_columns(results)
     yy, xx = np.meshgrid(m.y, m.x, indexing="ij")
     with atomic_path(path, overwrite=overwrite) as tmp:
         with open(tmp, "w", newline="") as fh:
             fh.write("# mapkit long-form export; versions: " + ", ".join(
-                f"{k} {v}" for k, v in library_versions().items()) + "\n")
-            for line in _class_legends(results):
-                fh.write(f"# {line}\n")
+                f"{k} {v}" for k, v in library_versions().items())
+                + "".join(f"; {line}" for line in _class_legends(results)) + "\n")
             w = csv.writer(fh)
             w.writerow(["x [um]", "y [um]", "masked"] + [c[0] for c in cols])
             flat = [c[1].ravel() for c in cols]
