@@ -147,7 +147,8 @@ def cmd_unmix(a):
     ab = res.fields["abundance"].data
     names = [str(v) for v in res.fields["abundance"].axes[0].values]
     lines = [f"notice    {w}" for w in res.summary.get("notices", [])]
-    lines += [f"{n}: mean abundance {np.nanmean(ab[i]):.3g}" for i, n in enumerate(names)]
+    what = " (share of the fitted total)" if a.method == "fcls" else ""
+    lines += [f"{n}: mean abundance {np.nanmean(ab[i]):.3g}{what}" for i, n in enumerate(names)]
     lines.append(f"residual RMS median {np.nanmedian(res.fields['residual'].data):.3g} counts")
     return _write(a, m, [res], lines)
 
