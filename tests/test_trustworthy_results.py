@@ -400,3 +400,24 @@ def test_classes_are_numbered_from_one_with_their_names_in_every_output(
     # reading the file back gives the 0-based indices of the estimator again
     back = next(r for r in read_result_objects(tmp_path / "results.h5") if r.name == "classes")
     np.testing.assert_array_equal(back.fields["labels"].data, np.where(masked, -1, h5_labels - 1))
+
+
+def test_analyse_reports_the_lack_of_fit_in_output_summary_and_report(tmp_path, capsys,
+                                                                      sample_map_path,
+                                                                      sample_dir):
+    import json
+
+    from mapkit.cli import main
+
+    assert main(["analyse", str(sample_map_path), "--library", str(sample_dir / "library"),
+                 "--standards", str(sample_dir / "calibration_standards.csv"),
+                 "--recipe", str(sample_dir / "tablet_recipe.toml"), "--out", str(tmp_path),
+                 "--quiet", "--no-figures"]) == 0
+    out = capsys.readouterr().out
+    assert "lack of fit F(5, 14) = " in out and "try the quadratic model" in out, out
+    summary = json.loads((tmp_path / "summary.json").read_text())
+    lof = summary["results"]["concentration"]["calibration"]["lack_of_fit"]
+    assert lof["p"] < 0.05 and lof["df_pe"] == 14
+    assert json.loads((tmp_path / "quant_model.json").read_text())["summary"]["lack_of_fit"] == lof
+    html = (tmp_path / "report.html").read_text()
+    assert "lack-of-fit F-test" in html and "try the quadratic model" in html
