@@ -126,9 +126,14 @@ def save_image_figure(path, field: Field, index: int | None = None, *, title: st
         cmap.set_bad("#bbbbbb")
         ax.imshow(index_img, extent=extent, cmap=cmap, interpolation="nearest",
                   norm=BoundaryNorm(np.arange(-0.5, len(values) + 0.5), len(values)))
-        ax.legend(handles=[Patch(facecolor=c, edgecolor="#555555", label=t)
-                           for c, t in zip(colours, labels)],
-                  loc="upper left", bbox_to_anchor=(1.02, 1.0), fontsize=7, frameon=False)
+        handles = [Patch(facecolor=c, edgecolor="#555555", label=t)
+                   for c, t in zip(colours, labels)]
+        if max(len(t) for t in labels) > 24:   # long texts below the map, not beside it
+            ax.legend(handles=handles, loc="upper center", bbox_to_anchor=(0.5, -0.2),
+                      fontsize=7, frameon=False, ncol=2)
+        else:
+            ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.02, 1.0),
+                      fontsize=7, frameon=False)
     else:
         lo, hi = robust_limits(img)
         finite = img[np.isfinite(img)]
