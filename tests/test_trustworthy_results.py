@@ -376,6 +376,7 @@ def test_classes_are_numbered_from_one_with_their_names_in_every_output(
     with h5py.File(tmp_path / "results.h5") as f:
         d = f["/entry/results/classes/labels/labels"]
         h5_labels, numbering = d[...], d.attrs["numbering"]
+        assert "0-based" not in d.attrs["long_name"]
         ident = json.loads(f["/entry/results/classes"].attrs["summary"])["identification"]
     names = {i["spectrum"]: i["match"] for i in ident if i["match"] != "unmatched"}
     assert len(names) == 4
@@ -386,6 +387,7 @@ def test_classes_are_numbered_from_one_with_their_names_in_every_output(
         info = json.loads(tif.imagej_metadata["Info"])
     np.testing.assert_array_equal(tif_labels, h5_labels)
     assert info["classes"]["1"] == f"class 1 ({names['class 1']})"
+    assert info["numbering"] == numbering and "0-based" not in info["long_name"]
     lines = (tmp_path / "tablet_map_maps.csv").read_text().splitlines()
     assert lines[0].startswith("# mapkit long-form export")
     assert f"; classes.labels: 1 = class 1 ({names['class 1']}), 2 = class 2 (" in lines[0]

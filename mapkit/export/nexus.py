@@ -127,7 +127,9 @@ def _write_result(f, result: Result):
         else:
             d = g.create_dataset(fld.signal, data=fld.data)
         d.attrs["units"] = fld.units
-        if fld.long_name:
+        if fld.signal == "labels":
+            d.attrs["long_name"] = CLASS_NUMBERING   # the Field's text describes 0-based indices
+        elif fld.long_name:
             d.attrs["long_name"] = fld.long_name
         if fld.errors is not None:
             e = g.create_dataset(f"{fld.signal}_errors", data=fld.errors)

@@ -44,7 +44,8 @@ def write_tiff(path, field: Field, *, overwrite: bool = False, parameters: dict 
         data = data.astype(np.int16)
     axes = "ZYX" if data.ndim == 3 else "YX"
     info = json.dumps({"signal": field.signal, "units": field.units,
-                       "long_name": field.long_name, "origin_um": [float(y[0]), float(x[0])],
+                       "long_name": CLASS_NUMBERING if field.signal == "labels" else field.long_name,
+                       "origin_um": [float(y[0]), float(x[0])],
                        "labels": [display_label(v, names) for v in field.axes[0].values]
                        if data.ndim == 3 else [], **extra,
                        "parameters": parameters or {}, "versions": library_versions()})
