@@ -57,15 +57,26 @@ def main(n=1024, lam=1e5, p=0.01):
     ours = als_baseline(spectra, lam=lam, p=p)
     ref = np.array([fitter.asls(s, lam=lam, p=p)[0] for s in spectra])
     rel = float(np.max(np.abs(ours - ref) / np.max(np.abs(ref), axis=1, keepdims=True)))
+    import numba
+
+    threads = numba.get_num_threads()
     t_ours = median_time(lambda: als_baseline(spectra, lam=lam, p=p))
+    numba.set_num_threads(1)           # the same kernel on one thread, like the loop
+    t_one = median_time(lambda: als_baseline(spectra, lam=lam, p=p))
+    numba.set_num_threads(threads)
     t_ref = median_time(lambda: [fitter.asls(s, lam=lam, p=p) for s in spectra], repeats=3)
     print(f"machine: {platform.machine()}, python {platform.python_version()}, "
-          f"numpy {np.__version__}")
+          f"numpy {np.__version__}, {threads} numba threads")
     print(f"\n1. ALS baseline, {len(spectra)} spectra x {spectra.shape[1]} channels, "
-          f"lam={lam:g}, p={p:g}")
-    print(f"   pybaselines asls loop : {t_ref:8.3f} s  {len(spectra) / t_ref:9.0f} spectra/s")
-    print(f"   mapkit compiled ALS   : {t_ours:8.3f} s  {len(spectra) / t_ours:9.0f} spectra/s")
-    print(f"   ratio {t_ref / t_ours:.1f}x, max relative difference {rel:.1e}")
+          f"lam={lam:g}, p={p:g} (medians: mapkit of 5 runs, pybaselines of 3)")
+    print(f"   pybaselines asls loop (1 thread) : {t_ref:8.3f} s  "
+          f"{len(spectra) / t_ref:9.0f} spectra/s")
+    print(f"   mapkit compiled ALS (1 thread)   : {t_one:8.3f} s  "
+          f"{len(spectra) / t_one:9.0f} spectra/s")
+    print(f"   mapkit compiled ALS ({threads} threads)  : {t_ours:8.3f} s  "
+          f"{len(spectra) / t_ours:9.0f} spectra/s")
+    print(f"   ratio 1 vs 1 thread {t_ref / t_one:.1f}x, {threads} threads vs 1 "
+          f"{t_ref / t_ours:.1f}x; max relative difference {rel:.1e}")
     print(f"\n2. steps on the sample map ({m.n_pixels} spectra x {m.shape[2]} channels)")
     for name, params in STEP_CASES:
         t = median_time(lambda: run_step(m, name, params), repeats=3)

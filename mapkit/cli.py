@@ -38,14 +38,25 @@ def _positive_int(text: str) -> int:
 def _add_read_options(p, laser: bool = True):
     g = p.add_argument_group("reading a cube from any HDF5 file")
     g.add_argument("--dataset", help="path of the intensity cube inside the HDF5 file")
-    g.add_argument("--axes", help="the cube's axis order, e.g. y,x,raman_shift")
+    g.add_argument("--axes", help="the dataset's axis order, e.g. y,x,raman_shift (a 2-D stack "
+                                  "of spectra: pixel,raman_shift); checked against the file's "
+                                  "dimension labels and the shift and position datasets, and "
+                                  "reported when nothing in the file can confirm it")
     g.add_argument("--shift-dataset", dest="shift_path",
-                   help="path of the Raman shift dataset (cm-1)")
-    g.add_argument("--x", dest="x_path", help="path of the x positions dataset (um)")
+                   help="path of the shift axis dataset; its units attribute is honoured "
+                        "(1/cm, cm-1, cm^-1: Raman shift; nm: wavelength, converted with "
+                        "--laser); other units are refused")
+    g.add_argument("--x", dest="x_path", help="path of the x positions dataset (um; one per "
+                                              "column, or one per spectrum of a 2-D stack)")
     g.add_argument("--y", dest="y_path", help="path of the y positions dataset (um)")
     g.add_argument("--pixel-size", type=float, help="step in um when no position datasets exist")
+    p.add_argument("--position-tolerance", type=float, metavar="UM",
+                   help="text tables and 2-D stacks: snap positions that jitter by up to UM "
+                        "around a grid onto it (reported); default: positions must repeat "
+                        "exactly")
     if laser:
-        p.add_argument("--laser", type=float, help="excitation wavelength in nm, if the file lacks it")
+        p.add_argument("--laser", type=float, help="excitation wavelength in nm, if the file lacks "
+                                                   "it (converts a wavelength axis to shift)")
 
 
 def _open_kwargs(a) -> dict:
@@ -54,7 +65,29 @@ def _open_kwargs(a) -> dict:
     # every command is a pass over whole maps: read them in blocks, not pixel tiles
     return {"dataset": a.dataset, "axes": a.axes, "shift": a.shift_path, "x": a.x_path,
             "y": a.y_path, "pixel_size": a.pixel_size, "laser_wavelength": a.laser,
-            "block_bytes": layout.READ_BYTES}
+            "position_tolerance": a.position_tolerance, "block_bytes": layout.READ_BYTES}
+
+
+def _print_notes(m, prefix="notice    ", file=None):
+    """Print what the reader converted, snapped or could not confirm."""
+    from .read.dispatch import read_notes
+
+    for note in read_notes(m):
+        print(f"{prefix}{note}", file=file or sys.stdout)
+
+
+def _check_outputs(out, overwrite, names=("results.h5",)):
+    """Refuse, before any work, an output folder that is a file or holds earlier outputs."""
+    out = Path(out)
+    if out.exists() and not out.is_dir():
+        raise MapkitError("the output path is a file, not a folder", file=out, field="--out",
+                          fix="give a folder for the outputs")
+    if overwrite:
+        return
+    for name in names:
+        if (out / name).exists():
+            raise MapkitError("the output file exists (from an earlier run)", file=out / name,
+                              field="--out", fix="choose another --out folder or pass --overwrite")
 
 
 def _add_analysis_options(p, default_out="mapkit-output"):
@@ -84,12 +117,7 @@ def _add_analysis_options(p, default_out="mapkit-output"):
     q.add_argument("--model-file", help="saved quantification model (from 'mapkit calibrate')")
     q.add_argument("--calibration-model", choices=("linear", "quadratic", "pls"),
                    default="linear", help="model fitted to --standards (default linear)")
-    q.add_argument("--weighting", choices=("none", "replicates"), default="none",
-                   help="least-squares weighting of the standards (default none)")
-    q.add_argument("--response-band", type=_range_arg, metavar="LO-HI",
-                   help="use a band area as response instead of the unmixing fraction")
-    q.add_argument("--internal-standard", type=_range_arg, metavar="LO-HI",
-                   help="divide the response band by this band's area")
+    add_response_options(q, _range_arg)
     q.add_argument("--region", action="append", metavar="NAME:X,Y;X,Y;X,Y",
                    help="polygon (um) for separate content statistics (repeatable)")
     p.add_argument("--overwrite", action="store_true", help="replace existing outputs")
@@ -97,6 +125,77 @@ def _add_analysis_options(p, default_out="mapkit-output"):
     p.add_argument("--figure-format", choices=("png", "svg", "both"), default="png",
                    help="figure files to write (default png)")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
+
+
+def _numbers(text: str, n_max: int = 2):
+    try:
+        vals = tuple(float(v) for v in text.replace(" ", "").split(","))
+    except ValueError:
+        vals = ()
+    if not 1 <= len(vals) <= n_max:
+        raise argparse.ArgumentTypeError(f"{text!r} is not one number or two as X,Y")
+    return vals
+
+
+def _xy(text: str):
+    vals = _numbers(text)
+    if len(vals) != 2:
+        raise argparse.ArgumentTypeError(f"{text!r} is not X,Y in um")
+    return vals
+
+
+def _add_optical_options(p, positional: bool = False):
+    g = p.add_argument_group("optical micrograph under the maps")
+    if positional:
+        g.add_argument("image", help="micrograph (PNG, JPEG or TIFF; grey or RGB)")
+    else:
+        g.add_argument("--optical", metavar="IMAGE",
+                       help="micrograph of the sample surface (PNG, JPEG or TIFF)")
+    g.add_argument("--optical-pixel-size", type=_numbers, metavar="UM[,UM_Y]",
+                   help="um per micrograph pixel (default: IMAGE.scale.json or TIFF tags)")
+    g.add_argument("--optical-origin", type=_xy, metavar="X,Y",
+                   help="stage position (um) of the micrograph's top-left corner (default 0,0)")
+    g.add_argument("--control-points", metavar="CSV",
+                   help="pairs to register the micrograph: map_x_um,map_y_um and "
+                        "image_x_um,image_y_um (or image_col,image_row)")
+    g.add_argument("--transform", choices=("similarity", "affine"), default="similarity",
+                   help="transform fitted to the control points (default similarity)")
+
+
+def _optical_request(a, image):
+    if image is None:
+        for opt in ("optical_pixel_size", "optical_origin", "control_points"):
+            if getattr(a, opt, None) is not None:
+                raise MapkitError("micrograph options without a micrograph",
+                                  field="--" + opt.replace("_", "-"), fix="add --optical IMAGE")
+        return None
+    ps = a.optical_pixel_size
+    return {"image": image, "pixel_size": None if ps is None else (ps if len(ps) == 2 else ps[0]),
+            "origin": a.optical_origin, "control_points": a.control_points,
+            "transform": a.transform}
+
+
+def _print_optical(info):
+    reg = info.get("registration")
+    dx, dy = info["pixel_size_um"]
+    print(f"optical   {info['source']} ({dx:g} x {dy:g} um per pixel, {info['scale_from']})")
+    if reg:
+        print(f"register  {reg['transform']} from {len(reg['residuals_um'])} pairs: RMS "
+              f"{reg['rms_um']:.3g} um; residuals " + ", ".join(f"{v:.3g}" for v in
+                                                                reg["residuals_um"]) + " um")
+
+
+def add_response_options(g, range_type):
+    """Options that define the calibration response (analyse and calibrate share them)."""
+    g.add_argument("--weighting", choices=("none", "replicates"), default="none",
+                   help="least-squares weights of the standards: none (default), or "
+                        "replicates (1/variance, a line fitted to the replicate variances "
+                        "at each level)")
+    g.add_argument("--response-band", type=range_type, metavar="LO-HI",
+                   help="response: the band area over LO-HI 1/cm above a straight line "
+                        "through its end points (default: the unmixing fraction)")
+    g.add_argument("--internal-standard", type=range_type, metavar="LO-HI",
+                   help="divide the response band by this band's area")
 
 
 def _range_arg(text):
@@ -132,6 +231,7 @@ def _run_analysis(a, map_path, library, standards, bands):
     from .pipeline import Settings, analyse
 
     recipe = _recipe(a)  # checked before any data is read
+    _check_outputs(a.out, a.overwrite)
 
     from .quantify import QuantModel
     from .quantify.regions import parse_region
@@ -143,15 +243,22 @@ def _run_analysis(a, map_path, library, standards, bands):
     if bands:
         s.bands = bands
     model = QuantModel.load(a.model_file) if a.model_file else None
+    if model is not None:
+        recipe = _model_recipe(a, model, recipe)
     regions = dict(parse_region(r) for r in a.region or [])
+    optical = _optical_request(a, getattr(a, "optical", None)) if hasattr(a, "transform") \
+        else None
     mode = _choose_mode(a, map_path)
+    if mode and optical is not None:
+        raise MapkitError("a micrograph is not drawn on the chunk-wise path yet",
+                          field="--optical", fix="add it afterwards with 'mapkit micrograph'")
     if mode:
         return _run_large(a, map_path, recipe, mode, library, standards, model)
     print("mode      in memory (the map fits comfortably)")
     out = analyse(map_path, a.out, library=library, standards=standards, settings=s,
                   overwrite=a.overwrite, progress=not a.quiet, figures=not a.no_figures,
                   open_kwargs=_open_kwargs(a) if hasattr(a, "dataset") else None, recipe=recipe,
-                  model=model, regions=regions, formats=_formats(a))
+                  model=model, regions=regions, formats=_formats(a), optical=optical)
     summ = out["summary"]
     print(f"map       {map_path}  ({summ['shape'][0]} x {summ['shape'][1]} pixels, "
           f"{summ['shape'][2]} channels)")
@@ -161,6 +268,8 @@ def _run_analysis(a, map_path, library, standards, bands):
     print(f"spikes    {sp['channels_replaced']} channels replaced in {sp['spectra_touched']} spectra")
     for note in summ["notices"]:
         print(f"notice    {note}")
+    if "optical" in summ:
+        _print_optical(summ["optical"])
     km = summ["results"].get("kmeans", {})
     from .reduce.match import describe_match
 
@@ -193,6 +302,22 @@ def _run_analysis(a, map_path, library, standards, bands):
     return out
 
 
+def _model_recipe(a, model, recipe):
+    """The recipe to clean with when a saved model is applied: its own, unless one is given."""
+    from .preprocess.recipe import Recipe
+
+    if not getattr(a, "recipe", None):
+        print(f"recipe    the one saved in {a.model_file}")
+        return Recipe.from_text(model.recipe_text, f"{a.model_file} (recipe)")
+    try:
+        model.check_recipe(recipe)
+    except MapkitError as exc:
+        raise MapkitError(exc.problem, file=a.recipe, field="--recipe",
+                          fix="omit --recipe to clean with the recipe saved in the model, or "
+                              "pass the recipe.toml 'mapkit calibrate' wrote beside it") from None
+    return recipe
+
+
 def _choose_mode(a, map_path):
     """None for the in-memory path, else the reason to go chunk-wise."""
     from .read import open_map
@@ -216,6 +341,14 @@ def _run_large(a, map_path, recipe, reason, library, standards, model):
     from .read import read_library
 
     refs = read_library(library) if library else None
+    from .read import open_map
+
+    # the axis alone (lazy open): a crop too narrow or a short library fail before cleaning
+    notes = []
+    recipe.check_axis(open_map(map_path).raman_shift, need=a.components,
+                      why=f"NMF with {a.components} components", library=refs, notes=notes)
+    for note in notes:
+        print(f"notice    {note}")
     if standards:
         s = Settings(analyte=a.analyte, calibration_model=a.calibration_model,
                      weighting=a.weighting, response_band=a.response_band,
@@ -263,17 +396,71 @@ def cmd_analyse(a):
     return _run_analysis(a, a.map, a.library, a.standards, a.band)
 
 
+def _map_stem(results_path):
+    """Stem of the map a results file was made from (its recorded input), else its own."""
+    import json
+
+    import h5py
+
+    from . import layout
+
+    with h5py.File(results_path, "r") as f:
+        raw = f[layout.PROVENANCE].attrs.get("inputs") if layout.PROVENANCE in f else None
+    try:
+        return Path(json.loads(raw)["map"]["path"]).stem
+    except (TypeError, KeyError, ValueError):
+        return Path(results_path).stem
+
+
+def cmd_micrograph(a):
+    """Place a micrograph under the maps of an existing results file (a new file is written)."""
+    from .export.atomic import check_target
+    from .export.bundle import safe_name, write_optical_figures
+    from .export.nexus import copy_with_optical
+    from .pipeline import optical_summary, place_optical
+    from .read.nexus import is_nexus_map, read_nexus_map, read_result_objects
+
+    src = Path(a.results)
+    if not is_nexus_map(src):
+        raise MapkitError("not a mapkit results file (no /entry/map/intensity)", file=src,
+                          fix="give the results.h5 written by 'mapkit analyse'")
+    out = Path(a.out) if a.out else src.with_name(f"{src.stem}_optical.h5")
+    if out.resolve() == src.resolve():
+        raise MapkitError("the output would replace the input", file=out, field="--out",
+                          fix="give another file name")
+    check_target(out, overwrite=a.overwrite)
+    m = read_nexus_map(src)
+    placed, notices = place_optical(_optical_request(a, a.image), (m.x, m.y))
+    results = read_result_objects(src) if not a.no_figures else []
+    written = [copy_with_optical(src, out, placed, overwrite=a.overwrite)]
+    if not a.no_figures:
+        written += write_optical_figures(out.parent, safe_name(_map_stem(src)), placed, results,
+                                         overwrite=True)
+    for note in notices:
+        print(f"notice    {note}")
+    _print_optical(optical_summary(placed))
+    print(f"wrote     {len(written)} files: {out}" + (f" and {len(written) - 1} figures in "
+                                                       f"{out.parent}/" if len(written) > 1 else ""))
+
+
 def cmd_info(a):
     from .read import open_map
     from .read.nexus import is_nexus_map, read_results
 
     m = open_map(a.map, **_open_kwargs(a))
     print(repr(m))
+    _print_notes(m)
     if m.laser_wavelength:
         print(f"laser     {m.laser_wavelength:g} nm")
     for step in m.provenance:
         print(f"step      {step.name} {step.parameters}")
     if is_nexus_map(a.map):
+        from .pipeline import optical_summary
+        from .read.optical import read_placed_image
+
+        placed = read_placed_image(a.map)
+        if placed is not None:
+            _print_optical(optical_summary(placed))
         for name, r in read_results(a.map).items():
             fields = ", ".join(f"{k} {tuple(v['data'].shape)}" for k, v in r["fields"].items())
             print(f"result    {name} ({r['method']}): {fields}")
@@ -281,10 +468,20 @@ def cmd_info(a):
 
 def cmd_convert(a):
     from .export import write_map
+    from .export.atomic import check_target
     from .read import open_map
 
+    out = Path(a.output)
+    folder = next((q for q in [out.parent, *out.parent.parents] if q.exists()), None)
+    if folder is not None and not folder.is_dir():
+        raise MapkitError("the output folder does not exist: it would lie under a file",
+                          file=out, fix=f"{folder} is a file; give a path in a folder")
+    if out.parent.is_dir():
+        check_target(out, overwrite=a.overwrite)   # before the input is read
     m = open_map(a.input, **_open_kwargs(a))
-    write_map(a.output, m, overwrite=a.overwrite)
+    _print_notes(m)
+    out.parent.mkdir(parents=True, exist_ok=True)   # as analyse --out does
+    write_map(out, m, overwrite=a.overwrite)
     print(f"wrote {a.output}: {m!r}")
 
 
@@ -294,9 +491,18 @@ def cmd_spectrum(a):
     from .read import open_map
 
     m = open_map(a.map, **_open_kwargs(a))
+    for name, want, axis in (("x", a.at[0], m.x), ("y", a.at[1], m.y)):
+        # a pixel covers half a step on each side of its position: beyond that is outside
+        half = 0.5 * float(np.median(np.abs(np.diff(axis)))) if axis.size > 1 else 0.5
+        lo, hi = float(axis.min()) - half, float(axis.max()) + half
+        if not lo <= want <= hi:
+            raise MapkitError(f"{name} = {want:g} um lies outside the map ({name} "
+                              f"{axis.min():g} to {axis.max():g} um)", file=a.map, field="--at",
+                              fix=f"give a position from {lo:g} to {hi:g} um")
     ix = int(np.argmin(np.abs(m.x - a.at[0])))
     iy = int(np.argmin(np.abs(m.y - a.at[1])))
     s = m.spectrum(iy, ix)
+    _print_notes(m, prefix="# notice: ")
     print(f"# pixel x={m.x[ix]:g} um, y={m.y[iy]:g} um (column {ix}, row {iy})")
     print("raman_shift_cm-1,intensity")
     for sh, v in zip(m.raman_shift, s):
@@ -323,9 +529,15 @@ def cmd_preprocess(a):
     recipe = _recipe(a)
     files = _map_files(a.target)
     out = Path(a.out)
+    _check_outputs(out, a.overwrite, [f"{f.stem}_clean.h5" for f in files])  # before any read
     out.mkdir(parents=True, exist_ok=True)
     for f in files:
         m = open_map(f, **_open_kwargs(a))
+        _print_notes(m)
+        notes = []
+        recipe.check_axis(m.raman_shift, notes=notes)
+        for note in notes:
+            print(f"notice    {note}")
         clean, extras = recipe.apply(m)
         target = out / f"{f.stem}_clean.h5"
         write_map(target, clean, overwrite=a.overwrite)
@@ -335,10 +547,10 @@ def cmd_preprocess(a):
 
 
 def cmd_steps(a):
-    from .preprocess.recipe import DEFAULT_RECIPE
+    from .preprocess.recipe import DEFAULT_RECIPE, Recipe
     from .preprocess.registry import describe_steps
 
-    print(describe_steps())
+    print(describe_steps(Recipe.default()))
     print("\nDefault recipe:\n" + DEFAULT_RECIPE)
 
 
@@ -409,24 +621,37 @@ def build_parser() -> argparse.ArgumentParser:
     an.add_argument("map", help="map file (.h5 mapkit layout, any HDF5 with --dataset, or text table)")
     _add_analysis_options(an)
     _add_read_options(an)
+    _add_optical_options(an)
     an.set_defaults(func=cmd_analyse)
 
+    mi = sub.add_parser("micrograph", help="place a micrograph under the maps of a results file",
+                        description="Read a micrograph with its scale, register it to the map "
+                                    "from control points if given, and write a copy of the "
+                                    "results file holding it, with the maps drawn over it.")
+    mi.add_argument("results", help="results.h5 written by 'mapkit analyse' (left unchanged)")
+    _add_optical_options(mi, positional=True)
+    mi.add_argument("--out", help="results file to write (default: RESULTS_optical.h5 beside it)")
+    mi.add_argument("--overwrite", action="store_true", help="replace an existing --out file")
+    mi.add_argument("--no-figures", action="store_true", help="skip the overlay figures")
+    mi.set_defaults(func=cmd_micrograph)
+
     i = sub.add_parser("info", help="describe a map or results file")
-    i.add_argument("map")
+    i.add_argument("map", help="map or results file")
     _add_read_options(i)
     i.set_defaults(func=cmd_info)
 
     c = sub.add_parser("convert", help="write any readable map in the mapkit HDF5 layout")
-    c.add_argument("input")
-    c.add_argument("output")
-    c.add_argument("--overwrite", action="store_true")
+    c.add_argument("input", help="map file (text table, any HDF5 with --dataset, mapkit file)")
+    c.add_argument("output", help="mapkit HDF5 file to write (its folder is created)")
+    c.add_argument("--overwrite", action="store_true", help="replace an existing output")
     _add_read_options(c)
     c.set_defaults(func=cmd_convert)
 
     s = sub.add_parser("spectrum", help="print one pixel's spectrum as CSV")
-    s.add_argument("map")
+    s.add_argument("map", help="map file")
     s.add_argument("--at", nargs=2, type=float, metavar=("X_UM", "Y_UM"), required=True,
-                   help="stage position in um (nearest pixel)")
+                   help="stage position in um (nearest pixel; a position more than half a "
+                        "pixel outside the map is an error)")
     _add_read_options(s)
     s.set_defaults(func=cmd_spectrum)
 
@@ -440,7 +665,7 @@ def build_parser() -> argparse.ArgumentParser:
     pp.add_argument("target", help="map file or folder of maps")
     pp.add_argument("--recipe", help="TOML recipe (default: see 'mapkit steps')")
     pp.add_argument("--out", default="mapkit-output", help="folder for the cleaned maps")
-    pp.add_argument("--overwrite", action="store_true")
+    pp.add_argument("--overwrite", action="store_true", help="replace existing outputs")
     _add_read_options(pp)
     pp.set_defaults(func=cmd_preprocess)
 
@@ -457,15 +682,15 @@ def build_parser() -> argparse.ArgumentParser:
     ac.add_argument("--window", type=float, default=10.0,
                     help="search half-width around each tabulated band, 1/cm (default 10)")
     ac.add_argument("--out", help="write the recipe step to this TOML file")
-    ac.add_argument("--overwrite", action="store_true")
+    ac.add_argument("--overwrite", action="store_true", help="replace an existing output")
     ac.set_defaults(func=cmd_axis_calibrate)
 
     g = sub.add_parser("samples", help="regenerate the synthetic sample data")
-    g.add_argument("outdir")
+    g.add_argument("outdir", help="folder to write the sample files into")
     g.set_defaults(func=cmd_samples)
 
     v = sub.add_parser("view", help="open a map in napari with the mapkit panels")
-    v.add_argument("map")
+    v.add_argument("map", help="map or results file")
     v.set_defaults(func=cmd_view)
     return p
 
@@ -474,6 +699,10 @@ def main(argv=None) -> int:
     args = build_parser().parse_args(argv)
     try:
         args.func(args)
+    except BrokenPipeError:
+        # the reader stopped reading (e.g. '| head'): not an error, and nothing to report
+        _silence_stdout()
+        return 0
     except MapkitError as exc:
         print(f"mapkit: error: {exc}", file=sys.stderr)
         return 2
@@ -488,6 +717,15 @@ def main(argv=None) -> int:
               "(rerun with MAPKIT_DEBUG=1 for the traceback and report it)", file=sys.stderr)
         return 1
     return 0
+
+
+def _silence_stdout():
+    """Point stdout at /dev/null, so flushing at exit does not raise a second BrokenPipeError."""
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    except (OSError, ValueError, AttributeError):  # no real file descriptor (captured output)
+        pass
 
 
 if __name__ == "__main__":  # pragma: no cover

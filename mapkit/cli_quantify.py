@@ -15,7 +15,10 @@ def cmd_calibrate(a):
     from .preprocess.recipe import Recipe
     from .read import read_library
 
+    from .cli import _check_outputs
+
     recipe = Recipe.from_file(a.recipe) if a.recipe else Recipe.default()
+    _check_outputs(a.out, a.overwrite, ("quant_model.json",))   # before any fitting
     library = read_library(a.library) if a.library else None
     s = Settings(analyte=a.analyte, calibration_model=a.model, weighting=a.weighting,
                  response_band=a.response_band, internal_standard=a.internal_standard)
@@ -93,10 +96,12 @@ def cmd_temperature(a):
 
     m, _ = _prepare(a, minimal=True)
     r = temperature_map(m, a.shift, a.half_width, laser_nm=a.laser,
-                        exponent=3 if a.photon_counting else 4)
+                        exponent=4 if a.energy_detection else 3)
     med = r.summary["median_K"]
     _write(a, m, [r], [f"anti-Stokes/Stokes temperature at {a.shift:g} 1/cm: median "
-                       f"{med:.1f} K" if med else "no pixel gave a usable ratio"])
+                       f"{med:.1f} K ({r.summary['detector']})" if med
+                       else "no pixel gave a usable ratio",
+                       f"caution   {r.summary['caution']}"])
 
 
 def cmd_crystallite(a):
@@ -106,8 +111,10 @@ def cmd_crystallite(a):
     m, _ = _prepare(a)
     r = crystallite_size_map(m, laser_nm=a.laser, d_band=a.d_band, g_band=a.g_band)
     med = r.summary["median_nm"]
-    _write(a, m, [r], [f"crystallite size L_a median {med:.2f} nm (Cancado et al. 2006)"
-                       if med else "no pixel gave a usable I_D/I_G"])
+    lo, hi = r.summary["valid_range_nm"]
+    _write(a, m, [r], [f"crystallite size L_a median {med:.2f} nm (Cancado et al. 2006); "
+                       f"{r.summary['outside_validity']} pixels outside {lo:g}-{hi:g} nm, "
+                       "where the relation holds" if med else "no pixel gave a usable I_D/I_G"])
 
 
 def add_parsers(sub, add_read_options, range_type):
@@ -119,13 +126,14 @@ def add_parsers(sub, add_read_options, range_type):
     c.add_argument("standards", help="standards table (CSV: standard,concentration,<shifts>)")
     c.add_argument("--library", help="reference spectra (for the unmixing-fraction response)")
     c.add_argument("--recipe", help="cleaning recipe (default recipe when omitted)")
-    c.add_argument("--model", choices=("linear", "quadratic", "pls"), default="linear")
-    c.add_argument("--weighting", choices=("none", "replicates"), default="none")
-    c.add_argument("--response-band", type=range_type, metavar="LO-HI")
-    c.add_argument("--internal-standard", type=range_type, metavar="LO-HI")
+    c.add_argument("--model", choices=("linear", "quadratic", "pls"), default="linear",
+                   help="calibration model (default linear)")
+    from .cli import add_response_options
+
+    add_response_options(c, range_type)
     c.add_argument("--analyte", help="reference name of the analyte (default: from the file)")
     c.add_argument("--out", default="mapkit-output", help="folder for the model and figure")
-    c.add_argument("--overwrite", action="store_true")
+    c.add_argument("--overwrite", action="store_true", help="replace existing outputs")
     c.set_defaults(func=cmd_calibrate)
 
     b = sub.add_parser("batch", help="apply a saved model (and its recipe) to a folder of maps",
@@ -135,9 +143,9 @@ def add_parsers(sub, add_read_options, range_type):
     b.add_argument("--model-file", required=True, help="quant_model.json from 'mapkit calibrate'")
     b.add_argument("--library", help="reference spectra the model was made with")
     b.add_argument("--recipe", help="recipe (default: the one saved in the model)")
-    b.add_argument("--out", default="mapkit-output")
-    b.add_argument("--overwrite", action="store_true")
-    b.add_argument("--no-figures", action="store_true")
+    b.add_argument("--out", default="mapkit-output", help="folder for the outputs")
+    b.add_argument("--overwrite", action="store_true", help="replace existing outputs")
+    b.add_argument("--no-figures", action="store_true", help="skip figures")
     b.set_defaults(func=cmd_batch)
 
     t = sub.add_parser("temperature", help="anti-Stokes/Stokes temperature map")
@@ -145,15 +153,21 @@ def add_parsers(sub, add_read_options, range_type):
     t.add_argument("--shift", type=float, required=True, help="band position, 1/cm (e.g. 520.7)")
     t.add_argument("--half-width", type=float, default=15.0, help="integration half-width, 1/cm")
     t.add_argument("--laser", type=float, help="excitation wavelength, nm (if the file lacks it)")
-    t.add_argument("--photon-counting", action="store_true",
-                   help="detector counts photons (frequency factor to the 3rd power, not 4th)")
+    det = t.add_mutually_exclusive_group()
+    det.add_argument("--photon-counting", action="store_true",
+                     help="detector counts photons, e.g. a CCD (frequency factor cubed; the "
+                          "default)")
+    det.add_argument("--energy-detection", action="store_true",
+                     help="detector measures energy (frequency factor to the 4th power)")
     add_read_options(t, laser=False)
     t.set_defaults(func=cmd_temperature)
 
     k = sub.add_parser("crystallite", help="nanographite crystallite size from I_D/I_G")
     _common(k)
     k.add_argument("--laser", type=float, help="excitation wavelength, nm (if the file lacks it)")
-    k.add_argument("--d-band", type=range_type, default=(1250.0, 1450.0), metavar="LO-HI")
-    k.add_argument("--g-band", type=range_type, default=(1500.0, 1650.0), metavar="LO-HI")
+    k.add_argument("--d-band", type=range_type, default=(1250.0, 1450.0), metavar="LO-HI",
+                   help="D band window, 1/cm (default 1250-1450)")
+    k.add_argument("--g-band", type=range_type, default=(1500.0, 1650.0), metavar="LO-HI",
+                   help="G band window, 1/cm (default 1500-1650)")
     add_read_options(k, laser=False)
     k.set_defaults(func=cmd_crystallite)

@@ -34,6 +34,18 @@ def _common(p, default_recipe="default"):
     p.add_argument("--no-figures", action="store_true", help="skip figures")
     p.add_argument("--figure-format", choices=("png", "svg", "both"), default="png",
                    help="figure files to write (default png)")
+    p.add_argument("--quiet", action="store_true", help="print only the results, no mode line")
+
+
+def _channel_need(a, library):
+    """Channels the method after the recipe needs, and why (checked before cleaning)."""
+    if a.command == "components":
+        return a.n, f"{a.method.upper()} with {a.n} components"
+    if a.command == "unmix" and library:
+        terms = 0 if a.baseline_order < 0 else a.baseline_order + 1
+        return (len(library) + terms + 1,
+                f"unmixing {len(library)} references with {terms} baseline terms")
+    return 0, ""
 
 
 def _prepare(a, minimal=False, lazy_ok=False):
@@ -51,9 +63,21 @@ def _prepare(a, minimal=False, lazy_ok=False):
         from .read import read_library
 
         library = read_library(a.library)
-    from .cli import _open_kwargs
+    from .cli import _check_outputs, _open_kwargs, _print_notes
 
+    _check_outputs(a.out, a.overwrite)   # before the map is read or cleaned
     m = open_map(a.map, **_open_kwargs(a))
+    if not getattr(a, "quiet", False):
+        _print_notes(m)
+    if recipe is not None:   # the axis alone: a crop too narrow or a short library fail here
+        need, why = _channel_need(a, library)
+        notes = []
+        recipe.check_axis(m.raman_shift, need=need, why=why, library=library, notes=notes)
+        for note in notes if not getattr(a, "quiet", False) else ():
+            print(f"notice    {note}")
+    elif library:
+        for ref in library:
+            ref.on_axis(m.raman_shift)
     from .stream import fits_in_memory
 
     if not (lazy_ok and m.is_lazy and not fits_in_memory(m)):
@@ -164,7 +188,12 @@ def cmd_peaks(a):
     c = res.fields["centre" if a.peaks == 1 else "centre_1"]
     s = res.summary
     lines = [f"{a.shape} fit in {lo:g}-{hi:g} 1/cm: {s['pixels']} pixels, "
-             f"{s['not_converged']} not converged",
+             f"{s['not_converged']} not converged ("
+             + ", ".join(f"{s[k]} {k.replace('_', ' ')}" for k in
+                         ("iteration_limit", "stalled", "centre_outside", "singular")) + ")",
+             f"errors    {s['covariance']} covariance"
+             + (" (robust to unequal channel noise)" if s["covariance"] == "sandwich"
+                else ""),
              f"reported  {s['reported']} pixels; masked {s['pixels'] - s['reported']} (band "
              f"under {a.min_significance:g} standard errors: {s['no_band']}, centre outside "
              f"the window: {s['left_window']})"]
@@ -213,7 +242,8 @@ def add_parsers(sub, add_read_options, band_type, positive_int):
                        description="Factorise the cleaned map into component spectra and images; "
                                    "with --library, name each component.")
     _common(c)
-    c.add_argument("--method", choices=("nmf", "mcr", "pca"), default="nmf")
+    c.add_argument("--method", choices=("nmf", "mcr", "pca"), default="nmf",
+                   help="factorisation (default nmf)")
     c.add_argument("--n", type=positive_int, default=4, help="number of components (default 4)")
     c.add_argument("--init", choices=("nndsvda", "vca", "nmf"), default="nndsvda",
                    help="starting point (NMF: nndsvda or vca; MCR: vca or nmf)")
@@ -229,7 +259,8 @@ def add_parsers(sub, add_read_options, band_type, positive_int):
                        description="Segment the cleaned, normalised map into classes; report "
                                    "area fractions and connected domains.")
     _common(k)
-    k.add_argument("--method", choices=("kmeans", "minibatch", "ward"), default="kmeans")
+    k.add_argument("--method", choices=("kmeans", "minibatch", "ward"), default="kmeans",
+                   help="clustering (default kmeans)")
     k.add_argument("--n", type=positive_int, default=4, help="number of classes (default 4)")
     k.add_argument("--smooth", type=float, default=0.0,
                    help="spatial smoothing of the scores, sigma in pixels (default 0)")
@@ -260,10 +291,16 @@ def add_parsers(sub, add_read_options, band_type, positive_int):
     pk.add_argument("--range", type=_range, required=True, metavar="LO-HI",
                     help="fit window in 1/cm, e.g. 500-540")
     pk.add_argument("--shape", choices=("lorentzian", "gaussian", "pseudo_voigt"),
-                    default="lorentzian")
-    pk.add_argument("--peaks", type=positive_int, default=1)
+                    default="lorentzian",
+                    help="band shape, fitted with a straight background (default lorentzian; "
+                         "pseudo_voigt also fits the Lorentzian fraction eta)")
+    pk.add_argument("--peaks", type=positive_int, default=1,
+                    help="number of overlapping peaks fitted together in the window (default 1)")
     pk.add_argument("--centres", type=float, nargs="+", help="starting centres, one per peak")
-    pk.add_argument("--weights", choices=("auto", "poisson", "uniform"), default="auto")
+    pk.add_argument("--weights", choices=("auto", "poisson", "uniform"), default="auto",
+                    help="poisson: maximum likelihood for shot noise (weights 1/expected "
+                         "counts; raw counts only), uniform: least squares, auto (default): "
+                         "poisson when every value in the window is non-negative")
     pk.add_argument("--min-significance", type=float, default=3.0, metavar="Z",
                     help="report a pixel only where every peak's height exceeds Z standard "
                          "errors and its centre stays in the window (default 3); the others "
@@ -277,10 +314,14 @@ def add_parsers(sub, add_read_options, band_type, positive_int):
 
     b = sub.add_parser("bands", help="band images (area, height, centroid) and ratios")
     _common(b)
-    b.add_argument("--band", action="append", type=band_type, metavar="NAME:LO-HI")
+    b.add_argument("--band", action="append", type=band_type, metavar="NAME:LO-HI",
+                   help="band over LO-HI 1/cm, measured above a straight line through the "
+                        "band's end points (repeatable)")
     b.add_argument("--ratio", action="append", metavar="LO-HI/LO-HI",
                    help="band ratio image, masked where the denominator is at noise level")
-    b.add_argument("--measure", choices=("area", "height", "centroid"), default="area")
+    b.add_argument("--measure", choices=("area", "height", "centroid"), default="area",
+                   help="band area (trapezoid rule), height or centroid, each above the "
+                        "straight-line baseline (default area)")
     add_read_options(b)
     b.set_defaults(func=cmd_bands)
 

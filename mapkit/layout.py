@@ -12,6 +12,9 @@ INSTRUMENT = "/entry/instrument"
 LASER = "/entry/instrument/laser_wavelength"
 PROVENANCE = "/entry/provenance"
 RESULTS = "/entry/results"
+#: the optical micrograph (NXdata, axes in µm of its own frame) and its placement on the map
+OPTICAL = "/entry/optical"
+OPTICAL_REGISTRATION = "/entry/optical_registration"
 
 AXES = ("y", "x", "raman_shift")
 AXIS_UNITS = {"y": "um", "x": "um", "raman_shift": "1/cm"}

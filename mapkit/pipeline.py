@@ -56,6 +56,18 @@ def quantification_model(standards, library, recipe, settings):
 
     cs = read_calibration_set(standards)
     analyte = settings.analyte or cs.analyte
+    if (settings.calibration_model != "pls" and settings.response_band is None
+            and library is not None):   # the unmixing fraction: the analyte is a reference
+        names = [r.name for r in library]
+        if not settings.analyte and not cs.analyte_named:
+            raise MapkitError("the standards file does not name its analyte", file=standards,
+                              field="# analyte:", fix=f"add a line '# analyte: NAME; unit: UNIT' "
+                              f"with NAME one of {', '.join(names)}, or pass --analyte NAME")
+        if analyte not in names:
+            raise MapkitError(f"the analyte {analyte!r} is not among the references "
+                              f"({', '.join(names)})", file=standards,
+                              field="--analyte" if settings.analyte else "# analyte:",
+                              fix="name the reference spectrum of the analyte")
     if settings.calibration_model == "pls":
         response = Response("spectrum", analyte)
     elif settings.response_band is not None:
@@ -75,7 +87,7 @@ def quantification_model(standards, library, recipe, settings):
 def analyse(map_path, outdir, *, library=None, standards=None, settings: Settings | None = None,
             overwrite: bool = False, progress: bool = True, figures: bool = True,
             open_kwargs: dict | None = None, recipe=None, model=None,
-            regions: dict | None = None, formats=("png",)) -> dict:
+            regions: dict | None = None, formats=("png",), optical: dict | None = None) -> dict:
     """Run the whole path on one map file and write every output into ``outdir``.
 
     ``recipe`` (a :class:`~mapkit.preprocess.recipe.Recipe`, default: mask bad pixels,
@@ -85,6 +97,10 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     Content maps come from ``model`` (a saved :class:`~mapkit.quantify.QuantModel`) or from
     a model fitted to ``standards``; ``regions`` (name → polygon vertices in µm) get their
     own statistics, as do the classes.
+
+    ``optical`` places a micrograph under the maps: ``{"image": path, "pixel_size": µm or
+    (dx, dy), "origin": (x0, y0), "control_points": CSV path, "transform": "similarity" or
+    "affine"}`` (all but ``image`` optional); it is checked before anything is written.
     """
     from .preprocess.recipe import Recipe
     from tqdm.auto import tqdm
@@ -100,6 +116,12 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     if outdir.exists() and not outdir.is_dir():
         raise MapkitError("the output path is a file, not a folder", file=outdir,
                           fix="give a folder for the outputs")
+    if not overwrite and (outdir / "results.h5").exists():   # before any work, not after it
+        raise MapkitError("the output file exists (from an earlier run)",
+                          file=outdir / "results.h5", field="--out",
+                          fix="choose another --out folder or pass --overwrite")
+    placed, optical_notices = (None, []) if optical is None else place_optical(
+        optical, open_map_axes(map_path, open_kwargs))
     outdir.mkdir(parents=True, exist_ok=True)
     recipe = recipe or Recipe.default()
     stages = ["read"] + [name for name, _ in recipe.steps] + [
@@ -124,6 +146,16 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
 
     stage("read")
     raw = open_map(map_path, **{"block_bytes": layout.READ_BYTES, **(open_kwargs or {})})
+    # the axis alone, before the cube is read: a crop too narrow for NMF or unmixing, or a
+    # library that does not cover what the recipe leaves, fails here with the recipe line
+    need, why = s.n_components, f"NMF with {s.n_components} components"
+    if refs:
+        terms = s.unmix_baseline_order + 1
+        if len(refs) + terms + 1 > need:
+            need, why = len(refs) + terms + 1, f"unmixing {len(refs)} references with {terms} " \
+                                                "baseline terms"
+    axis_notes = []
+    recipe.check_axis(raw.raman_shift, need=need, why=why, library=refs, notes=axis_notes)
     need = raw.n_pixels * raw.shape[2] * 8 * 4  # float64 working copies of the cube
     if need > s.memory_fraction * _memory_available():
         raise MapkitError(f"the map needs about {need / 2**30:.1f} GiB to process in memory",
@@ -163,7 +195,9 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     results.append(km_result)
     bar.update()
     stage("unmixing")
-    notices = []
+    from .read.dispatch import read_notes
+
+    notices = list(optical_notices) + read_notes(raw) + axis_notes
     calibration = None
     if refs is not None:
         unmix_result, = run_method(corrected, "unmix", library=refs,
@@ -218,25 +252,33 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     stage("write")
     run_step = Step("analyse", {"settings": asdict(s), "library": str(library) if library else None,
                                 "standards": str(standards) if standards else None,
-                                "recipe": recipe.text})
+                                "recipe": recipe.text,
+                                **({"optical": optical} if optical is not None else {})})
     final = corrected.derive(corrected.intensity, run_step)
     inputs = {"map": map_path}
     if standards is not None:
         inputs["standards"] = standards
+    if placed is not None:
+        inputs["optical"] = optical["image"]
+        if optical.get("control_points"):
+            inputs["control_points"] = optical["control_points"]
     if model is not None:
         written_model = model.save(outdir / "quant_model.json", overwrite=True)
     written = write_bundle(outdir, final, results, stem=safe_name(Path(map_path).stem),
-                           overwrite=overwrite, figures=figures, inputs=inputs, formats=formats)
+                           overwrite=overwrite, figures=figures, inputs=inputs, formats=formats,
+                           optical=placed)
     summary = {"map": str(map_path), "shape": list(raw.shape), "bad_pixels": bad_report,
                "spikes": spike_summary, "notices": notices, "recipe": recipe.text,
                "results": {r.name: r.summary for r in results if r.summary},
                "settings": asdict(s), "versions": library_versions()}
+    if placed is not None:
+        summary["optical"] = optical_summary(placed)
     written.append(write_summary(outdir, summary))
     from .export.report import write_report
 
     written.append(write_report(
         outdir / "report.html", map_name=Path(map_path).name, summary=summary, results=results,
-        model=model, recipe_text=recipe.text, provenance=final.provenance,
+        model=model, recipe_text=recipe.text, provenance=final.provenance, optical=placed,
         inputs={role: {"path": Path(p).name, "sha256": _sha(p)} for role, p in inputs.items()}))
     bar.update()
     bar.close()
@@ -244,6 +286,41 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
         written.append(written_model)
     return {"written": [Path(p) for p in written], "summary": summary, "results": results,
             "calibration": calibration, "model": model}
+
+
+def open_map_axes(map_path, open_kwargs=None):
+    """(x, y) axes of a map in µm, read lazily (the cube stays on disk)."""
+    from .read import open_map
+
+    m = open_map(map_path, **{"block_bytes": layout.READ_BYTES, **(open_kwargs or {})})
+    return m.x, m.y
+
+
+def place_optical(optical: dict, axes):
+    """Read, check and place a micrograph on a map with axes ``(x, y)``; (placed, notices).
+
+    The same call for ``mapkit analyse --optical`` and the subcommand that adds a
+    micrograph to an existing results file.
+    """
+    from .read.optical import read_control_points, read_optical
+    from .register import place_image
+
+    image = read_optical(optical["image"], pixel_size=optical.get("pixel_size"),
+                         origin=optical.get("origin"), max_bytes=optical.get("max_bytes"))
+    cp = optical.get("control_points")
+    pairs = read_control_points(cp, image) if cp else None
+    return place_image(image, axes[0], axes[1], pairs, kind=optical.get("transform", "similarity"),
+                       source=cp)
+
+
+def optical_summary(placed) -> dict:
+    """The micrograph's provenance and registration, for summary.json and the report."""
+    out = {**placed.image.provenance(), "matrix": np.asarray(placed.matrix).tolist()}
+    if placed.registration:
+        reg = placed.registration
+        out["registration"] = {k: reg[k] for k in ("transform", "pairs", "rms_um",
+                                                    "residuals_um") if k in reg}
+    return out
 
 
 METHODS = ("nmf", "mcr", "pca", "kmeans", "minibatch", "ward", "unmix", "fcls", "content")

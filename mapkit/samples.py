@@ -17,7 +17,10 @@ layout, background, noise, spikes, defects) is made up.
   spectra on the map's axis;
 - ``library/``: the pure reference spectra (JCAMP-DX and two-column text);
 - ``calibration_standards.csv``: spectra of 7 standards x 3 replicates at
-  known acetaminophen contents (% w/w).
+  known acetaminophen contents (% w/w);
+- ``tablet_micrograph.png`` (+ ``.scale.json``, ``tablet_micrograph_points.csv``): a
+  rendered, synthetic white-light image of the invented surface, in a camera frame rotated
+  and shifted against the stage, and control points to register it.
 """
 
 from __future__ import annotations
@@ -249,11 +252,112 @@ def write_samples(outdir) -> list[Path]:
         from .preprocess.recipe import DEFAULT_RECIPE
         p.write_text(bundled.read_text() if bundled.exists() else DEFAULT_RECIPE)
     written.append(p)
+    written += write_micrograph_sample(out)
     p = out / "calibration_standards.csv"
     p.write_text(f"# analyte: {ANALYTE}; unit: % w/w; synthetic, invented\n" + header + "\n"
                  + "\n".join(rows) + "\n")
     written.append(p)
     return written
+
+
+#: invented surface colours (RGB) of the tablet's materials under white light
+SURFACE_RGB = {"acetaminophen": (246, 244, 236), "calcite": (188, 196, 204),
+               "cellulose": (212, 186, 146), "anatase": (252, 252, 250)}
+#: where the invented camera sits: image-frame µm → stage µm (rotation 3°, scale 1.015,
+#: offset); the "true" transform the bundled control points come from
+MICROGRAPH_ROTATION_DEG, MICROGRAPH_SCALE, MICROGRAPH_SHIFT = 3.0, 1.015, (-21.0, -16.0)
+MICROGRAPH_PIXEL_UM, MICROGRAPH_SHAPE = 0.6, (270, 350)
+SYNTHETIC_LABEL = "SYNTHETIC micrograph of an invented sample"
+
+
+def micrograph_matrix(rotation_deg=MICROGRAPH_ROTATION_DEG, scale=MICROGRAPH_SCALE,
+                      shift=MICROGRAPH_SHIFT, shear: float = 0.0) -> np.ndarray:
+    """3x3 matrix: ``(x, y, 1)`` in the camera's µm frame → stage ``(x, y, 1)`` µm."""
+    t = np.deg2rad(rotation_deg)
+    lin = scale * np.array([[np.cos(t), -np.sin(t)], [np.sin(t), np.cos(t)]])
+    lin = lin @ np.array([[1.0, shear], [0.0, 1.0]])
+    return np.array([[*lin[0], shift[0]], [*lin[1], shift[1]], [0, 0, 1.0]])
+
+
+def _label_mask(shape, text):
+    """Boolean mask of ``text`` rendered in the bottom-left corner (matplotlib, no GUI)."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    ny, nx = shape
+    fig = Figure(figsize=(nx / 100, ny / 100), dpi=100)
+    FigureCanvasAgg(fig)
+    fig.text(0.02, 0.03, text, color="black", fontsize=max(6, ny // 30), ha="left", va="bottom")
+    fig.canvas.draw()
+    buf = np.asarray(fig.canvas.buffer_rgba())[..., 0]
+    return buf[:ny, :nx] < 128
+
+
+def render_micrograph(matrix=None, *, pixel_um: float = MICROGRAPH_PIXEL_UM,
+                      shape=MICROGRAPH_SHAPE, seed: int = SEED + 3, label: bool = True):
+    """A rendered (synthetic) white-light image of the invented tablet's surface.
+
+    The camera frame is ``matrix`` (default :func:`micrograph_matrix`) away from the stage:
+    camera pixel ``(row, col)`` sits at camera µm ``((col + 0.5) p, (row + 0.5) p)``, which
+    ``matrix`` takes to the stage. Colours are the materials' invented surface colours mixed
+    by the map's mass fractions, with grain texture; ``label`` burns in a notice that the
+    image is synthetic. Returns an ``(ny, nx, 3)`` uint8 array.
+    """
+    from scipy.ndimage import map_coordinates
+
+    matrix = micrograph_matrix() if matrix is None else np.asarray(matrix, float)
+    rng = np.random.default_rng(seed)
+    w = mass_fractions(np.random.default_rng(SEED), SHAPE)   # the map's own layout
+    ny, nx = shape
+    rows, cols = np.mgrid[:ny, :nx]
+    cam = np.stack([(cols.ravel() + 0.5) * pixel_um, (rows.ravel() + 0.5) * pixel_um,
+                    np.ones(rows.size)])
+    stage = matrix @ cam
+    # stage µm → map pixel index (2 µm step, first pixel centre at 0 µm)
+    coords = np.stack([stage[1] / STEP_UM, stage[0] / STEP_UM])
+    colour = np.zeros((ny * nx, 3))
+    for k, name in enumerate(COMPONENTS):
+        frac = map_coordinates(w[k], coords, order=1, mode="mirror")
+        colour += frac[:, None] * np.asarray(SURFACE_RGB[name], float)
+    colour = colour.reshape(ny, nx, 3)
+    texture = gaussian_filter(rng.normal(size=(ny, nx)), 1.2)
+    colour *= (1 + 0.06 * texture / texture.std())[..., None]
+    vignette = 1 - 0.12 * (((rows - ny / 2) / ny) ** 2 + ((cols - nx / 2) / nx) ** 2)
+    colour *= vignette[..., None]
+    if label:
+        mask = _label_mask(shape, SYNTHETIC_LABEL)
+        colour[mask] = (20, 20, 20)
+    return np.clip(np.rint(colour), 0, 255).astype(np.uint8)
+
+
+def write_micrograph_sample(outdir) -> list[Path]:
+    """The invented tablet's synthetic micrograph, its scale file and control points."""
+    from PIL import Image, PngImagePlugin
+
+    out = Path(outdir)
+    out.mkdir(parents=True, exist_ok=True)
+    img = render_micrograph()
+    info = PngImagePlugin.PngInfo()
+    info.add_text("Description", SYNTHETIC_LABEL + " (mapkit sample data)")
+    p = out / "tablet_micrograph.png"
+    Image.fromarray(img).save(p, pnginfo=info)
+    side = out / "tablet_micrograph.png.scale.json"
+    side.write_text('{"pixel_size_um": %g, "origin_um": [0, 0], "description": "%s; the '
+                    'camera frame is rotated and shifted against the stage"}\n'
+                    % (MICROGRAPH_PIXEL_UM, SYNTHETIC_LABEL))
+    # pairs as a user would click them: features' stage positions, image positions through
+    # the inverse of the invented camera placement, rounded to a tenth of a pixel
+    rng = np.random.default_rng(SEED + 4)
+    stage = np.array([[12, 10], [110, 14], [118, 84], [20, 88], [64, 50], [90, 40]], float)
+    inv = np.linalg.inv(micrograph_matrix())
+    cam = (inv @ np.c_[stage, np.ones(len(stage))].T).T[:, :2]
+    px = np.round(cam / MICROGRAPH_PIXEL_UM - 0.5 + rng.normal(0, 0.05, cam.shape), 1)
+    pts = out / "tablet_micrograph_points.csv"
+    pts.write_text("# control points for the synthetic micrograph (invented)\n"
+                   "name,image_col,image_row,map_x_um,map_y_um\n" + "".join(
+                       f"p{i + 1},{c:.1f},{r:.1f},{x:g},{y:g}\n"
+                       for i, ((c, r), (x, y)) in enumerate(zip(px, stage))))
+    return [p, side, pts]
 
 
 def sample_dir() -> Path:

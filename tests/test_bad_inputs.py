@@ -156,7 +156,78 @@ CASES = [
      "error", "not Raman shift"),
     ("not a model file", lambda t: (analyse(_h5(t / "a.h5"), "--model-file", str(_table(t / "m.json", '{"kind": "other"}'))),
                                     [t / "a.h5", t / "m.json"]), "error", "not a mapkit quantification model"),
+    # a foreign shift axis in wavelength: converted with the laser, refused without it
+    ("shift axis in nm without the laser", lambda t: _foreign(t, units="nm"), "error",
+     "wavelength in nm, and the laser wavelength is unknown; pass --laser"),
+    ("shift axis in nm with the laser", lambda t: _foreign(t, units="nm", shift=np.linspace(540, 580, 60),
+                                                           more=("--laser", "532")),
+     "ok", "converted to Raman shift with the 532 nm laser"),
+    ("shift axis in unknown units", lambda t: _foreign(t, units="eV"), "error",
+     "units 'eV' are neither Raman shift"),
+    ("axis order swapped against the positions", lambda t: _foreign(t, axes="x,y,raman_shift", positions=True),
+     "error", "check --axes"),
+    ("axis order that nothing confirms", lambda t: _foreign(t), "ok", "nothing in the file confirms it"),
+    ("recipe: reversed crop", lambda t: _with_recipe(t, GOOD_RECIPE + '\n[[step]]\nname = "crop"\nlow = 1700.0\nhigh = 300.0\n'),
+     "error", "line 10: crop low = 1700 is not below high = 300"),
+    ("recipe: crop leaves too few channels", lambda t: _with_recipe(t, GOOD_RECIPE + '\n[[step]]\nname = "crop"\nlow = 1790.0\nhigh = 1800.0\n'),
+     "error", "line 7: crop keeps 1 of 60 channels (1800.0-1800.0 1/cm), fewer than the 2 that NMF with 2 components"),
+    ("existing output is found before cleaning", lambda t: _existing_output(t), "error",
+     "the output file exists"),
+    ("short library is found before cleaning", lambda t: _narrow_library(t, cube=_cube(all_nan=1)),
+     "error", "reference covers"),
+    ("short library is found before chunk-wise cleaning",
+     lambda t: (lambda args, inputs: (args + ["--chunked"], inputs))(*_narrow_library(t, cube=_cube(all_nan=1))),
+     "error", "reference covers"),
+    ("standards without an analyte line", lambda t: _standards_with(t, analyte=False), "error",
+     "does not name its analyte"),
+    ("standards with a bad value", lambda t: _standards_with(t, bad="1O0"), "error",
+     "line 4: value '1O0' in column '200.0' (column 3) is not a number"),
+    ("spectrum far outside the map", lambda t: (["spectrum", str(_h5(t / "a.h5")), "--at", "50", "1"], [t / "a.h5"]),
+     "error", "x = 50 um lies outside the map"),
+    ("jittered table positions", lambda t: (analyse(_table(t / "a.csv", _wide(((0, 0), (1.01, 0.02), (0.01, 0.99), (0.98, 1.0)), ncol=40))),
+                                            [t / "a.csv"]), "error", "pass --position-tolerance"),
+    ("jittered table positions with a tolerance", lambda t: (["info", str(_table(t / "a.csv", _wide(((0, 0), (1.01, 0.02), (0.01, 0.99), (0.98, 1.0)), ncol=40))), "--position-tolerance", "0.05"],
+                                                             [t / "a.csv"]), "ok", "of 4 positions to a 2 x 2 grid (largest offset"),
+    ("2-D stack without positions", lambda t: _foreign(t, stack=True), "error",
+     "needs the position of each spectrum"),
 ]
+
+
+def _foreign(t, units=None, shift=SHIFT, axes="y,x,raman_shift", positions=False, stack=False,
+             more=()):
+    """A cube in a foreign HDF5 layout, read with --dataset/--axes/--shift-dataset."""
+    cube = _cube()                               # (6, 7, 60)
+    with h5py.File(t / "f.h5", "w") as f:
+        f["d/cube"] = cube.reshape(42, 60) if stack else cube
+        f["d/axis"] = shift
+        if units:
+            f["d/axis"].attrs["units"] = units
+        f["d/x"], f["d/y"] = np.arange(7.0), np.arange(6.0)
+    args = ["--dataset", "/d/cube", "--axes", "pixel,raman_shift" if stack else axes,
+            "--shift-dataset", "/d/axis"]
+    args += ["--x", "/d/x", "--y", "/d/y"] if positions else ["--pixel-size", "1"]
+    return analyse(t / "f.h5", *args, *more), [t / "f.h5"]
+
+
+def _existing_output(t):
+    (t / "out").mkdir()
+    (t / "out" / "results.h5").write_bytes(b"an earlier run")
+    # an all-NaN map would fail in cleaning: the existing output must be found first
+    return analyse(_h5(t / "a.h5", cube=_cube(all_nan=1))), [t / "a.h5", t / "out" / "results.h5"]
+
+
+def _standards_with(t, analyte=True, bad=None):
+    (t / "lib").mkdir()
+    for name in ("api", "filler"):
+        write_jcamp(t / "lib" / f"{name}.jdx", name, SHIFT, np.ones(SHIFT.size))
+    head = "standard,concentration," + ",".join(f"{s:.1f}" for s in SHIFT)
+    rows = [f"s{i},{c}," + ",".join("100" for _ in SHIFT) for i, c in enumerate((0, 5, 10))]
+    if bad:
+        rows[1] = rows[1].replace(",100,", f",{bad},", 1)
+    text = ("# analyte: api; unit: % w/w\n" if analyte else "") + "\n".join([head] + rows) + "\n"
+    (t / "std.csv").write_text(text)
+    return (["calibrate", str(t / "std.csv"), "--library", str(t / "lib"), "--recipe",
+             str(_table(t / "r.toml", GOOD_RECIPE)), "--out", str(t / "o")], [t / "std.csv"])
 
 
 def _truncated(t):
@@ -187,10 +258,11 @@ def _standards(t, levels):
              str(_table(t / "r.toml", GOOD_RECIPE)), "--out", str(t / "o")], [t / "std.csv"])
 
 
-def _narrow_library(t):
+def _narrow_library(t, cube=None):
     (t / "lib").mkdir()
     write_jcamp(t / "lib" / "a.jdx", "a", np.linspace(1000, 1800, 100), np.ones(100))
-    return analyse(_h5(t / "a.h5", cube=_cube()), "--library", str(t / "lib")), [t / "a.h5"]
+    cube = _cube() if cube is None else cube
+    return analyse(_h5(t / "a.h5", cube=cube), "--library", str(t / "lib")), [t / "a.h5"]
 
 
 def _dup_library(t):
@@ -207,6 +279,66 @@ def _library_file(t, text):
         [t / "a.h5", t / "lib" / "x.jdx"]
 
 
+# -- the optical micrograph (analyse --optical, mapkit micrograph) ---------------------------
+def _image(t, name="photo.png", scale=True, shape=(30, 40)):
+    from PIL import Image
+
+    Image.fromarray(np.full(shape + (3,), 128, np.uint8)).save(t / name)
+    if scale:
+        (t / f"{name}.scale.json").write_text('{"pixel_size_um": 0.2}')
+    return t / name
+
+
+def _points(t, rows):
+    (t / "pts.csv").write_text("image_x_um,image_y_um,map_x_um,map_y_um\n"
+                               + "".join(f"{a},{b},{c},{d}\n" for a, b, c, d in rows))
+    return t / "pts.csv"
+
+
+def _optical(t, image, *more, files=()):
+    cube = _h5(t / "a.h5", cube=_cube())       # 6 x 7 pixels, 0-6 µm by 0-5 µm
+    return analyse(cube, "--optical", str(image), *more), [t / "a.h5", image, *files]
+
+
+_GOOD_PAIRS = ((1, 1, 1, 1), (5, 1, 5, 1), (1, 4, 1, 4))
+OPTICAL_CASES = [
+    ("micrograph missing", lambda t: _optical(t, t / "none.png"), "error",
+     "micrograph does not exist"),
+    ("micrograph unreadable", lambda t: _optical(t, _table(t / "bad.png", "not an image")),
+     "error", "not a readable image"),
+    ("micrograph TIFF unreadable", lambda t: _optical(t, _table(t / "bad.tif", "II*\x00junk")),
+     "error", "holds no image"),
+    ("micrograph without pixel size", lambda t: _optical(t, _image(t, scale=False)), "error",
+     "no pixel size"),
+    ("micrograph pixel size zero", lambda t: _optical(t, _image(t, scale=False),
+                                                      "--optical-pixel-size", "0"),
+     "error", "must be positive"),
+    ("micrograph scale file with a typo", lambda t: (_table(t / "photo.png.scale.json", '{"pixel_size": 1}'), _optical(t, _image(t, scale=False)))[1],
+     "error", "unknown key 'pixel_size'"),
+    ("two control points", lambda t: _optical(t, _image(t), "--control-points",
+                                              str(_points(t, _GOOD_PAIRS[:2]))), "error",
+     "needs at least 3"),
+    ("collinear control points", lambda t: _optical(
+        t, _image(t), "--control-points", str(_points(t, ((1, 1, 1, 1), (2, 2, 2, 2),
+                                                         (3, 3, 3, 3), (4, 4, 4, 4))))),
+     "error", "on one line"),
+    ("control point outside the map", lambda t: _optical(
+        t, _image(t), "--control-points", str(_points(t, _GOOD_PAIRS[:2] + ((1, 4, 1, 40),)))),
+     "error", "outside the map"),
+    ("control point outside the micrograph", lambda t: _optical(
+        t, _image(t), "--control-points", str(_points(t, _GOOD_PAIRS[:2] + ((1, 40, 1, 4),)))),
+     "error", "outside the micrograph"),
+    ("control points without a micrograph", lambda t: (analyse(_h5(t / "a.h5", cube=_cube()),
+                                                               "--control-points", "p.csv"),
+                                                       [t / "a.h5"]),
+     "error", "micrograph options without a micrograph"),
+    ("micrograph subcommand on a map without results", lambda t: (
+        ["micrograph", str(_h5(t / "a.h5", cube=_cube())), str(_image(t, scale=False)), "--out",
+         str(t / "r.h5")], [t / "a.h5", t / "photo.png"]), "error", "no pixel size"),
+]
+CASES += OPTICAL_CASES
+
+
 def _digest(paths):
     return {p: hashlib.sha256(p.read_bytes()).hexdigest() for p in paths if p.is_file()}
 
@@ -218,7 +350,7 @@ def test_corpus_is_large_enough():
 @pytest.mark.parametrize("case, build, expected, words", CASES, ids=[c[0] for c in CASES])
 def test_bad_input(tmp_path, capsys, case, build, expected, words):
     args, inputs = build(tmp_path)
-    if "--out" not in args and args[0] not in ("convert",):
+    if "--out" not in args and args[0] not in ("convert", "spectrum", "info"):
         args = args + ["--out", str(tmp_path / "out")]
     before = _digest(inputs)
     rc = main(args)
@@ -234,3 +366,14 @@ def test_bad_input(tmp_path, capsys, case, build, expected, words):
     else:
         assert rc == 0, err
         assert words in out, out
+
+
+@pytest.mark.parametrize("case, build, expected, words", OPTICAL_CASES,
+                         ids=[c[0] for c in OPTICAL_CASES])
+def test_bad_micrograph_writes_nothing(tmp_path, capsys, case, build, expected, words):
+    args, inputs = build(tmp_path)
+    if "--out" not in args:
+        args = args + ["--out", str(tmp_path / "out")]
+    before = sorted(p for p in tmp_path.rglob("*"))
+    assert main(args) == 2
+    assert sorted(p for p in tmp_path.rglob("*")) == before, "something was written"

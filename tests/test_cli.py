@@ -213,3 +213,74 @@ def test_convert_from_text_then_analyse(tmp_path, capsys):
                  "--no-figures", "--components", "2", "--classes", "2",
                  "--band", "mid:300-400"]) == 0
     assert (tmp_path / "o" / "scan_mid.tif").exists()
+
+
+def test_spectrum_into_a_closed_pipe_exits_cleanly(sample_map_path, monkeypatch, capsys):
+    # a reader that stops early ('mapkit spectrum ... | head'): writes raise BrokenPipeError
+    class ClosedPipe:
+        def write(self, text):
+            raise BrokenPipeError(32, "Broken pipe")
+
+        def flush(self):
+            raise BrokenPipeError(32, "Broken pipe")
+
+    monkeypatch.setattr(sys, "stdout", ClosedPipe())
+    rc = main(["spectrum", str(sample_map_path), "--at", "10", "4"])
+    monkeypatch.undo()
+    assert rc == 0 and capsys.readouterr().err == ""
+
+
+def test_spectrum_through_head_in_a_real_pipe(sample_map_path):
+    cmd = f"'{sys.executable}' -m mapkit.cli spectrum '{sample_map_path}' --at 10 4"
+    r = subprocess.run(f"{cmd} | head -n 2", shell=True, capture_output=True, text=True,
+                       executable="/bin/bash")
+    assert r.stdout.splitlines()[0].startswith("# pixel x=10 um")
+    assert "Error" not in r.stderr and "internal error" not in r.stderr, r.stderr
+    # a reader gone before the first line (it exits while Python still imports numpy):
+    # the status of mapkit itself (pipefail) is 0 and nothing is printed
+    r = subprocess.run(f"set -o pipefail; {cmd} | true", shell=True, capture_output=True,
+                       text=True, executable="/bin/bash")
+    assert r.returncode == 0 and r.stderr == "", r.stderr
+
+
+def test_spectrum_position_is_checked_against_the_map(sample_map_path, capsys):
+    # the sample map: 64 x 48 pixels of 2 um from 0: half a pixel beyond the edge still is
+    # the edge pixel, further out is an error
+    assert main(["spectrum", str(sample_map_path), "--at", "126.9", "-0.9"]) == 0
+    assert capsys.readouterr().out.startswith("# pixel x=126 um, y=0 um")
+    assert main(["spectrum", str(sample_map_path), "--at", "10", "500"]) == 2
+    err = capsys.readouterr().err
+    assert "--at: y = 500 um lies outside the map (y 0 to 94 um)" in err
+
+
+def test_convert_creates_the_output_folder_and_checks_first(tmp_path, sample_map_path, capsys):
+    target = tmp_path / "new" / "deeper" / "map.h5"
+    assert main(["convert", str(sample_map_path), str(target)]) == 0
+    assert target.is_file()
+    # an existing output is refused before the (broken) input is read
+    broken = tmp_path / "broken.h5"
+    broken.write_text("not HDF5")
+    assert main(["convert", str(broken), str(target)]) == 2
+    err = capsys.readouterr().err
+    assert "the output file exists" in err and "not a readable" not in err
+
+
+def test_every_option_has_help_text():
+    import argparse
+
+    from mapkit.cli import build_parser
+
+    sub = next(a for a in build_parser()._actions if isinstance(a, argparse._SubParsersAction))
+    missing = [f"{name} {'/'.join(act.option_strings) or act.dest}"
+               for name, parser in sub.choices.items() for act in parser._actions
+               if act.help is None and not isinstance(act, argparse._HelpAction)]
+    assert not missing, missing
+
+
+@pytest.mark.parametrize("command", ["unmix", "components", "classes", "peaks", "bands"])
+def test_reduction_subcommands_accept_quiet(command):
+    from mapkit.cli import build_parser
+
+    extra = {"unmix": ["--library", "lib"], "peaks": ["--range", "500-540"]}.get(command, [])
+    a = build_parser().parse_args([command, "map.h5", *extra, "--quiet"])
+    assert a.quiet is True

@@ -1,6 +1,7 @@
 """Quantification from the command line: calibrate, analyse with a model, batch, physics maps."""
 
 import csv
+import json
 import shutil
 
 import h5py
@@ -124,19 +125,29 @@ def _write(tmp_path, name, cube, shift, laser=532.0):
 
 
 def test_temperature_command(tmp_path, capsys):
-    from mapkit.quantify import stokes_antistokes_ratio
-
     shift = np.linspace(-700, 700, 1401)
-    ratio = stokes_antistokes_ratio(350.0, 520.7, 532.0)
+    # I_aS/I_S = [(nu0 + nu)/(nu0 - nu)]^n exp(-c2 nu/T), c2 = 1.438776877 cm K (CODATA
+    # 2018), n = 3 for photon counting (Malyj & Griffiths 1983, Appl. Spectrosc. 37:315;
+    # from memory): the spectra are built by hand for a photon-counting detector at 350 K
+    nu0 = 1e7 / 532.0
+    ratio = ((nu0 + 520.7) / (nu0 - 520.7)) ** 3 * np.exp(-1.438776877 * 520.7 / 350.0)
     band = lambda c: 20000 / (1 + ((shift - c) / 2.0) ** 2)  # noqa: E731
     spec = 50 + band(520.7) + ratio * band(-520.7)
     cube = np.random.default_rng(0).poisson(np.tile(spec, (4, 5, 1))).astype(float)
     path = _write(tmp_path, "si.h5", cube, shift)
-    assert main(["temperature", str(path), "--shift", "520.7", "--half-width", "12",
-                 "--out", str(tmp_path / "o"), "--no-figures"]) == 0
-    with h5py.File(tmp_path / "o" / "results.h5") as f:
-        t = f["/entry/results/temperature/temperature/temperature"][...]
-    assert np.median(t) == pytest.approx(350.0, abs=5.0)
+    medians = {}
+    for flag in ([], ["--energy-detection"]):
+        out = tmp_path / ("o" + "".join(flag))
+        assert main(["temperature", str(path), "--shift", "520.7", "--half-width", "12",
+                     "--out", str(out), "--no-figures", *flag]) == 0
+        with h5py.File(out / "results.h5") as f:
+            medians[bool(flag)] = np.median(f["/entry/results/temperature/temperature/"
+                                              "temperature"][...])
+    text = capsys.readouterr().out
+    assert "photon counting" in text and "relative spectral response" in text
+    assert medians[False] == pytest.approx(350.0, abs=5.0)
+    # read as energy detection the same spectra come out colder (by hand: 341.2 K)
+    assert medians[True] == pytest.approx(medians[False] - 8.9, abs=0.5)
 
 
 def test_crystallite_command(tmp_path):
@@ -149,3 +160,28 @@ def test_crystallite_command(tmp_path):
     with h5py.File(tmp_path / "o" / "results.h5") as f:
         la = f["/entry/results/crystallite_size/crystallite_size/crystallite_size"][...]
     assert np.median(la) == pytest.approx(19.2, rel=0.05)   # I_D/I_G = 1 at 532 nm
+
+
+def test_a_saved_model_cleans_with_its_own_recipe(model_dir, sample_dir, tmp_path, capsys):
+    # the model was calibrated with tablet_recipe.toml, not the default recipe: without
+    # --recipe its own recipe is used (and said so); another recipe is refused before any
+    # work with the way out
+    rc = main(["analyse", str(sample_dir / "blend_map.h5"), "--model-file",
+               str(model_dir / "quant_model.json"), "--library", str(sample_dir / "library"),
+               "--out", str(tmp_path / "o"), "--quiet", "--no-figures", "--components", "2",
+               "--classes", "2"])
+    out, err = capsys.readouterr()
+    assert rc == 0, err
+    assert "recipe    the one saved in" in out
+    with h5py.File(tmp_path / "o" / "results.h5") as f:
+        steps = [s.decode() if isinstance(s, bytes) else s for s in f["/entry/provenance/steps"]]
+    saved = (model_dir / "recipe.toml").read_text()
+    assert any('"recipe"' in s and json.loads(s)["parameters"]["text"] == saved for s in steps)
+    other = tmp_path / "other.toml"
+    other.write_text(saved.replace("1e6", "1e5"))
+    rc = main(["analyse", str(tmp_path / "missing.h5"), "--model-file",
+               str(model_dir / "quant_model.json"), "--recipe", str(other),
+               "--out", str(tmp_path / "o2"), "--quiet"])
+    err = capsys.readouterr().err
+    assert rc == 2 and "other.toml: --recipe: the map is cleaned with another recipe" in err
+    assert "omit --recipe" in err and "file not found" not in err

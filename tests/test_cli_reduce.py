@@ -27,6 +27,8 @@ def test_reduction_commands(tmp_path, capsys, sample_map_path, sample_dir, args,
     out = capsys.readouterr().out
     assert rc == 0, out
     assert words in out, out
+    if "--library" in args and args[0] == "components":
+        assert "on 0-1)" in out          # the hit-quality index is printed with its scale
     with h5py.File(tmp_path / "results.h5") as f:
         assert f"/entry/results/{group}" in f
         g = f[f"/entry/results/{group}"]

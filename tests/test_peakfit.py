@@ -31,21 +31,120 @@ def cramer_rao_centre(centres, h=500.0, w=6.0, bg=100.0, lo=490, hi=550):
 
 
 def test_centre_precision_reaches_the_cramer_rao_bound():
-    y, centres = poisson_map()
+    y, centres = poisson_map(n=4000)
     fit = fit_peaks(y, S, 490, 550, shape="lorentzian")
     assert fit["converged"].all()
     rmse = np.sqrt(np.mean((fit["theta"][:, 1] - centres) ** 2))
     bound = np.sqrt(np.mean(cramer_rao_centre(centres)))
-    assert rmse <= 1.1 * bound, (rmse, bound)
-    # the reported standard errors describe the real scatter
-    assert np.median(fit["stderr"][:, 1]) == pytest.approx(rmse, rel=0.15)
+    # 4000 pixels: the RMSE itself is known to ~1.1 % (1/sqrt(2n)); measured 0.98-1.00
+    # over seeds 0-2
+    assert rmse <= 1.05 * bound, (rmse, bound)
+
+
+def test_poisson_fit_beats_least_squares_at_low_counts():
+    """At low counts the efficient estimator is the maximum-likelihood one (Kay 1993, ch. 7):
+    the Poisson fit stays at the bound, the unweighted fit does not."""
+    h, bg = 40.0, 5.0
+    y, centres = poisson_map(n=4000, h=h, bg=bg, seed=1)
+    bound = np.sqrt(np.mean(cramer_rao_centre(centres, h=h, bg=bg)))
+    rmse = {}
+    for weights in ("poisson", "uniform"):
+        fit = fit_peaks(y, S, 490, 550, weights=weights)
+        assert fit["converged"].all()
+        rmse[weights] = np.sqrt(np.mean((fit["theta"][:, 1] - centres) ** 2)) / bound
+    # measured over seeds 0-2: Poisson 0.997-1.020, unweighted 1.060-1.083 (ratio >= 1.06)
+    assert rmse["poisson"] <= 1.05, rmse
+    assert rmse["uniform"] >= 1.03 * rmse["poisson"], rmse
+
+
+@pytest.mark.parametrize("shape", ["lorentzian", "gaussian", "pseudo_voigt"])
+def test_analytic_jacobian_matches_finite_differences(shape):
+    """The bound and the fit are built from this Jacobian: check it against central
+    differences (common practice), two peaks so the cross terms are exercised too."""
+    s = np.linspace(490, 550, 61)
+    one = [300.0, 512.0, 5.0] + ([0.3] if shape == "pseudo_voigt" else [])
+    two = [200.0, 526.0, 7.0] + ([0.6] if shape == "pseudo_voigt" else [])
+    theta = np.array([one + two + [40.0, 0.4]])
+    _, J = model_and_jacobian(theta, s, shape, 2, 520.0)
+    for k in range(theta.shape[1]):
+        step = 1e-6 * max(abs(theta[0, k]), 1.0)
+        up, down = theta.copy(), theta.copy()
+        up[0, k] += step
+        down[0, k] -= step
+        fd = (model_and_jacobian(up, s, shape, 2, 520.0)[0]
+              - model_and_jacobian(down, s, shape, 2, 520.0)[0]) / (2 * step)
+        np.testing.assert_allclose(J[0, :, k], fd[0], rtol=1e-6, atol=1e-6 * np.abs(fd).max())
+
+
+def _baseline_map(n=4000, seed=0):
+    """Shot-noise spectra on a curved fluorescence background, and that background."""
+    rng = np.random.default_rng(seed)
+    centres = 520.0 + rng.uniform(-2, 2, n)
+    base = np.tile(100.0 * (1 + 3 * np.exp(-((S - 470) / 60) ** 2)), (n, 1))
+    mu = base + 500.0 / (1 + (2 * (S[None] - centres[:, None]) / 6.0) ** 2)
+    return rng.poisson(mu).astype(float), base, centres
+
+
+def test_error_bars_cover_the_scatter_raw_and_after_baseline_subtraction():
+    """Reported centre errors match the real scatter over 4000 pixels, on raw counts
+    (Poisson fit, model covariance) and after subtracting the background (least squares,
+    sandwich covariance: White 1980, Econometrica 48:817; HC2 of MacKinnon & White 1985,
+    J. Econometrics 29:305)."""
+    y, base, centres = _baseline_map()
+    ratios = {}
+    for label, data in (("raw", y), ("subtracted", y - base)):
+        fit = fit_peaks(data, S, 490, 550)
+        assert fit["converged"].all()
+        rmse = np.sqrt(np.mean((fit["theta"][:, 1] - centres) ** 2))
+        ratios[label] = np.sqrt(np.mean(fit["stderr"][:, 1] ** 2)) / rmse
+    assert fit["covariance"] == "sandwich"
+    # measured over seeds 0-2: raw 0.97-0.99, subtracted 0.99-1.00
+    assert 0.9 <= ratios["raw"] <= 1.1 and 0.9 <= ratios["subtracted"] <= 1.1, ratios
+    # the equal-noise covariance on the subtracted data is what this guards against
+    fit = fit_peaks(y - base, S, 490, 550, covariance="model")
+    rmse = np.sqrt(np.mean((fit["theta"][:, 1] - centres) ** 2))
+    assert np.sqrt(np.mean(fit["stderr"][:, 1] ** 2)) / rmse < 0.8
+
+
+def test_stress_errors_after_baseline_subtraction_cover_the_scatter():
+    """The stress map inherits the centre errors: check them through stress_result."""
+    y, base, centres = _baseline_map(n=40 * 50, seed=3)
+    m = RamanMap((y - base).reshape(40, 50, -1), raman_shift=S, x=np.arange(50.0),
+                 y=np.arange(40.0))
+    st = stress_result(peak_fit_map(m, 490, 550), reference=520.0)
+    true = silicon_stress(centres, reference=520.0).reshape(40, 50)
+    rmse = np.sqrt(np.mean((st.fields["stress"].data - true) ** 2))
+    assert 0.9 <= np.sqrt(np.mean(st.fields["stress"].errors ** 2)) / rmse <= 1.1
+
+
+def test_fit_states_mean_what_they_say():
+    """A fit that never improves (a missing channel: every trial cost is NaN) stalls and
+    is not called converged; one stopped by max_iter says so; an exact noise-free fit
+    whose last steps are rejected at rounding level is converged (gradient test). Both
+    engines report the same state (common practice: LM termination tests, Moré 1978)."""
+    from mapkit.reduce.peakfit import CONVERGED, ITERATION_LIMIT, STALLED
+
+    y, centres = poisson_map(n=40, seed=5)
+    y[0, 30] = np.nan
+    exact = 100 + 500 / (1 + (2 * (S[None] - centres[:, None]) / 6.0) ** 2)
+    for engine in ("numba", "numpy"):
+        fit = fit_peaks(y, S, 490, 550, engine=engine)
+        assert fit["status"][0] == STALLED and not fit["converged"][0]
+        assert (fit["status"][1:] == CONVERGED).all()
+        short = fit_peaks(y[1:], S, 490, 550, engine=engine, max_iter=2)
+        assert (short["status"] == ITERATION_LIMIT).all() and not short["converged"].any()
+        for weights in ("uniform", "poisson"):
+            clean = fit_peaks(exact, S, 490, 550, engine=engine, weights=weights)
+            assert clean["converged"].all()
+            np.testing.assert_allclose(clean["theta"][:, 1], centres, atol=1e-6)
 
 
 def test_agrees_with_scipy_curve_fit():
     from scipy.optimize import curve_fit
 
     y, _ = poisson_map(n=20, seed=4)
-    fit = fit_peaks(y, S, 490, 550, weights="uniform")
+    # the equal-noise covariance is curve_fit's (absolute_sigma=False)
+    fit = fit_peaks(y, S, 490, 550, weights="uniform", covariance="model")
     sel = (S >= 490) & (S <= 550)
     f = lambda x, h, c, w, a, b: h / (1 + (2 * (x - c) / w) ** 2) + a + b * (x - 520)  # noqa: E731
     for i in range(20):
@@ -55,16 +154,20 @@ def test_agrees_with_scipy_curve_fit():
 
 
 @pytest.mark.parametrize("shape", ["lorentzian", "gaussian", "pseudo_voigt"])
-def test_compiled_and_numpy_paths_agree(shape):
-    pytest.importorskip("numba")
-    y, _ = poisson_map(n=50, seed=2)
+@pytest.mark.parametrize("background", [100.0, 0.3])
+def test_compiled_and_numpy_paths_agree(shape, background):
+    # 0.3 counts of background: the Poisson floor is reached in the tails, in both engines
+    y, _ = poisson_map(n=50, seed=2, bg=background)
     a = fit_peaks(y, S, 490, 550, shape=shape, engine="numba")
     b = fit_peaks(y, S, 490, 550, shape=shape, engine="numpy")
     np.testing.assert_allclose(a["theta"], b["theta"], rtol=1e-8, atol=1e-8)
-    np.testing.assert_array_equal(a["converged"], b["converged"])
+    np.testing.assert_array_equal(a["status"], b["status"])
+    np.testing.assert_array_equal(a["n_iter"], b["n_iter"])
 
 
 def test_gaussian_and_pseudo_voigt_recover_their_parameters():
+    # invented spectra of known parameters; the pseudo-Voigt is the linear mix eta*L +
+    # (1 - eta)*G of equal FWHM (Thompson, Cox & Hastings 1987, J. Appl. Cryst. 20:79)
     rng = np.random.default_rng(8)
     u = 2 * (S - 515.0) / 8.0
     g = 800 * np.exp(-np.log(2) * u ** 2)
@@ -79,6 +182,8 @@ def test_gaussian_and_pseudo_voigt_recover_their_parameters():
 
 
 def test_two_overlapping_peaks():
+    # two Lorentzians 12 1/cm apart, FWHM 5 and 6 (overlapping flanks), of known centres
+    # (invented; the reference is the generating model itself, as in a worked example)
     u1, u2 = 2 * (S - 512) / 5, 2 * (S - 524) / 6
     y = np.tile(60 + 900 / (1 + u1 ** 2) + 500 / (1 + u2 ** 2), (30, 1))
     y = np.random.default_rng(0).poisson(y).astype(float)
@@ -102,9 +207,12 @@ def test_map_fields_and_quality_mask():
 
 
 def test_silicon_stress_coefficient():
-    # De Wolf 1996 (from memory): -2.3 1/cm per GPa uniaxial, -4.6 biaxial; tensile shifts down
-    assert silicon_stress(520.7 - 4.6, mode="biaxial") == pytest.approx(1.0)
-    assert silicon_stress(520.7 + 2.3) == pytest.approx(-1.0)
+    # De Wolf 1996, Semicond. Sci. Technol. 11:139 (from memory) writes the relation as
+    # sigma (MPa) = -434 * d_omega (1/cm) for uniaxial and -217 * d_omega for equibiaxial
+    # stress: a 1 1/cm downshift is 0.434 GPa tensile (0.217 GPa biaxial)
+    assert silicon_stress(520.7 - 1.0) == pytest.approx(0.434, rel=0.01)
+    assert silicon_stress(520.7 - 1.0, mode="biaxial") == pytest.approx(0.217, rel=0.01)
+    assert silicon_stress(520.7 + 1.0) == pytest.approx(-0.434, rel=0.01)
     y, _ = poisson_map(n=6)
     m = RamanMap(y.reshape(2, 3, -1), raman_shift=S, x=np.arange(3.0), y=np.arange(2.0))
     st = stress_result(peak_fit_map(m, 490, 550), reference=520.0)

@@ -3,8 +3,8 @@
 import numpy as np
 import pytest
 
-napari = pytest.importorskip("napari")
-pytest.importorskip("mapkit_napari")
+import napari  # noqa: F401  (declared: the viewer extra; a missing package fails here)
+import mapkit_napari  # noqa: F401
 
 
 def test_reader_declines_foreign_files(tmp_path):
@@ -67,6 +67,9 @@ def test_results_open_as_layers(make_napari_viewer, tmp_path):
     assert "kmeans: classes" in names and "unmixing: acetaminophen" in names
     labels = viewer.layers["kmeans: classes"]
     assert labels.data.max() == 4
+    # quantity layers use the figures' perceptually uniform map (Nuñez, Anderton & Renslow
+    # 2018, PLoS ONE 13:e0199239, "cividis"), as the docs say
+    assert viewer.layers["unmixing: acetaminophen"].colormap.name == "cividis"
 
 
 def test_screenshot_is_not_blank(make_napari_viewer, sample_map_path, tmp_path, qtbot):
@@ -217,12 +220,196 @@ def test_screenshot_with_both_panels(make_napari_viewer, sample_map_path, sample
         pass
     viewer.cursor.position = (40.0, 60.0)
     qtbot.wait(300)
-    img = viewer.screenshot(canvas_only=False, flash=False)
-    assert img.std() > 10
-    from imageio import imwrite
+    _screenshot(viewer, tmp_path, "viewer_panels.png")
 
+
+def _screenshot(viewer, tmp_path, name):
+    """Grab the whole window, check it is not blank, keep it (and in $MAPKIT_SCREENSHOT_DIR)."""
     import os
 
-    imwrite(tmp_path / "viewer.png", img)
+    from imageio import imwrite
+
+    img = viewer.screenshot(canvas_only=False, flash=False)
+    assert img.std() > 10
+    imwrite(tmp_path / name, img)
     if os.environ.get("MAPKIT_SCREENSHOT_DIR"):
-        imwrite(os.path.join(os.environ["MAPKIT_SCREENSHOT_DIR"], "viewer_panels.png"), img)
+        imwrite(os.path.join(os.environ["MAPKIT_SCREENSHOT_DIR"], name), img)
+    return img
+
+
+@pytest.fixture(scope="module")
+def optical_results(tmp_path_factory, sample_dir):
+    from mapkit.cli import main
+
+    out = tmp_path_factory.mktemp("optical_viewer")
+    assert main(["analyse", str(sample_dir / "tablet_map.h5"), "--out", str(out), "--quiet",
+                 "--no-figures", "--library", str(sample_dir / "library"),
+                 "--optical", str(sample_dir / "tablet_micrograph.png"),
+                 "--control-points", str(sample_dir / "tablet_micrograph_points.csv")]) == 0
+    return out
+
+
+def test_micrograph_layer_sits_in_map_coordinates(make_napari_viewer, optical_results):
+    from mapkit.read.optical import read_placed_image
+
+    viewer = make_napari_viewer()
+    viewer.open(str(optical_results / "results.h5"), plugin="mapkit-napari")
+    layer = viewer.layers["micrograph"]
+    assert viewer.layers.index(layer) == 0 and layer.rgb
+    placed = read_placed_image(optical_results / "results.h5")
+    # a micrograph pixel lands where the library's transform puts it (world = µm)
+    for row, col in ((10, 20), (200, 300)):
+        world = layer.data_to_world((row, col))
+        np.testing.assert_allclose(world, (placed.pixel_to_map() @ [row, col, 1])[:2],
+                                   atol=1e-9)
+    # the maps above it are see-through
+    assert viewer.layers["kmeans: classes"].opacity < 1
+    assert viewer.layers["nmf: component 1"].opacity < 1
+
+
+def test_class_legend_matches_the_summary(make_napari_viewer, optical_results):
+    import json
+
+    from mapkit_napari._legend import ClassLegend
+    from mapkit_napari._panel import SpectrumPanel
+    from mapkit.read.nexus import read_results
+
+    viewer = make_napari_viewer()
+    viewer.open(str(optical_results / "results.h5"), plugin="mapkit-napari")
+    spectra = SpectrumPanel(viewer)
+    legend = ClassLegend(viewer, on_class=spectra.show_class_spectrum)
+    viewer.layers.selection.active = viewer.layers["kmeans: classes"]
+    summary = json.loads((optical_results / "summary.json").read_text())["results"]["kmeans"]
+    ident = {i["spectrum"]: i for i in summary["identification"]}
+    assert legend.table.rowCount() == len(summary["areas"])
+    for i, (name, area) in enumerate(summary["areas"].items()):
+        assert legend.table.item(i, 1).text().startswith(name)
+        assert ident[name]["match"] in legend.table.item(i, 1).text()
+        assert float(legend.table.item(i, 2).text()) == pytest.approx(area["fraction_pct"],
+                                                                       abs=0.05)
+        assert float(legend.table.item(i, 3).text()) == pytest.approx(area["area_um2"], abs=0.5)
+    # the fractions are those of the label image itself (count of pixels per class)
+    labels = viewer.layers["kmeans: classes"].data
+    good = labels > 0
+    for i, area in enumerate(summary["areas"].values()):
+        assert area["fraction_pct"] == pytest.approx(100 * np.mean(labels[good] == i + 1))
+    # clicking a row draws that class's mean ± sd from the results file
+    row = legend.select(1)
+    stored = read_results(optical_results / "results.h5")["kmeans"]["fields"]["class_spectra"]
+    line = spectra.region_lines[0]
+    np.testing.assert_allclose(line.get_ydata(), stored["data"][1])
+    np.testing.assert_allclose(row["sd"], stored["errors"][1])
+    assert "%" in spectra.status.text()
+
+
+def test_calibration_in_the_panel_matches_the_command_line(make_napari_viewer, sample_dir,
+                                                          sample_map_path, tmp_path, qtbot):
+    from mapkit.cli import main
+    from mapkit_napari._analysis import AnalysisPanel
+    from mapkit.quantify import QuantModel
+
+    recipe = str(sample_dir / "tablet_recipe.toml")
+    assert main(["calibrate", str(sample_dir / "calibration_standards.csv"), "--library",
+                 str(sample_dir / "library"), "--recipe", recipe, "--model", "quadratic",
+                 "--out", str(tmp_path / "cli")]) == 0
+    viewer = make_napari_viewer()
+    viewer.open(str(sample_map_path), plugin="mapkit-napari")
+    panel = AnalysisPanel(viewer)
+    panel.recipe.setText(recipe)
+    panel.library.setText(str(sample_dir / "library"))
+    panel.standards.setText(str(sample_dir / "calibration_standards.csv"))
+    panel.cal_model.setCurrentText("quadratic")
+    model = panel.fit_calibration()
+    cli = QuantModel.load(tmp_path / "cli" / "quant_model.json")
+    s, c = model.calibration.summary(), cli.calibration.summary()
+    np.testing.assert_allclose(s["coefficients"], c["coefficients"], rtol=1e-10)
+    assert s["lod"] == pytest.approx(c["lod"]) and s["loq"] == pytest.approx(c["loq"])
+    assert "LOD" in panel.cal_status.text() and not panel.cal_plot.pixmap().isNull()
+    saved = panel.save_calibration(tmp_path / "quant_model.json")
+    assert QuantModel.load(saved).calibration.summary()["coefficients"] == \
+        pytest.approx(c["coefficients"])
+    from mapkit_napari._optical import MicrographPanel
+
+    under = MicrographPanel(viewer)          # a micrograph under the map: results see-through
+    under.image_path.setText(str(sample_dir / "tablet_micrograph.png"))
+    assert under.add_micrograph() is not None
+    worker = panel.apply_calibration()
+    with qtbot.waitSignal(worker.finished, timeout=120000):
+        pass
+    content = [layer for layer in viewer.layers if layer.name.startswith("concentration")]
+    assert content and all(layer.opacity < 1 for layer in content)
+
+
+def test_clicked_pairs_register_the_micrograph(make_napari_viewer, sample_dir, sample_map_path,
+                                               tmp_path):
+    from mapkit_napari._optical import MicrographPanel
+    from mapkit.read.optical import read_control_points, read_optical, read_placed_image
+    from mapkit.samples import micrograph_matrix
+
+    viewer = make_napari_viewer()
+    viewer.open(str(sample_map_path), plugin="mapkit-napari")
+    panel = MicrographPanel(viewer)
+    panel.image_path.setText(str(sample_dir / "tablet_micrograph.png"))
+    assert panel.add_micrograph() is not None
+    img = read_optical(sample_dir / "tablet_micrograph.png")
+    on_image, on_map = read_control_points(sample_dir / "tablet_micrograph_points.csv", img)
+    points = panel.points_layer()
+    for (xi, yi), (xm, ym) in zip(on_image, on_map):   # micrograph first, then the map
+        points.add([yi, xi])
+        points.add([ym, xm])
+    placed = panel.register()
+    assert placed.registration["pairs"] == 6 and "RMS" in panel.status.text()
+    # the same fit as the library makes from the pairs in the file (clicks → coordinates
+    # lose nothing), and close to the transform the micrograph was rendered with
+    from mapkit.register import ControlPointRegistration
+
+    ref = ControlPointRegistration("similarity").fit(on_image, on_map).matrix_
+    np.testing.assert_allclose(placed.matrix, ref, atol=1e-9)
+    np.testing.assert_allclose(placed.matrix, micrograph_matrix(), atol=0.05)
+    written = panel.save(tmp_path / "with_micrograph.h5")
+    np.testing.assert_allclose(read_placed_image(written).matrix, placed.matrix)
+
+
+def test_screenshot_with_micrograph_and_legend(make_napari_viewer, optical_results, qtbot,
+                                              tmp_path):
+    from mapkit_napari._legend import ClassLegend
+    from mapkit_napari._panel import SpectrumPanel
+
+    viewer = make_napari_viewer(show=True)
+    viewer.open(str(optical_results / "results.h5"), plugin="mapkit-napari")
+    spectra = SpectrumPanel(viewer)
+    legend = ClassLegend(viewer, on_class=spectra.show_class_spectrum)
+    viewer.window.add_dock_widget(spectra, area="right", name="Pixel spectra")
+    viewer.window.add_dock_widget(legend, area="right", name="Class legend")
+    viewer.window._qt_window.resize(1500, 950)
+    for layer in viewer.layers:
+        layer.visible = layer.name in ("micrograph", "kmeans: classes")
+    viewer.layers.selection.active = viewer.layers["kmeans: classes"]
+    legend.select(0)
+    viewer.reset_view()
+    qtbot.wait(300)
+    _screenshot(viewer, tmp_path, "viewer_micrograph.png")
+
+
+def test_screenshot_of_the_calibration_panel(make_napari_viewer, sample_map_path, sample_dir,
+                                             qtbot, tmp_path):
+    from mapkit_napari._analysis import AnalysisPanel
+
+    viewer = make_napari_viewer(show=True)
+    viewer.open(str(sample_map_path), plugin="mapkit-napari")
+    panel = AnalysisPanel(viewer)
+    viewer.window.add_dock_widget(panel, area="right", name="Map analysis")
+    viewer.window._qt_window.resize(1500, 1000)
+    panel.library.setText(str(sample_dir / "library"))
+    panel.recipe.setText(str(sample_dir / "tablet_recipe.toml"))
+    panel.standards.setText(str(sample_dir / "calibration_standards.csv"))
+    panel.cal_model.setCurrentText("quadratic")
+    from qtpy.QtWidgets import QGroupBox
+
+    box, = panel.findChildren(QGroupBox)
+    assert not panel.standards.isVisibleTo(panel)      # folded away until asked for
+    box.setChecked(True)
+    assert panel.standards.isVisibleTo(panel)
+    assert panel.fit_calibration() is not None
+    qtbot.wait(300)
+    _screenshot(viewer, tmp_path, "viewer_calibration.png")

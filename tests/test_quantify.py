@@ -8,8 +8,8 @@ from mapkit.core.result import Axis
 from mapkit.quantify import LinearCalibration, concentration_map
 
 # Worked calibration set (Miller & Miller, Statistics and Chemometrics for Analytical
-# Chemistry, fluorescence example): x = 0..12, y as below. Expected values computed from
-# the data with the textbook formulas (shared/REFERENCE_VALUES.md): b = 1.93036,
+# Chemistry, fluorescence example): x = 0..12, y as below. Expected values computed by hand
+# from the data with the book's formulas (ch. 5): b = 1.93036,
 # a = 1.51786, r = 0.99888, s_y/x = 0.43285; y0 = 2.9 -> x0 = 0.716, s_x0 = 0.265 (m = 1);
 # ICH Q2(R2) LOD = 3.3 s_y/x / b = 0.740, LOQ = 10 s_y/x / b = 2.242.
 X = [0, 2, 4, 6, 8, 10, 12]
@@ -49,6 +49,9 @@ def test_bad_calibrations(x, y, words):
 
 
 def test_concentration_map_flags():
+    # ICH Q2(R2) (2023): results below LOQ are not quantitative, below LOD not detected;
+    # outside the calibrated range is extrapolation (the worked line above: LOD 0.740,
+    # LOQ 2.242, range 0-12)
     cal = LinearCalibration().fit(X, Y)
     resp = np.array([[2.0, 12.6], [40.0, np.nan]])
     x0, s_x0 = cal.inverse(resp)
@@ -76,6 +79,11 @@ def test_quadratic_and_weighted_fits_match_numpy_polyfit():
     # numpy.polyfit weights multiply the residuals: w = 1/sigma = sqrt(weight)
     np.testing.assert_allclose(wls.coef_, np.polyfit(x, y, 1, w=np.sqrt(wls.w_))[::-1],
                                rtol=1e-9)
+    # r is the weighted correlation (numpy's weighted covariance, aweights = the WLS weights)
+    c = np.cov(x, y, aweights=wls.w_)
+    assert wls.r_ == pytest.approx(c[0, 1] / np.sqrt(c[0, 0] * c[1, 1]), rel=1e-9)
+    assert wls.r2_ == pytest.approx(wls.r_ ** 2, rel=1e-9)
+    assert wls.r_ != pytest.approx(np.corrcoef(x, y)[0, 1], rel=1e-6)
     # the quadratic reads its own standards back
     x0, s_x0 = quad.inverse(quad.predict(np.array([5.0, 25.0])))
     np.testing.assert_allclose(x0, [5.0, 25.0], atol=1e-9)
@@ -144,28 +152,83 @@ def test_pls_calibration_matches_sklearn_and_predicts(sample_dir):
 
 
 # --- physics: anti-Stokes/Stokes thermometry and the Cancado crystallite size
-def test_boltzmann_ratio_for_silicon_and_back():
+#: second radiation constant c2 = hc/k = 1.438776877e-2 m K (CODATA 2018: Tiesinga et al.
+#: 2021, Rev. Mod. Phys. 93:025010), written out rather than taken from the code
+C2 = 1.438776877
+
+
+def _ratio_by_hand(t, shift, laser, n):
+    """I_aS/I_S = [(nu0 + nu)/(nu0 - nu)]^n exp(-c2 nu / T): n = 3 for photon counting,
+    n = 4 for energy detection (Malyj & Griffiths 1983, Appl. Spectrosc. 37:315; from memory)."""
+    nu0 = 1e7 / laser
+    return ((nu0 + shift) / (nu0 - shift)) ** n * np.exp(-C2 * shift / t)
+
+
+def test_boltzmann_ratio_for_silicon_defaults_to_photon_counting():
     from mapkit.quantify import stokes_antistokes_ratio, temperature_from_ratio
 
-    # computed from the Boltzmann factor with scipy.constants (shared/REFERENCE_VALUES.md):
-    # Si 520.7 1/cm, 532 nm, 298.15 K -> 0.1012 with the nu^4 term, 0.0957 with nu^3
-    r4 = stokes_antistokes_ratio(298.15, 520.7, 532.0, exponent=4)
-    r3 = stokes_antistokes_ratio(298.15, 520.7, 532.0, exponent=3)
-    assert r4 == pytest.approx(0.1012, abs=5e-5) and r3 == pytest.approx(0.0957, abs=5e-5)
-    assert temperature_from_ratio(r4, 520.7, 532.0, 4) == pytest.approx(298.15, abs=1e-9)
-    assert temperature_from_ratio(r3, 520.7, 532.0, 3) == pytest.approx(298.15, abs=1e-9)
+    # worked example by hand: Si 520.7 1/cm, 532 nm, 298.15 K; nu0 = 18796.99 1/cm,
+    # frequency factor 1.056981, Boltzmann factor exp(-2.51273) = 0.08105
+    # -> 0.09571 with n = 3 (CCD), 0.10116 with n = 4
+    assert stokes_antistokes_ratio(298.15, 520.7, 532.0) == pytest.approx(0.09571, abs=2e-5)
+    assert stokes_antistokes_ratio(298.15, 520.7, 532.0, exponent=4) == pytest.approx(
+        0.10116, abs=2e-5)
+    for t in (77.0, 298.15, 600.0):
+        for n in (3, 4):
+            assert stokes_antistokes_ratio(t, 520.7, 532.0, exponent=n) == pytest.approx(
+                _ratio_by_hand(t, 520.7, 532.0, n), rel=1e-7)
+            assert temperature_from_ratio(_ratio_by_hand(t, 520.7, 532.0, n), 520.7, 532.0,
+                                          exponent=n) == pytest.approx(t, rel=1e-7)
+    # the default reads a photon-count ratio right; reading it as energy detection gives
+    # 291.7 K for 298.15 K (the bias the default avoids)
+    r = _ratio_by_hand(298.15, 520.7, 532.0, 3)
+    assert temperature_from_ratio(r, 520.7, 532.0) == pytest.approx(298.15, rel=1e-7)
+    assert temperature_from_ratio(r, 520.7, 532.0, exponent=4) == pytest.approx(291.72, abs=0.05)
+
+
+def test_temperature_map_carries_detector_and_response_caution():
+    from mapkit import RamanMap
+    from mapkit.quantify import temperature_map
+
+    shift = np.linspace(-700, 700, 1401)
+    band = lambda c: 20000 / (1 + ((shift - c) / 2.0) ** 2)  # noqa: E731
+    spec = band(520.7) + _ratio_by_hand(350.0, 520.7, 532.0, 3) * band(-520.7)
+    m = RamanMap(np.tile(spec, (2, 2, 1)), raman_shift=shift, x=np.arange(2.0),
+                 y=np.arange(2.0), laser_wavelength=532.0)
+    r = temperature_map(m, 520.7, 12.0)
+    assert r.summary["median_K"] == pytest.approx(350.0, abs=1.0)
+    assert r.summary["detector"] == "photon counting"
+    assert "relative spectral response" in r.summary["caution"]
+    with pytest.raises(MapkitError, match="not 3 or 4"):
+        temperature_map(m, 520.7, 12.0, exponent=2)
 
 
 def test_cancado_crystallite_size():
-    from mapkit.quantify import crystallite_size
+    from mapkit import RamanMap
+    from mapkit.quantify import crystallite_size, crystallite_size_map
 
     # Cancado et al. 2006, Appl. Phys. Lett. 88:163106: L_a = 2.4e-10 lambda^4 / (I_D/I_G)
+    # (constant from memory); by hand 2.4e-10 * 532^4 = 19.22 nm, 514.5 nm -> 16.81 nm
     assert crystallite_size(1.0, 532.0) == pytest.approx(19.2, abs=0.05)
     assert crystallite_size(1.0, 514.5) == pytest.approx(16.8, abs=0.05)
     assert crystallite_size(2.0, 532.0) == pytest.approx(19.22 / 2, abs=0.05)
+    # pixels outside the relation's range (about 20-500 nm, from memory) are flagged:
+    # I_D/I_G = 0.1, 0.5, 2 at 532 nm -> 192, 38, 9.6 nm; only the last is outside
+    shift = np.linspace(1100, 1800, 701)
+    lor = lambda c: 1 / (1 + ((shift - c) / 1.5) ** 2)  # noqa: E731
+    cube = np.stack([1000 * (q * lor(1350) + lor(1580)) for q in (0.1, 0.5, 2.0)])[None]
+    m = RamanMap(cube, raman_shift=shift, x=np.arange(3.0), y=np.arange(1.0),
+                 laser_wavelength=532.0)
+    r = crystallite_size_map(m)
+    np.testing.assert_allclose(r.fields["crystallite_size"].data[0], [192.2, 38.4, 9.6],
+                               rtol=0.02)
+    assert r.fields["outside_validity"].data[0].tolist() == [0, 0, 1]
+    assert r.summary["outside_validity"] == 1
 
 
 def test_region_statistics():
+    # values worked by hand on a 4 x 5 ramp; a pixel is inside a polygon when its centre
+    # is (common practice); the four centres inside are listed by hand below
     from mapkit.quantify import class_regions, polygon_mask, region_statistics
 
     values = np.arange(20.0).reshape(4, 5)

@@ -155,3 +155,152 @@ def test_block_reads_give_the_same_cube(sample_map_path, block_bytes):
     elif block_bytes > want.nbytes:
         assert m.intensity.numblocks == (1, 1, 1)
     np.testing.assert_array_equal(m.intensity.compute(), want)
+
+
+def _foreign(path, cube, shift, shift_units=None, x=None, y=None, labels=None):
+    """A 'foreign' HDF5 file: a cube stored in its own axis order, axes as plain datasets."""
+    with h5py.File(path, "w") as f:
+        d = f.create_dataset("data/cube", data=cube)
+        s = f.create_dataset("data/axis", data=shift)
+        if shift_units is not None:
+            s.attrs["units"] = shift_units
+        if x is not None:
+            f["data/x"] = x
+        if y is not None:
+            f["data/y"] = y
+        if labels:
+            for k, name in enumerate(labels):
+                d.dims[k].label = name
+    return path
+
+
+def test_a_wavelength_axis_is_converted_with_the_laser(tmp_path):
+    # Raman shift = 10^7/laser - 10^7/wavelength (nm -> 1/cm; the definition of Stokes shift,
+    # e.g. Ferraro, Nakamoto & Brown 2003, Introductory Raman Spectroscopy, ch. 1, from memory):
+    # the silicon band at 520.7 1/cm lies at 547.157 nm under 532 nm excitation
+    from mapkit.read.dispatch import read_notes
+
+    wl = np.array([540.0, 547.157, 560.0, 580.0])
+    p = _foreign(tmp_path / "wl.h5", np.ones((2, 3, 4), np.float32), wl, shift_units="nm")
+    m = open_map(p, dataset="/data/cube", axes="y,x,raman_shift", shift="/data/axis",
+                 pixel_size=1, laser_wavelength=532.0)
+    assert m.raman_shift[1] == pytest.approx(520.7, abs=0.02)
+    assert np.all(np.diff(m.raman_shift) > 0) and m.raman_shift[0] < 520
+    assert any("in nm: converted" in n and "532 nm" in n for n in read_notes(m))
+    with pytest.raises(MapkitError, match="wavelength in nm.*--laser"):
+        open_map(p, dataset="/data/cube", axes="y,x,raman_shift", shift="/data/axis",
+                 pixel_size=1)
+
+
+@pytest.mark.parametrize("units", ["1/cm", "cm-1", "cm^-1", "cm⁻¹", "CM-1", "1/CM"])
+def test_cm1_spellings_are_raman_shift(tmp_path, units):
+    shift = np.array([100.0, 150, 200, 250])
+    p = _foreign(tmp_path / "a.h5", np.ones((2, 3, 4), np.float32), shift, shift_units=units)
+    m = open_map(p, dataset="/data/cube", axes="y,x,raman_shift", shift="/data/axis",
+                 pixel_size=1)
+    np.testing.assert_array_equal(m.raman_shift, shift)
+
+
+@pytest.mark.parametrize("units", ["eV", "um", "THz", "pixel"])
+def test_unknown_shift_units_are_refused(tmp_path, units):
+    p = _foreign(tmp_path / "a.h5", np.ones((2, 3, 4), np.float32), [1.0, 2, 3, 4],
+                 shift_units=units)
+    with pytest.raises(MapkitError, match=f"units '{units}' are neither") as err:
+        open_map(p, dataset="/data/cube", axes="y,x,raman_shift", shift="/data/axis",
+                 pixel_size=1, laser_wavelength=532)
+    assert "/data/axis" in str(err.value)
+
+
+def test_axes_are_checked_against_the_position_datasets(tmp_path):
+    cube = np.ones((5, 7, 4), np.float32)          # stored (y, x, shift): 5 rows, 7 columns
+    p = _foreign(tmp_path / "a.h5", cube, [100.0, 150, 200, 250], x=np.arange(7.0),
+                 y=np.arange(5.0))
+    m = open_map(p, dataset="/data/cube", axes="y,x,shift", shift="/data/axis",
+                 x="/data/x", y="/data/y")
+    assert m.shape == (5, 7, 4)
+    with pytest.raises(MapkitError) as err:           # the order given wrong
+        open_map(p, dataset="/data/cube", axes="x,y,shift", shift="/data/axis",
+                 x="/data/x", y="/data/y")
+    msg = str(err.value)
+    assert "--axes" in msg and "swapped" in msg and "check --axes" in msg
+
+
+def test_axes_are_checked_against_dimension_labels_and_the_shift_axis(tmp_path):
+    cube = np.ones((5, 7, 4), np.float32)
+    p = _foreign(tmp_path / "a.h5", cube, [100.0, 150, 200, 250], labels=("y", "x", "shift"))
+    with pytest.raises(MapkitError, match="--axes.*labels the dimensions.*pass --axes "
+                                          "y,x,raman_shift"):
+        open_map(p, dataset="/data/cube", axes="x,y,shift", shift="/data/axis", pixel_size=1)
+    q = _foreign(tmp_path / "b.h5", cube, [100.0, 150, 200, 250])
+    with pytest.raises(MapkitError, match="has 5; dimension 2 \\(4\\) matches; check --axes"):
+        open_map(q, dataset="/data/cube", axes="raman_shift,y,x", shift="/data/axis",
+                 pixel_size=1)
+
+
+def test_an_unconfirmed_axis_order_is_reported(tmp_path):
+    from mapkit.read.dispatch import read_notes
+
+    p = _foreign(tmp_path / "a.h5", np.ones((5, 7, 4), np.float32), [100.0, 150, 200, 250])
+    m = open_map(p, dataset="/data/cube", axes="x,y,shift", shift="/data/axis", pixel_size=1)
+    assert m.shape == (7, 5, 4)
+    notes = read_notes(m)
+    assert any("--axes x,y,raman_shift alone" in n and "7 rows (y) x 5 columns" in n
+               for n in notes), notes
+
+
+@pytest.mark.parametrize("axes", ["pixel,raman_shift", "raman_shift,pixel"])
+def test_a_stack_of_spectra_with_position_vectors(tmp_path, axes):
+    c = _cube()                                     # (2, 3, 4) on a 3 x 2 grid, 0.5 um steps
+    yy, xx = np.meshgrid([0.0, 0.5], [0.0, 0.5, 1.0], indexing="ij")
+    order = np.random.default_rng(3).permutation(6)  # spectra stored in scan order unknown
+    stack = c.reshape(6, 4)[order]
+    p = _foreign(tmp_path / "s.h5", stack if axes.startswith("pixel") else stack.T,
+                 [100.0, 150, 200, 250], x=xx.ravel()[order], y=yy.ravel()[order])
+    m = open_map(p, dataset="/data/cube", axes=axes, shift="/data/axis", x="/data/x",
+                 y="/data/y")
+    np.testing.assert_array_equal(np.asarray(m.intensity), c)
+    np.testing.assert_allclose(m.x, [0, 0.5, 1.0])
+    with pytest.raises(MapkitError, match="needs the position of each spectrum"):
+        open_map(p, dataset="/data/cube", axes=axes, shift="/data/axis", pixel_size=1)
+
+
+@pytest.mark.parametrize("header", ["x (µm),y (µm)", "x [μm],y [μm]", "X_um,Y_um"])
+def test_micro_sign_in_table_headers(tmp_path, header):
+    p = tmp_path / "t.csv"
+    p.write_text(f"{header},100,200\n0,0,1,2\n1,0,3,4\n")
+    m = open_map(p)
+    assert m.shape == (1, 2, 2) and m.x.tolist() == [0.0, 1.0]
+
+
+def _jittered(tmp_path, amplitude=0.02):
+    # a 6 x 8 grid of 1 um steps read back with +-0.02 um encoder jitter (common practice:
+    # stage readback rather than commanded positions)
+    rng = np.random.default_rng(7)
+    rows = ["x,y,100,200,300"]
+    for iy in range(6):
+        for ix in range(8):
+            jx, jy = rng.uniform(-amplitude, amplitude, 2)
+            rows.append(f"{ix + jx:.4f},{2 * iy + jy:.4f},{ix},{iy},1")
+    p = tmp_path / "jitter.csv"
+    p.write_text("\n".join(rows) + "\n")
+    return p
+
+
+def test_jittered_positions_snap_within_a_stated_tolerance(tmp_path):
+    from mapkit.read.dispatch import read_notes
+
+    p = _jittered(tmp_path)
+    with pytest.raises(MapkitError, match=r"not a rectangular grid: 48 distinct x and \d+ "
+                                          "distinct y values for 48 spectra.*--position-tol"):
+        open_map(p)
+    m = open_map(p, position_tolerance=0.05)
+    assert m.shape == (6, 8, 3)
+    np.testing.assert_allclose(m.x, np.arange(8.0), atol=0.02)
+    np.testing.assert_allclose(m.y, 2 * np.arange(6.0), atol=0.02)
+    cube = np.asarray(m.intensity)
+    np.testing.assert_array_equal(cube[..., 0], np.tile(np.arange(8.0), (6, 1)))
+    np.testing.assert_array_equal(cube[..., 1], np.tile(np.arange(6.0)[:, None], (1, 8)))
+    note, = read_notes(m)
+    assert "of 48 positions to a 6 x 8 grid" in note and "tolerance 0.05 um" in note
+    with pytest.raises(MapkitError, match="spread over more than the tolerance"):
+        open_map(_jittered(tmp_path, amplitude=0.3), position_tolerance=0.2)

@@ -164,7 +164,7 @@ def test_unmatched_components_name_the_best_candidate(tmp_path, capsys, sample_m
     assert main(["components", str(sample_map_path), "--library", str(sample_dir / "library"),
                  "--min-score", "0.99999", "--out", str(tmp_path), "--no-figures"]) == 0
     out = capsys.readouterr().out
-    assert "unmatched (best candidate " in out and "of 1, below the minimum score 0.99999)" in out
+    assert "unmatched (best candidate " in out and "on 0-1, below the minimum score 0.99999)" in out
 
 
 def test_analyse_takes_min_score_and_reports_the_best_candidate(tmp_path, capsys,

@@ -26,7 +26,8 @@ def safe_name(name: str) -> str:
 
 def write_bundle(outdir, m, results, *, stem: str, overwrite: bool = False, figures: bool = True,
                  inputs: dict | None = None, results_name: str = "results.h5",
-                 formats=("png",), write_h5: bool = True, csv: bool = True) -> list[Path]:
+                 formats=("png",), write_h5: bool = True, csv: bool = True,
+                 optical=None) -> list[Path]:
     """Write ``results`` of map ``m`` into ``outdir``; returns every path written.
 
     - ``results.h5``: the map and every result (docs/file-layout.md);
@@ -34,7 +35,9 @@ def write_bundle(outdir, m, results, *, stem: str, overwrite: bool = False, figu
       plus ``*_uncertainty.tif`` where a field carries errors;
     - ``<stem>_maps.csv``: long-form table of every image value per pixel;
     - with ``figures``, a figure per image (per component for stacks) and per spectra field,
-      in each of ``formats`` (``png``, ``svg``).
+      in each of ``formats`` (``png``, ``svg``);
+    - with ``optical`` (a placed micrograph), the micrograph in the results file and the
+      maps drawn over it (:func:`write_optical_figures`).
     """
     from .table import write_long_csv
 
@@ -42,7 +45,7 @@ def write_bundle(outdir, m, results, *, stem: str, overwrite: bool = False, figu
     written = []
     if write_h5:
         written.append(write_results_file(outdir / results_name, m, results, overwrite=overwrite,
-                                          inputs=inputs))
+                                          inputs=inputs, optical=optical))
     if csv:
         written.append(write_long_csv(outdir / f"{stem}_maps.csv", m, results,
                                       overwrite=overwrite))
@@ -89,6 +92,57 @@ def write_bundle(outdir, m, results, *, stem: str, overwrite: bool = False, figu
                 if fld.axis_names[-1] == "raman_shift" and fld.data.ndim == 2:
                     each_format(save_spectra_figure, f"{stem}_{r.name}_{fname}", fld,
                                 title=f"{r.name}: {fname}", names=names)
+    if figures and optical is not None:
+        written += write_optical_figures(outdir, stem, optical, results, overwrite=overwrite,
+                                         formats=formats)
+    return written
+
+
+#: results whose maps are drawn over the micrograph (components, classes, abundances, content)
+OVERLAID = ("nmf", "mcr", "kmeans", "classes", "unmixing", "concentration")
+
+
+def overlay_fields(results):
+    """(result, field, plane index or None, label, is_classes) of every map drawn over the
+    micrograph, in the order of ``results``."""
+    out = []
+    for r in results:
+        if r.name not in OVERLAID:
+            continue
+        for fname, fld in r.fields.items():
+            if not fld.is_image or fname in _NO_IMAGE_FILES or fname == "flags" \
+                    or fname == "residual":
+                continue
+            if fld.data.ndim == 3:
+                out += [(r, fld, k, f"{r.name}: {label}", False)
+                        for k, label in enumerate(fld.axes[0].values)]
+            elif fld.data.ndim == 2:
+                out.append((r, fld, None, f"{r.name}: {fname}", fld.signal == "labels"))
+    return out
+
+
+def write_optical_figures(outdir, stem, placed, results, *, overwrite=False, formats=("png",),
+                          opacity: float = 0.6) -> list[Path]:
+    """Each component, class and content map over the micrograph (``*_on_optical``), plus the
+    side-by-side view of the micrograph and the class map (``*_optical_side_by_side``)."""
+    outdir = Path(outdir)
+    written = []
+    side = None
+    for r, fld, k, label, classes in overlay_fields(results):
+        base = f"{stem}_{safe_name(label.replace(': ', '_'))}_on_optical"
+        for ext in formats:
+            written.append(save_image_figure(outdir / f"{base}.{ext}", fld, k,
+                                             title=f"{label} over the micrograph",
+                                             classes=classes, underlay=placed, opacity=opacity,
+                                             overwrite=overwrite))
+        if side is None or (classes and not side[3]):
+            side = (fld, k, label, classes)
+    if side is not None:
+        fld, k, label, classes = side
+        for ext in formats:
+            written.append(save_image_figure(outdir / f"{stem}_optical_side_by_side.{ext}", fld,
+                                             k, title=label, classes=classes, underlay=placed,
+                                             side_by_side=True, overwrite=overwrite))
     return written
 
 

@@ -80,17 +80,50 @@ def bit_categories(values, bits: dict) -> dict:
         names = [text for bit, text in bits.items() if int(v) & bit]
         out[int(v)] = " + ".join(names) if names else "none"
     return out
+def _draw_micrograph(ax, placed, extent, *, margin: float = 0.0, outline: bool = False,
+                     max_side: int = 1200):
+    """Draw a placed micrograph (mapkit.register.PlacedImage) under ``extent`` (µm), resampled
+    onto the map's frame at about its own pixel size; ``outline`` marks the map's edge."""
+    x0, x1, y1, y0 = extent          # image extents run top (y0) to bottom (y1)
+    w, h = abs(x1 - x0), abs(y1 - y0)
+    lo_x, hi_x = min(x0, x1) - margin * w, max(x0, x1) + margin * w
+    lo_y, hi_y = min(y0, y1) - margin * h, max(y0, y1) + margin * h
+    step = max(placed.pixel_size_on_map(), max(hi_x - lo_x, hi_y - lo_y) / max_side)
+    xs = np.arange(lo_x + step / 2, hi_x, step)
+    ys = np.arange(lo_y + step / 2, hi_y, step)
+    img = placed.resample(xs, ys)
+    if img.ndim == 2:
+        finite = img[np.isfinite(img)]
+        lo, hi = np.percentile(finite, [1, 99]) if finite.size else (0.0, 1.0)
+        ax.imshow(np.ma.masked_invalid(img), cmap="gray", vmin=lo, vmax=hi if hi > lo else lo + 1,
+                  extent=(lo_x, hi_x, hi_y, lo_y), interpolation="bilinear")
+    else:
+        rgba = np.dstack([np.nan_to_num(img), np.isfinite(img[..., 0]).astype(float)])
+        ax.imshow(np.clip(rgba, 0, 1), extent=(lo_x, hi_x, hi_y, lo_y),
+                  interpolation="bilinear")
+    if outline:
+        from matplotlib.patches import Rectangle
+
+        ax.add_patch(Rectangle((min(x0, x1), min(y0, y1)), w, h, fill=False,
+                               ec=CLASS_COLOURS[5], lw=1.2, label="Raman map"))
+    ax.set_xlim(lo_x, hi_x)
+    ax.set_ylim(hi_y, lo_y)
+    return (lo_x, hi_x, hi_y, lo_y)
 
 
 def save_image_figure(path, field: Field, index: int | None = None, *, title: str = "",
                       classes: bool = False, overwrite: bool = False, dpi: int = 150,
-                      class_names=None, categories: dict | None = None):
+                      class_names=None, categories: dict | None = None,
+                      underlay=None, opacity: float = 0.6, side_by_side: bool = False):
     """Save one image (a 2-D field, or plane ``index`` of a stack) as PNG or SVG.
 
     Quantities use the 2nd-98th percentile as colour limits (:func:`robust_limits`; the
     colourbar extends where values lie beyond). ``classes``: label images (0-based
     indices, -1 masked) drawn with a legend numbered from 1, with ``class_names`` where
     given. ``categories`` (value → text): a categorical legend, e.g. for bit fields.
+
+    ``underlay`` (a :class:`mapkit.register.PlacedImage`) draws the map at ``opacity`` over
+    the micrograph, or, with ``side_by_side``, the micrograph (map edge outlined) beside it.
     """
     from matplotlib.colors import BoundaryNorm, ListedColormap
     from matplotlib.patches import Patch
@@ -100,8 +133,19 @@ def save_image_figure(path, field: Field, index: int | None = None, *, title: st
     dy = abs(y[1] - y[0]) if len(y) > 1 else 1.0
     dx = abs(x[1] - x[0]) if len(x) > 1 else 1.0
     extent = (x[0] - dx / 2, x[-1] + dx / 2, y[-1] + dy / 2, y[0] - dy / 2)
-    fig = _figure(figsize=(5.2, 4.2), layout="constrained")
-    ax = fig.add_subplot()
+    if underlay is not None and side_by_side:
+        fig = _figure(figsize=(9.8, 4.2), layout="constrained")
+        left, ax = fig.subplots(1, 2)
+        around = _draw_micrograph(left, underlay, extent, margin=0.1, outline=True)
+        left.set_xlabel("x (µm)")
+        left.set_ylabel("y (µm)")
+        left.set_title("micrograph (map outlined)", fontsize=10)
+        _scale_bar(left, around)
+    else:
+        fig = _figure(figsize=(5.2, 4.2), layout="constrained")
+        ax = fig.add_subplot()
+        if underlay is not None:
+            _draw_micrograph(ax, underlay, extent, margin=0.05)
     if classes or categories is not None:
         if classes:
             n = max(int(np.nanmax(img)) + 1, 1) if np.isfinite(img).any() else 1
@@ -124,8 +168,9 @@ def save_image_figure(path, field: Field, index: int | None = None, *, title: st
             index_img[np.asarray(img) == v] = i
         cmap = ListedColormap(colours)
         cmap.set_bad("#bbbbbb")
-        ax.imshow(index_img, extent=extent, cmap=cmap, interpolation="nearest",
-                  norm=BoundaryNorm(np.arange(-0.5, len(values) + 0.5), len(values)))
+        im = ax.imshow(index_img, extent=extent, cmap=cmap, interpolation="nearest",
+                       norm=BoundaryNorm(np.arange(-0.5, len(values) + 0.5), len(values)))
+        cb = None
         handles = [Patch(facecolor=c, edgecolor="#555555", label=t)
                    for c, t in zip(colours, labels)]
         if max(len(t) for t in labels) > 24:   # long texts below the map, not beside it
@@ -148,6 +193,10 @@ def save_image_figure(path, field: Field, index: int | None = None, *, title: st
         if len(label) > 40:   # a long description would be cut off beside the bar
             label = field.signal
         cb.set_label(label + (f" ({field.units})" if field.units else ""))
+    if underlay is not None and not side_by_side:
+        im.set_alpha(opacity)
+        if cb is not None:
+            cb.solids.set_alpha(1)
     ax.set_xlabel("x (µm)")
     ax.set_ylabel("y (µm)")
     _scale_bar(ax, extent)

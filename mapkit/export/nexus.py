@@ -138,8 +138,62 @@ def _write_result(f, result: Result):
             g.create_dataset(k, data=v)
 
 
+def write_optical(f, placed):
+    """Write a :class:`~mapkit.register.PlacedImage` into an open HDF5 file (replacing one)."""
+    import h5py
+
+    img = placed.image
+    for p in (layout.OPTICAL, layout.OPTICAL_REGISTRATION):
+        if p in f:
+            del f[p]
+    g = f.create_group(layout.OPTICAL)
+    g.attrs["NX_class"] = "NXdata"
+    g.attrs["signal"] = "image"
+    rgb = img.data.ndim == 3
+    g.attrs["axes"] = ["y", "x", "channel"] if rgb else ["y", "x"]
+    g.attrs["y_indices"], g.attrs["x_indices"] = 0, 1
+    d = g.create_dataset("image", data=img.data, chunks=True)
+    d.attrs["long_name"] = "optical micrograph" + (" (RGB)" if rgb else " (grey)")
+    _write_axis(g, "y", img.y, "um")
+    _write_axis(g, "x", img.x, "um")
+    if rgb:
+        g.attrs["channel_indices"] = 2
+        g.create_dataset("channel", data=["red", "green", "blue"], dtype=h5py.string_dtype())
+    g.attrs["provenance"] = json.dumps(img.provenance(), sort_keys=True)
+    r = f.create_group(layout.OPTICAL_REGISTRATION)
+    r.attrs["NX_class"] = "NXcollection"
+    m = r.create_dataset("matrix", data=np.asarray(placed.matrix, float))
+    m.attrs["long_name"] = "(x, y, 1) in the micrograph's frame (um) -> (x, y, 1) on the map (um)"
+    reg = placed.registration
+    r.attrs["transform"] = reg["transform"] if reg else "none (pixel size and origin)"
+    if reg:
+        r.attrs["rms_um"] = float(reg["rms_um"])
+        for name in ("image_points_um", "map_points_um"):
+            _write_axis(r, name, np.asarray(reg[name], float).reshape(-1, 2), "um")
+        _write_axis(r, "residual_um", np.asarray(reg["residuals_um"], float), "um")
+
+
+def copy_with_optical(source, path, placed, *, overwrite: bool = False) -> Path:
+    """Write a copy of results file ``source`` holding the placed micrograph, atomically
+    (``source`` is left unchanged)."""
+    import shutil
+
+    import h5py
+
+    if Path(path).resolve() == Path(source).resolve():
+        from ..errors import MapkitError
+
+        raise MapkitError("the output would replace the input", file=path, field="--out",
+                          fix="give another file name")
+    with atomic_path(path, overwrite=overwrite) as tmp:
+        shutil.copyfile(source, tmp)
+        with h5py.File(tmp, "a") as f:
+            write_optical(f, placed)
+    return Path(path)
+
+
 def write_results_file(path, m: RamanMap, results=(), *, overwrite=False, compression=None,
-                       inputs: dict | None = None) -> Path:
+                       inputs: dict | None = None, optical=None) -> Path:
     """Write a map and its results into one new NeXus file, atomically.
 
     Parameters
@@ -154,6 +208,8 @@ def write_results_file(path, m: RamanMap, results=(), *, overwrite=False, compre
         ``"gzip"`` pays off only for integer-valued counts; default none.
     inputs : dict, optional
         Input files by role, e.g. ``{"map": "a.h5"}``; their SHA-256 is recorded.
+    optical : PlacedImage, optional
+        A micrograph placed on the map (``/entry/optical``, ``/entry/optical_registration``).
     """
     import h5py
 
@@ -169,6 +225,8 @@ def write_results_file(path, m: RamanMap, results=(), *, overwrite=False, compre
             _write_cube(f, m, compression)
             for r in results:
                 _write_result(f, r)
+            if optical is not None:
+                write_optical(f, optical)
             _write_provenance(f, m.provenance, {"inputs": recorded} if recorded else None)
     return Path(path)
 

@@ -62,8 +62,12 @@ def _fmt(v):
 
 
 def write_report(path, *, map_name: str, summary: dict, results, model=None, recipe_text="",
-                 inputs: dict | None = None, provenance=(), overwrite: bool = True) -> Path:
-    """Write the HTML report of an analysis (see ``mapkit analyse``)."""
+                 inputs: dict | None = None, provenance=(), overwrite: bool = True,
+                 optical=None) -> Path:
+    """Write the HTML report of an analysis (see ``mapkit analyse``).
+
+    ``optical`` (a placed micrograph) adds the maps drawn over it and the side-by-side view.
+    """
     res = {r.name: r for r in results}
     parts = []
     with tempfile.TemporaryDirectory() as tmpdir:
@@ -119,6 +123,8 @@ def write_report(path, *, map_name: str, summary: dict, results, model=None, rec
             parts.append(_calibration(model, fig))
         if "concentration" in res:
             parts.append(_concentration(res["concentration"], fig))
+        if optical is not None:
+            parts.append(_on_micrograph(optical, results, fig))
         parts.append("<h2>Provenance</h2>" + _table(
             [(s.name, _short(s.parameters)) for s in provenance], ["step", "parameters"])
             + _table(sorted(library_versions().items()), ["library", "version"]))
@@ -211,6 +217,47 @@ def _calibration(model, fig):
              ("LOQ (ICH Q2(R2), 10σ/S)", f"{s['loq']:.3g} {s['unit']}")]
     return ("<h2>Calibration</h2>" + _table(rows, ["quantity", "value"])
             + _img(fig(save_calibration_figure, cal), "wide"))
+
+
+def _on_micrograph(placed, results, fig):
+    from .bundle import overlay_fields
+
+    img = placed.image
+    dy, dx = img.pixel_size
+    rows = [("file", Path(img.source).name), ("SHA-256", img.sha256),
+            ("pixel size", f"{dx:g} × {dy:g} µm ({img.scale_from})"),
+            ("image", f"{img.shape[1]} × {img.shape[0]} pixels"
+                      + (f", reduced {img.downsampled}x" if img.downsampled > 1 else ""))]
+    if img.description:
+        rows.append(("description", img.description))
+    reg = placed.registration
+    table = ""
+    if reg:
+        rows += [("registration", f"{reg['transform']} from {len(reg['residuals_um'])} "
+                                  f"control-point pairs, RMS residual {reg['rms_um']:.3g} µm")]
+        table = _table([(k + 1, *(f"{v:.2f}" for v in ip), *(f"{v:.2f}" for v in mp), r)
+                        for k, (ip, mp, r) in enumerate(zip(reg["image_points_um"],
+                                                            reg["map_points_um"],
+                                                            reg["residuals_um"]))],
+                       ["pair", "image x (µm)", "image y (µm)", "map x (µm)", "map y (µm)",
+                        "residual (µm)"])
+    else:
+        rows.append(("registration", "none: placed by its pixel size and origin"))
+    figs = []
+    side = None
+    for r, fld, k, label, classes in overlay_fields(results):
+        figs.append(_img(fig(save_image_figure, fld, k, title=label, classes=classes,
+                             underlay=placed)))
+        if side is None or (classes and not side[3]):
+            side = (fld, k, label, classes)
+    wide = ""
+    if side is not None:
+        fld, k, label, classes = side
+        wide = _img(fig(save_image_figure, fld, k, title=label, classes=classes,
+                        underlay=placed, side_by_side=True), "wide")
+    return ("<h2>On the micrograph</h2><p>Each map drawn over the optical image of the "
+            "sample surface, in stage coordinates.</p>" + _table(rows, ["quantity", "value"])
+            + table + wide + f'<div class="figs">{"".join(figs)}</div>')
 
 
 def _concentration(r, fig):

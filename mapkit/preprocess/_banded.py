@@ -6,9 +6,10 @@ compiled kernel factorises the systems (LDLᵀ) of 16 spectra side by side (vect
 blocks of them in parallel, and releases the GIL; the whole reweighting loop of ALS,
 arPLS and airPLS runs compiled (weights computed lane by lane as baseline.py's numpy
 versions compute them). The numpy fallback runs the same recurrence
-along the channel axis, vectorised across spectra, when numba is unavailable. Measured on 2
-cores (benchmarks/RESULTS.md): the compiled ALS is ~60x a per-spectrum pybaselines loop,
-the numpy one ~1.1x, which is why the extra dependency is worth it.
+along the channel axis, vectorised across spectra, when numba is unavailable. Measured on a
+2-core VM on 2026-12-02 (benchmarks/RESULTS.md): the compiled ALS is 34.7x a per-spectrum
+pybaselines loop, one thread against one (45-60x on 2 threads against one), the numpy one
+~1.1x, which is why the extra dependency is worth it.
 """
 
 from __future__ import annotations

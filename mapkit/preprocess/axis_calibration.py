@@ -16,8 +16,8 @@ from scipy.optimize import OptimizeWarning, curve_fit
 from ..errors import MapkitError
 
 #: Raman shift standards, cm⁻¹: ASTM E1840-96 (R2022), "Standard Guide for Raman Shift
-#: Standards for Spectrometer Calibration" (values recalled from memory, see
-#: docs/sample-data.md; check against the standard before relying on them), and silicon
+#: Standards for Spectrometer Calibration" (values recalled from memory; check them
+#: against the standard before relying on them), and silicon
 #: from Itoh & Shirono 2020, J. Raman Spectrosc. 51:2496 (520.45 cm⁻¹).
 REFERENCE_SHIFTS = {
     "polystyrene": (620.9, 795.8, 1001.4, 1031.8, 1155.3, 1450.5, 1583.1, 1602.3, 2852.4,

@@ -19,7 +19,12 @@ Example::
     p = 0.01
 
 A recipe is checked completely (unknown steps, unknown or missing parameters, wrong
-types, values out of range) before any data is read; errors name the file and line.
+types, values out of range, reversed ranges such as ``low`` above ``high``) before any data
+is read; errors name the file and line. Once the map's shift axis is known (before its
+cube is read), :meth:`Recipe.check_axis` runs the steps on the axis alone: a crop or
+resample that leaves fewer channels than the later steps (or the analysis after the
+recipe) need, a band outside what is left, or a library that does not cover it, is
+refused with the recipe line.
 Every output records the recipe text in its provenance, so a result can be reproduced
 from the file alone.
 """
@@ -30,6 +35,8 @@ import re
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
+
+import numpy as np
 
 from ..core.provenance import Step
 from ..errors import MapkitError
@@ -106,10 +113,73 @@ class Recipe:
                 key = key and (key.group(1) or key.group(2))
                 at = _param_line(text, line, key) if key else where
                 raise MapkitError(exc.problem, file=source, field=at, fix=exc.fix) from None
+            _check_range(name, full, text, line, source)
             steps.append((name, full))
             lines.append(line)
         meta = doc.get("recipe", {})
         return cls(tuple(steps), str(meta.get("name", "")), text, source, tuple(lines))
+
+    def check_axis(self, shift, *, need: int = 0, why: str = "", library=None,
+                   notes: list | None = None):
+        """The shift axis after the recipe, computed from ``shift`` alone (no data read).
+
+        Refuses, naming the recipe line, a ``crop`` or ``resample`` that leaves fewer
+        channels than the steps after it need, or than ``need`` (what the analysis after
+        the recipe needs, described by ``why``, e.g. ``"NMF with 4 components"``); a
+        normalisation band or crop range outside the channels left; and, with
+        ``library``, a reference spectrum that does not cover the final axis. A crop or
+        resample that keeps less than a tenth of the channels without breaking a need is
+        not refused, but described in ``notes`` (a list to append to), with its line.
+        """
+        from . import axis as _axis
+
+        axis = np.asarray(shift, dtype=np.float64)
+        needs = [_channels_needed(name, params) for name, params in self.steps]
+        for k, (name, params) in enumerate(self.steps):
+            line = self.lines[k] if k < len(self.lines) else 0
+            where = f"line {line}" if line else f"step {k + 1}"
+            try:
+                if name == "crop":
+                    idx = _axis.crop_indices(axis, params["low"], params["high"])
+                    new = axis[int(idx[0]):int(idx[-1]) + 1]
+                elif name == "resample":
+                    n = int(np.floor((params["stop"] - params["start"]) / params["step"]
+                                     + 1e-9)) + 1
+                    new = params["start"] + params["step"] * np.arange(max(n, 1))
+                    if n >= 2:
+                        _axis.resample_matrix(axis, new)
+                elif name == "normalise" and params.get("method") == "band":
+                    _axis.crop_indices(axis, params["low"], params["high"])
+                    new = axis
+                elif name == "correct_axis":
+                    new = np.polynomial.polynomial.polyval(axis, params["coefficients"])
+                else:
+                    new = axis
+            except MapkitError as exc:
+                raise MapkitError(f"{name}: {exc.problem}", file=self.source, field=where,
+                                  fix=exc.fix) from None
+            if name in ("crop", "resample"):
+                later = [(needs[j][0], f"step {self.steps[j][0]!r} ({needs[j][1]})")
+                         for j in range(k + 1, len(self.steps)) if needs[j][0]]
+                if need:
+                    later.append((need, why or "the analysis after the recipe"))
+                if later:
+                    most, reason = max(later, key=lambda t: t[0])
+                    if new.size < most:
+                        span = f"{new.min():.1f}-{new.max():.1f} 1/cm" if new.size else "none"
+                        raise MapkitError(
+                            f"{name} keeps {new.size} of {axis.size} channels ({span}), fewer "
+                            f"than the {most} that {reason} needs", file=self.source,
+                            field=where, fix="check the range (a digit missing, e.g. 179 for "
+                                             "1790?) or widen it")
+                if notes is not None and 10 * new.size < axis.size:
+                    notes.append(f"{self.source}: {where}: {name} keeps {new.size} of "
+                                 f"{axis.size} channels ({new.min():.1f}-{new.max():.1f} "
+                                 "1/cm); check the range if that was not meant")
+            axis = new
+        for ref in library or ():
+            ref.on_axis(axis)
+        return axis
 
     def fingerprint(self):
         """The steps and parameters alone (comments and names ignored), for comparisons."""
@@ -143,7 +213,12 @@ class Recipe:
         return m, extras
 
     def iter_apply(self, m, *, spectra_only: bool = False, progress=None):
-        """Run the steps one by one, yielding (step name, map after it, by-products)."""
+        """Run the steps one by one, yielding (step name, map after it, by-products).
+
+        The axis is checked first (:meth:`check_axis`), so a crop that leaves too few
+        channels for a later step fails at the crop's line before any work.
+        """
+        self.check_axis(m.raman_shift)
         m = m.derive(m.intensity, Step("recipe", {"name": self.name, "source": self.source,
                                                    "text": self.text}))
         for name, params in self.steps:
@@ -154,6 +229,40 @@ class Recipe:
                 progress(name)
             m, extra = get_step(name).run(m, **params)
             yield name, m, extra
+
+
+#: pairs of parameters that bound a range: (step, method or None, low name, high name)
+_RANGES = (("crop", None, "low", "high"), ("normalise", "band", "low", "high"),
+           ("resample", None, "start", "stop"))
+
+
+def _check_range(name, params, text, line, source):
+    """Refuse a range written backwards (low above high): it is not swapped silently."""
+    for step, method, lo, hi in _RANGES:
+        if name != step or (method and params.get("method") != method):
+            continue
+        if params[lo] >= params[hi]:
+            raise MapkitError(f"{name} {lo} = {params[lo]:g} is not below {hi} = "
+                              f"{params[hi]:g} (a reversed range is not swapped)",
+                              file=source, field=_param_line(text, line, hi),
+                              fix=f"give {lo} < {hi}, both in 1/cm")
+
+
+def _channels_needed(name, params):
+    """Channels a step needs to run, and why: (0, "") when it has no particular need."""
+    if name == "smooth" and params.get("method") == "savgol":
+        return params["window"], f"window = {params['window']}"
+    if name == "derivative":
+        return params["window"], f"window = {params['window']}"
+    if name == "baseline":
+        if params.get("method") == "modpoly":
+            return params["order"] + 2, f"order = {params['order']}"
+        if params.get("method") == "rolling":
+            return 3, "a rolling window"
+        return 3, "a second-difference penalty"
+    if name == "scatter_correction":
+        return params.get("order", 0) + 2, f"order = {params.get('order', 0)}"
+    return 0, ""
 
 
 def _line_of(text, pattern):

@@ -353,7 +353,11 @@ def _scatter(m, method, order=0):
           Param("low", float, 0.0, "lowest shift kept, cm⁻¹", required=True),
           Param("high", float, 0.0, "highest shift kept, cm⁻¹", required=True))
 def _crop(m, low, high):
-    """Keep the channels between low and high cm⁻¹."""
+    """Keep the channels between low and high cm⁻¹ (low below high: not swapped)."""
+    if low >= high:
+        raise MapkitError(f"crop low = {low:g} is not below high = {high:g} (a reversed "
+                          "range is not swapped)", field="step 'crop'",
+                          fix="give low < high, both in 1/cm")
     idx = _axis.crop_indices(m.raman_shift, low, high)
     sel = slice(int(idx[0]), int(idx[-1]) + 1)
     return m.derive(m.intensity[:, :, sel], Step("crop", {"low": low, "high": high}),
@@ -404,13 +408,24 @@ def _correct_axis(m, coefficients):
                     raman_shift=new), {}
 
 
-def describe_steps() -> str:
-    """Plain-text listing of every step and its parameters (for ``mapkit steps``)."""
+def describe_steps(recipe=None) -> str:
+    """Plain-text listing of every step and its parameters (for ``mapkit steps``).
+
+    A parameter's default is the step's own (what a recipe that omits it gets); with a
+    ``recipe`` (e.g. the default recipe) each value that recipe sets differently is named
+    beside it, so the two cannot be confused.
+    """
+    chosen = {}
+    for name, params in (recipe.steps if recipe is not None else ()):
+        chosen.setdefault(name, params)
     lines = []
     for spec in STEPS.values():
         lines.append(f"{spec.name}: {spec.doc}")
         for p in spec.params:
             scope = f" [method {', '.join(p.methods)}]" if p.methods else ""
             default = "required" if p.required else f"default {p.default!r}"
+            used = chosen.get(spec.name, {})
+            if p.name in used and used[p.name] != p.default:
+                default += f"; the {recipe.name} recipe uses {used[p.name]!r}"
             lines.append(f"    {p.name} ({p.allowed()}; {default}){scope}: {p.doc}")
     return "\n".join(lines)

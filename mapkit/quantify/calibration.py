@@ -46,6 +46,7 @@ class PolynomialCalibration(RegressorMixin, BaseEstimator):
     coef_ : array (degree + 1,)
         b₀, b₁[, b₂].
     slope_, intercept_, r_, r2_, s_yx_, lod_, loq_ : float
+        ``r_`` and ``r2_`` are weighted like the fit (``weighting="replicates"``).
     x_range_ : (float, float)
         Lowest and highest standard: results outside are flagged.
     residuals_ : array
@@ -142,8 +143,10 @@ class PolynomialCalibration(RegressorMixin, BaseEstimator):
                               fix="check that the response band belongs to the analyte")
         ss_tot = float(np.sum(w * (y - np.average(y, weights=w)) ** 2))
         self.r2_ = 1 - float(np.sum(w * resid ** 2)) / ss_tot if ss_tot > 0 else 1.0
-        self.r_ = float(np.corrcoef(x, y)[0, 1]) if self.degree == 1 else float(
-            np.sqrt(max(self.r2_, 0)))
+        # r is the (weighted, when weights are used) correlation of the fit: for a line,
+        # sign(b1)·sqrt(R²_w), which is the weighted Pearson correlation of x and y
+        root = float(np.sqrt(max(self.r2_, 0)))
+        self.r_ = float(np.copysign(root, beta[1])) if self.degree == 1 else root
         self.intercept_ = float(beta[0])
         self.slope_ = float(beta[1])
         self.s_yx_ = float(np.sqrt(s2))

@@ -1,7 +1,7 @@
 """A quantification model: the response definition, the calibration and how spectra were cleaned.
 
 Fitted once from standards (``mapkit calibrate``), saved as JSON, and applied to any map
-(``mapkit analyse --model``, ``mapkit batch``). Applying it refuses a map cleaned with
+(``mapkit analyse --model-file``, ``mapkit batch --model-file``). Applying it refuses a map cleaned with
 another recipe, a different analyte, or a library that lacks its references.
 """
 

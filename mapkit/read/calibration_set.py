@@ -2,7 +2,9 @@
 
 Layout: optional comment lines, one of which may read
 ``# analyte: NAME; unit: UNIT``; then a header ``standard,concentration,<shift>,<shift>,…``
-and one row per spectrum (the standard's name, its known content, intensities).
+and one row per spectrum (the standard's name, its known content, intensities). Without
+the comment the analyte must be named otherwise (``--analyte``): ``analyte_named`` says
+whether the file named it.
 """
 
 from __future__ import annotations
@@ -26,6 +28,7 @@ class CalibrationSet:
     analyte: str
     unit: str
     source: str
+    analyte_named: bool = True
 
 
 def read_calibration_set(path) -> CalibrationSet:
@@ -33,6 +36,7 @@ def read_calibration_set(path) -> CalibrationSet:
     if not path.is_file():
         raise MapkitError("calibration standards file not found", file=path, fix="check the path")
     analyte, unit = "analyte", "% w/w"
+    named = False
     header = None
     names, conc, rows = [], [], []
     for lineno, line in enumerate(path.read_text(encoding="utf-8-sig").splitlines(), 1):
@@ -42,6 +46,7 @@ def read_calibration_set(path) -> CalibrationSet:
             ma = re.search(r"analyte:\s*([^;]+)", line)
             mu = re.search(r"unit:\s*([^;]+)", line)
             analyte = ma.group(1).strip() if ma else analyte
+            named = named or bool(ma)
             unit = mu.group(1).strip() if mu else unit
             continue
         cells = [c.strip() for c in line.split(",")]
@@ -60,12 +65,19 @@ def read_calibration_set(path) -> CalibrationSet:
         if len(cells) != len(header):
             raise MapkitError(f"line {lineno} has {len(cells)} values, the header has {len(header)}",
                               file=path, field=f"line {lineno}", fix="make every row complete")
-        try:
-            c = float(cells[1]) if cells[1] else np.nan
-            vals = [float(v) for v in cells[2:]]
-        except ValueError:
-            raise MapkitError(f"line {lineno} holds a value that is not a number", file=path,
-                              field=f"line {lineno}", fix="use '.' as decimal separator") from None
+        vals = []
+        for col, cell in enumerate(cells[1:], 1):
+            if col == 1 and not cell:
+                vals.append(np.nan)   # a missing concentration: reported below
+                continue
+            try:
+                vals.append(float(cell))
+            except ValueError:
+                what = f"value {cell!r}" if cell else "an empty value"
+                raise MapkitError(f"{what} in column {header[col]!r} (column {col + 1}) is not "
+                                  "a number", file=path, field=f"line {lineno}",
+                                  fix="write numbers with '.' as the decimal separator") from None
+        c, vals = vals[0], vals[1:]
         if not np.isfinite(c) or c < 0:
             raise MapkitError(f"standard {cells[0]!r} has a missing or negative concentration",
                               file=path, field="concentration",
@@ -76,4 +88,5 @@ def read_calibration_set(path) -> CalibrationSet:
     if header is None or not rows:
         raise MapkitError("no standards in the file", file=path, fix="add one row per spectrum")
     shift = check_axis(shift, name="raman_shift", source=str(path), field_path="header")
-    return CalibrationSet(names, np.array(conc), shift, np.array(rows), analyte, unit, str(path))
+    return CalibrationSet(names, np.array(conc), shift, np.array(rows), analyte, unit, str(path),
+                          named)

@@ -9,6 +9,7 @@ import numpy as np
 from .. import layout
 from ..core.ramanmap import DIMS, RamanMap
 from ..errors import MapkitError
+from .dispatch import read_steps
 
 _AXIS_ALIASES = {"y": "y", "row": "y", "x": "x", "col": "x", "column": "x",
                  "raman_shift": "raman_shift", "shift": "raman_shift", "s": "raman_shift",
@@ -99,67 +100,252 @@ def _grouped_tiles(tile, shape, itemsize, block_bytes):
     return min(ky * ty, ny), min(kx * tx, nx), ns
 
 
-def parse_axes(axes) -> tuple[str, str, str]:
+_PIXEL = ("pixel", "pixels", "point", "points", "spectrum", "spectra")
+
+#: spellings of units on a foreign shift dataset: Raman shift in cm⁻¹, or wavelength in nm
+SHIFT_UNITS = ("1/cm", "cm-1", "cm^-1", "cm**-1", "cm⁻¹", "1/cm⁻¹", "rcm", "wavenumber",
+               "wavenumbers", "raman shift", "raman_shift", "/cm")
+WAVELENGTH_UNITS = ("nm", "nanometer", "nanometers", "nanometre", "nanometres")
+#: spellings of position units and their factor to µm
+POSITION_UNITS = {"um": 1.0, "µm": 1.0, "μm": 1.0, "micron": 1.0, "microns": 1.0,
+                  "micrometer": 1.0, "micrometre": 1.0, "micrometers": 1.0,
+                  "micrometres": 1.0, "mm": 1e3, "nm": 1e-3, "m": 1e6}
+
+
+def parse_axes(axes, ndim: int = 3) -> tuple[str, ...]:
     """Normalise an axis-order statement such as ``"x,y,shift"`` to canonical names.
+
+    A 3-D cube names y, x and raman_shift once each; a 2-D stack of spectra names
+    ``pixel`` and raman_shift.
 
     Examples
     --------
     >>> parse_axes("shift, x, y")
     ('raman_shift', 'x', 'y')
+    >>> parse_axes("spectrum,shift", ndim=2)
+    ('pixel', 'raman_shift')
     """
     parts = axes.split(",") if isinstance(axes, str) else list(axes)
-    names = tuple(_AXIS_ALIASES.get(p.strip().lower(), p.strip()) for p in parts)
-    if sorted(names) != sorted(DIMS):
-        raise MapkitError(f"axis order {axes!r} must name y, x and raman_shift once each",
-                          field="axes", fix="for example --axes y,x,raman_shift")
+    names = tuple("pixel" if p.strip().lower() in _PIXEL else
+                  _AXIS_ALIASES.get(p.strip().lower(), p.strip()) for p in parts)
+    want = DIMS if ndim == 3 else ("pixel", "raman_shift")
+    if sorted(names) != sorted(want):
+        example = "y,x,raman_shift" if ndim == 3 else "pixel,raman_shift"
+        raise MapkitError(f"axis order {axes!r} must name {', '.join(want[:-1])} and "
+                          f"raman_shift once each for a {ndim}-D dataset", field="--axes",
+                          fix=f"for example --axes {example}")
     return names
+
+
+def _units(d):
+    u = d.attrs.get("units", d.attrs.get("unit"))
+    if isinstance(u, bytes):
+        u = u.decode("utf-8", "replace")
+    if isinstance(u, np.ndarray) and u.size == 1:
+        u = u.item()
+        u = u.decode("utf-8", "replace") if isinstance(u, bytes) else u
+    return None if u is None else str(u).strip()
 
 
 def read_hdf5_dataset(path, dataset_path: str, *, axes, shift_path: str,
                       x_path: str | None = None, y_path: str | None = None,
-                      pixel_size: float | None = None, laser_wavelength=None) -> RamanMap:
-    """A map from any 3-D HDF5 dataset, with its axis order stated by the caller.
+                      pixel_size: float | None = None, laser_wavelength=None,
+                      position_tolerance: float | None = None) -> RamanMap:
+    """A map from any 3-D HDF5 dataset, or a 2-D stack of spectra with positions.
 
     Parameters
     ----------
     path : path-like
     dataset_path : str
-        Path of the intensity cube inside the file.
+        Path of the intensity cube inside the file: 3-D ``(y, x, raman_shift)`` in any
+        order, or 2-D ``(pixel, raman_shift)`` in either order.
     axes : str or sequence
-        The cube's axis order, e.g. ``"x,y,raman_shift"``; it is transposed to
-        mapkit's ``(y, x, raman_shift)``.
+        The dataset's axis order, e.g. ``"x,y,raman_shift"`` or ``"pixel,raman_shift"``;
+        it is transposed to mapkit's ``(y, x, raman_shift)``. It is checked against
+        what the file can confirm: HDF5 dimension labels, the length of the shift
+        dataset and of the position datasets.
     shift_path : str
-        Dataset holding the Raman shift of each channel (cm⁻¹).
+        Dataset holding the shift axis. Its ``units`` attribute is honoured: cm⁻¹
+        spellings (``1/cm``, ``cm-1``, ``cm^-1``, ``cm⁻¹``) are read as Raman shift, ``nm``
+        as scattered wavelength, converted with ``laser_wavelength`` (refused without
+        it); other units are refused. Without ``units`` the axis is read as cm⁻¹.
     x_path, y_path : str, optional
-        Datasets holding stage positions in µm. Without them, ``pixel_size``
-        (µm) must be given and positions start at 0.
+        Datasets holding stage positions in µm (``units`` um, mm, nm or m are
+        converted): one per column/row of a cube, or one per spectrum of a 2-D stack.
+        Without them, ``pixel_size`` (µm) must be given and positions start at 0.
+    position_tolerance : float, optional
+        For a 2-D stack: snap positions within this many µm onto a grid.
+
+    What the reader converted or could not confirm is recorded as ``read`` steps in
+    the map's provenance (:func:`mapkit.read.dispatch.read_notes`).
     """
-    order = parse_axes(axes)
     with open_h5(path) as f:
-        return _read_dataset(f, path, dataset_path, order, shift_path, x_path, y_path,
-                             pixel_size, laser_wavelength)
+        return _read_dataset(f, path, dataset_path, axes, shift_path, x_path, y_path,
+                             pixel_size, laser_wavelength, position_tolerance)
 
 
-def _read_dataset(f, path, dataset_path, order, shift_path, x_path, y_path, pixel_size,
-                  laser_wavelength):
+def _shift_axis(f, path, shift_path, laser_wavelength, hint):
+    """The shift dataset as Raman shift in cm⁻¹, and a note of what was done to it."""
+    d = dataset(f, shift_path, source=path, hint=hint)
+    values = np.asarray(d[...], dtype=np.float64)
+    units = _units(d)
+    if units is None:
+        return values, f"{shift_path} has no units attribute: read as Raman shift in 1/cm"
+    key = units.lower().replace(" ", "")
+    if key in {u.replace(" ", "") for u in SHIFT_UNITS}:
+        return values, None
+    if key in WAVELENGTH_UNITS:
+        if laser_wavelength is None:
+            raise MapkitError("the shift axis is a wavelength in nm, and the laser wavelength "
+                              "is unknown", file=path, field=f"{shift_path} (units)",
+                              fix="pass --laser NM to convert it to Raman shift, or store the "
+                                  "axis in 1/cm")
+        from ..preprocess.axis import wavelength_to_shift
+
+        if values.ndim == 1 and values.size and np.nanmin(values) <= 0:
+            raise MapkitError("a wavelength axis holds zero or negative values", file=path,
+                              field=shift_path, fix="store wavelengths in nm")
+        shift = wavelength_to_shift(values, laser_wavelength)
+        return shift, (f"{shift_path} is in nm: converted to Raman shift with the "
+                       f"{float(laser_wavelength):g} nm laser (10^7/laser - 10^7/wavelength; "
+                       f"{shift.min():.1f} to {shift.max():.1f} 1/cm)")
+    raise MapkitError(f"shift axis units {units!r} are neither Raman shift (1/cm) nor "
+                      "wavelength (nm)", file=path, field=f"{shift_path} (units)",
+                      fix="set the units attribute to 1/cm or nm, or convert the axis")
+
+
+def _positions(f, path, p, hint):
+    d = dataset(f, p, source=path, hint=hint)
+    values = np.asarray(d[...], dtype=np.float64)
+    units = _units(d)
+    if units is None:
+        return values
+    factor = POSITION_UNITS.get(units) or POSITION_UNITS.get(units.lower())
+    if factor is None:
+        raise MapkitError(f"position units {units!r} are not a length", file=path,
+                          field=f"{p} (units)", fix="store positions in um (or mm, nm, m)")
+    return values * factor
+
+
+def _dimension_labels(cube_ds):
+    """Axis names the file itself gives the dataset (HDF5 dimension labels), or None."""
+    try:
+        labels = [dim.label for dim in cube_ds.dims]
+    except Exception:  # pragma: no cover - h5py without dimension-scale support
+        return None
+    if not all(labels):
+        return None
+    names = tuple("pixel" if lb.strip().lower() in _PIXEL else
+                  _AXIS_ALIASES.get(lb.strip().lower()) for lb in labels)
+    return names if all(names) and len(set(names)) == len(names) else None
+
+
+def _read_dataset(f, path, dataset_path, axes, shift_path, x_path, y_path, pixel_size,
+                  laser_wavelength, position_tolerance=None):
     hint = "give the path of a dataset inside the file (see h5ls -r)"
     cube_ds = dataset(f, dataset_path, source=path, hint=hint)
-    if cube_ds.ndim != 3:
-        raise MapkitError(f"dataset has rank {cube_ds.ndim}, a map needs 3 (y, x, shift)",
-                          file=path, field=dataset_path, fix="point to the 3-D cube")
+    if cube_ds.ndim not in (2, 3):
+        raise MapkitError(f"dataset has rank {cube_ds.ndim}, a map needs 3 (y, x, shift) or 2 "
+                          "(pixel, shift) with position datasets", file=path,
+                          field=dataset_path, fix="point to the 3-D cube")
+    parts = axes.split(",") if isinstance(axes, str) else list(axes)
+    if len(parts) != cube_ds.ndim:
+        raise MapkitError(f"dataset has rank {cube_ds.ndim} but --axes {axes!r} names "
+                          f"{len(parts)} dimensions", file=path, field=dataset_path,
+                          fix="point to the 3-D cube (y, x, raman_shift in any order), or give "
+                              "a 2-D stack of spectra with --axes pixel,raman_shift and --x/--y "
+                              "positions per spectrum")
+    order = parse_axes(axes, ndim=cube_ds.ndim)
+    stated = ",".join(order)
+    labels = _dimension_labels(cube_ds)
+    if labels is not None and set(labels) == set(order) and labels != order:
+        raise MapkitError(f"--axes says {stated} but the file labels the dimensions of "
+                          f"{dataset_path} {','.join(labels)}", file=path, field="--axes",
+                          fix=f"pass --axes {','.join(labels)}")
+    shape = dict(zip(order, cube_ds.shape))
+    notes = []
+    shift, note = _shift_axis(f, path, shift_path, laser_wavelength, hint)
+    notes.append(note)
+    if shift.ndim == 1 and shift.size != shape["raman_shift"]:
+        others = [f"dimension {k} ({n})" for k, n in enumerate(cube_ds.shape)
+                  if n == shift.size and order[k] != "raman_shift"]
+        raise MapkitError(
+            f"the shift dataset {shift_path} has {shift.size} values but dimension "
+            f"{order.index('raman_shift')} of {dataset_path}, raman_shift by --axes {stated}, "
+            f"has {shape['raman_shift']}" + (f"; {others[0]} matches" if others else ""),
+            file=path, field="--axes", fix="check --axes (the order of the dataset's "
+                                            "dimensions) and --shift-dataset")
+    if cube_ds.ndim == 2:
+        return _stack(f, path, cube_ds, dataset_path, order, shift, x_path, y_path,
+                      laser_wavelength, position_tolerance, notes, hint)
     cube = lazy_cube(cube_ds, source=path, field=dataset_path)
     cube = cube.transpose([order.index(d) for d in DIMS])
     ny, nx, _ = cube.shape
-    shift = dataset(f, shift_path, source=path, hint=hint)[...]
 
-    def positions(p, n, name):
+    given = {}
+    for name, p in (("x", x_path), ("y", y_path)):
         if p is not None:
-            return dataset(f, p, source=path, hint=hint)[...]
+            given[name] = (p, _positions(f, path, p, hint))
+    for name, (p, values) in given.items():
+        n = shape[name]
+        if values.ndim == 1 and values.size != n:
+            other = "y" if name == "x" else "x"
+            swapped = values.size == shape[other]
+            raise MapkitError(
+                f"{p} holds {values.size} {name} positions but --axes {stated} puts {name} "
+                f"along dimension {order.index(name)} of {dataset_path}, which has {n}"
+                + (f" (dimension {order.index(other)}, {other} by --axes, has "
+                   f"{values.size}: the two are likely swapped)" if swapped else ""),
+                file=path, field="--axes",
+                fix="check --axes (the order of the dataset's dimensions) and --x/--y")
+    if labels is None and (len(given) < 2 or nx == ny):   # square: lengths cannot tell
+        notes.append(f"axis order from --axes {stated} alone (nothing in the file confirms "
+                     f"it): read as {ny} rows (y) x {nx} columns (x); if the map looks "
+                     "transposed, swap x and y in --axes")
+
+    def positions(name, n):
+        if name in given:
+            return given[name][1]
         if pixel_size is None:
             raise MapkitError(f"no {name} positions given", file=path, field=name,
                               fix=f"pass the {name} dataset path or the pixel size in um")
         return np.arange(n) * float(pixel_size)
 
-    return RamanMap(cube, raman_shift=shift, x=positions(x_path, nx, "x"),
-                    y=positions(y_path, ny, "y"), laser_wavelength=laser_wavelength,
-                    source=str(path))
+    return RamanMap(cube, raman_shift=shift, x=positions("x", nx), y=positions("y", ny),
+                    laser_wavelength=laser_wavelength, source=str(path),
+                    provenance=read_steps(notes, path))
+
+
+def _stack(f, path, ds, dataset_path, order, shift, x_path, y_path, laser_wavelength,
+           tolerance, notes, hint):
+    """A (pixel, shift) dataset with one x and one y position per spectrum, on a grid."""
+    from .positions import check_coverage, grid_positions
+
+    if ds.dtype.kind not in "iuf":
+        raise MapkitError(f"intensity dtype {ds.dtype} is not numeric", file=path,
+                          field=dataset_path, fix="store counts as integers or floats")
+    n_pix = ds.shape[order.index("pixel")]
+    if x_path is None or y_path is None:
+        raise MapkitError("a 2-D stack of spectra needs the position of each spectrum",
+                          file=path, field=dataset_path,
+                          fix="pass --x and --y datasets with one position per spectrum")
+    xs, ys = (_positions(f, path, p, hint) for p in (x_path, y_path))
+    for p, v in ((x_path, xs), (y_path, ys)):
+        if v.ndim != 1 or v.size != n_pix:
+            raise MapkitError(f"{p} holds {v.size} positions, {dataset_path} has {n_pix} "
+                              f"spectra along dimension {order.index('pixel')}", file=path,
+                              field="--axes", fix="check --axes (pixel,raman_shift or "
+                                                  "raman_shift,pixel) and --x/--y")
+    data = np.asarray(ds[...])
+    if order[0] != "pixel":
+        data = data.T
+    ux, uy, ix, iy, note = grid_positions(xs, ys, tolerance=tolerance, path=path)
+    notes.append(note)
+    seen = np.zeros((uy.size, ux.size), int)
+    np.add.at(seen, (iy, ix), 1)
+    check_coverage(seen, ux, uy, path)
+    cube = np.full((uy.size, ux.size, data.shape[1]), np.nan, np.float32)
+    cube[iy, ix] = data
+    return RamanMap(cube, raman_shift=shift, x=ux, y=uy, laser_wavelength=laser_wavelength,
+                    source=str(path),
+                    provenance=read_steps(notes, path))

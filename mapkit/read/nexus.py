@@ -105,6 +105,7 @@ def read_results(path) -> dict[str, dict]:
                 }
             out[rname] = {"method": rgroup.attrs.get("method", ""),
                           "parameters": json.loads(rgroup.attrs.get("parameters", "{}")),
+                          "summary": json.loads(rgroup.attrs.get("summary", "{}")),
                           "fields": fields}
     return out
 
@@ -134,5 +135,5 @@ def read_result_objects(path) -> list:
                                       errors=f["errors"])
             except ValueError:
                 continue  # a group whose axes are not all stored: not an image or spectrum
-        out.append(Result(name, str(r["method"]), r["parameters"], fields))
+        out.append(Result(name, str(r["method"]), r["parameters"], fields, r.get("summary", {})))
     return out

@@ -3,7 +3,8 @@
 Long form: one row per (x, y, shift) with an intensity, columns found by their
 header names. Wide form: one row per pixel, ``x`` and ``y`` columns followed by
 one column per channel whose header is the Raman shift. The delimiter
-(comma, semicolon, tab or spaces) is detected from the header line.
+(comma, semicolon, tab or spaces) is detected from the header line. Headers may write
+µm as ``um`` or ``µm`` and cm⁻¹ as ``1/cm``, ``cm-1`` or ``cm⁻¹``.
 """
 
 from __future__ import annotations
@@ -15,12 +16,16 @@ import numpy as np
 
 from ..core.ramanmap import RamanMap
 from ..errors import MapkitError
+from .dispatch import read_steps
+from .positions import check_coverage as _check_coverage
+from .positions import grid_positions
 
 _NAMES = {
     "x": ("x", "x_um", "x (um)", "x [um]", "x(um)", "pos_x", "x_position"),
     "y": ("y", "y_um", "y (um)", "y [um]", "y(um)", "pos_y", "y_position"),
     "raman_shift": ("raman_shift", "shift", "raman shift", "wavenumber", "raman_shift_cm-1",
-                    "shift (1/cm)", "raman shift (cm-1)", "shift [1/cm]"),
+                    "shift (1/cm)", "raman shift (cm-1)", "shift [1/cm]", "shift (cm-1)",
+                    "raman shift (1/cm)", "raman shift [cm-1]", "raman_shift (cm-1)"),
     "intensity": ("intensity", "counts", "signal", "intensity (counts)"),
 }
 _NUMBER = re.compile(r"^[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?$")
@@ -66,8 +71,14 @@ def _read_rows(path):
     return header, values
 
 
+def _plain(name: str) -> str:
+    """A header name with the micro sign (or Greek mu) as 'u' and cm⁻¹ as cm-1, lower case."""
+    name = name.strip().lower().replace("\u00b5", "u").replace("\u03bc", "u")
+    return name.replace("\u207b\u00b9", "-1").replace("cm^-1", "cm-1")
+
+
 def _find(header, key, path, required=True):
-    low = [h.strip().lower() for h in header]
+    low = [_plain(h) for h in header]
     for name in _NAMES[key]:
         if name in low:
             return low.index(name)
@@ -77,15 +88,12 @@ def _find(header, key, path, required=True):
     return None
 
 
-def _grid(xs, ys, path):
-    """Unique sorted positions and each row's (iy, ix), refusing non-rectangular scans."""
-    ux, ix = np.unique(xs, return_inverse=True)
-    uy, iy = np.unique(ys, return_inverse=True)
-    return ux, uy, ix.ravel(), iy.ravel()
-
-
-def read_table(path, *, laser_wavelength=None) -> RamanMap:
+def read_table(path, *, laser_wavelength=None, position_tolerance=None) -> RamanMap:
     """Read a long- or wide-form text table into a map.
+
+    ``position_tolerance`` (µm) snaps positions that jitter around a grid onto it (see
+    :func:`~mapkit.read.positions.grid_positions`); what was snapped is recorded as a
+    ``read`` step in the map's provenance.
 
     Examples
     --------
@@ -101,7 +109,7 @@ def read_table(path, *, laser_wavelength=None) -> RamanMap:
     cs = _find(header, "raman_shift", path, required=False)
     if cs is not None:
         ci = _find(header, "intensity", path)
-        return _long(values, cx, cy, cs, ci, path, laser_wavelength)
+        return _long(values, cx, cy, cs, ci, path, laser_wavelength, position_tolerance)
     channel_cols = [i for i in range(len(header)) if i not in (cx, cy)]
     bad = [header[i] for i in channel_cols if not _NUMBER.match(header[i])]
     if bad or not channel_cols:
@@ -110,32 +118,23 @@ def read_table(path, *, laser_wavelength=None) -> RamanMap:
                           fix="use long form (x, y, raman_shift, intensity) or wide form "
                               "(x, y, then one numeric shift per column)")
     shift = np.array([float(header[i]) for i in channel_cols])
-    ux, uy, ix, iy = _grid(values[:, cx], values[:, cy], path)
+    ux, uy, ix, iy, note = grid_positions(values[:, cx], values[:, cy],
+                                          tolerance=position_tolerance, path=path)
     cube = np.full((uy.size, ux.size, shift.size), np.nan, np.float32)
     seen = np.zeros((uy.size, ux.size), int)
     np.add.at(seen, (iy, ix), 1)
     _check_coverage(seen, ux, uy, path)
     cube[iy, ix] = values[:, channel_cols]
     return RamanMap(cube, raman_shift=shift, x=ux, y=uy, laser_wavelength=laser_wavelength,
-                    source=str(path))
+                    source=str(path), provenance=read_steps([note], path))
 
 
-def _check_coverage(seen, ux, uy, path):
-    if np.any(seen > 1):
-        iy, ix = np.argwhere(seen > 1)[0]
-        raise MapkitError(f"position x={ux[ix]:g}, y={uy[iy]:g} appears more than once",
-                          file=path, field="x, y", fix="keep one spectrum per position")
-    if np.any(seen == 0):
-        iy, ix = np.argwhere(seen == 0)[0]
-        raise MapkitError(f"position x={ux[ix]:g}, y={uy[iy]:g} is missing: the scan is not a "
-                          f"rectangular grid ({int((seen == 0).sum())} positions missing)",
-                          file=path, field="x, y", fix="export the full rectangular scan")
-
-
-def _long(values, cx, cy, cs, ci, path, laser_wavelength):
+def _long(values, cx, cy, cs, ci, path, laser_wavelength, position_tolerance=None):
     shift_vals = values[:, cs]
     shift = np.unique(shift_vals)
-    ux, uy, ix, iy = _grid(values[:, cx], values[:, cy], path)
+    # in long form every channel repeats a position, so snapping sees each one many times
+    ux, uy, ix, iy, note = grid_positions(values[:, cx], values[:, cy],
+                                          tolerance=position_tolerance, path=path)
     counts = np.zeros((uy.size, ux.size), int)
     np.add.at(counts, (iy, ix), 1)
     if np.any(counts > shift.size):
@@ -153,4 +152,4 @@ def _long(values, cx, cy, cs, ci, path, laser_wavelength):
     cube = np.full((uy.size, ux.size, shift.size), np.nan, np.float32)
     cube[iy, ix, ish] = values[:, ci]
     return RamanMap(cube, raman_shift=shift, x=ux, y=uy, laser_wavelength=laser_wavelength,
-                    source=str(path))
+                    source=str(path), provenance=read_steps([note], path))

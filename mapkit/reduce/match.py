@@ -58,9 +58,9 @@ def remove_trend(block, shift, order: int = 1):
 
 def describe_match(entry: dict) -> str:
     """One line for a match entry: the name (or unmatched with the best candidate) and the
-    score on its 0-1 scale, e.g. ``calcite (HQI 0.973 of 1)``."""
+    score on its 0-1 scale, e.g. ``calcite (HQI 0.973 on 0-1)``."""
     label = "HQI" if entry.get("measure", "hqi") == "hqi" else "r"
-    score = f"{label} {entry['score']:.3f} of 1"
+    score = f"{label} {entry['score']:.3f} on 0-1"
     if entry["match"] != "unmatched":
         return f"{entry['match']} ({score})"
     return (f"unmatched (best candidate {entry['best_candidate']}, {score}, below the "

@@ -108,7 +108,7 @@ def _initial(s, y, shape, n_peaks, centres, mid):
 
 def fit_peaks(block, shift, lo: float, hi: float, *, shape: str = "lorentzian", n_peaks: int = 1,
               centres=None, weights: str = "auto", max_iter: int = 200, tol: float = 1e-7,
-              engine: str = "auto"):
+              engine: str = "auto", covariance: str = "auto"):
     """Fit ``n_peaks`` peaks plus a straight background in ``lo``-``hi`` cm⁻¹ to every spectrum.
 
     Parameters
@@ -123,11 +123,23 @@ def fit_peaks(block, shift, lo: float, hi: float, *, shape: str = "lorentzian", 
         ``"uniform"`` by least squares. ``"auto"`` picks Poisson when every value in the
         window is non-negative (raw counts) and least squares otherwise (e.g. after
         baseline subtraction).
+    covariance : {"auto", "model", "sandwich"}
+        How the standard errors are computed. ``"model"``: inverse information matrix
+        times the reduced chi-square (right when the weights describe the noise, as for
+        the Poisson fit of raw counts). ``"sandwich"``: the heteroscedasticity-consistent
+        (White 1980; HC2 leverage correction) covariance, right for a least-squares fit whose channels carry
+        unequal noise, such as shot noise left after baseline subtraction, where the
+        model covariance reads too small (0.75 of the real scatter on the shot-noise map
+        of tests/test_peakfit.py, which asserts < 0.8; the sandwich 0.99). ``"auto"``: model for Poisson fits,
+        sandwich for least squares.
 
     Returns
     -------
     dict of arrays, one value per spectrum: ``theta`` (n, K) parameters, ``stderr`` (n, K),
-    ``chi2_reduced``, ``r2``, ``converged`` (bool), ``n_iter``, plus ``names`` (K,).
+    ``cov`` (n, K, K) their covariance, ``chi2_reduced``, ``r2``, ``status`` (int8, see
+    :data:`STATUS_NAMES`: 0 converged, 1 iteration limit, 2 stalled, 3 centre outside the
+    window, 4 singular information), ``converged`` (``status == 0``), ``n_iter``, plus
+    ``names`` (K,) and ``covariance`` (the kind used).
 
     Examples
     --------
@@ -167,25 +179,27 @@ def fit_peaks(block, shift, lo: float, hi: float, *, shape: str = "lorentzian", 
     if engine == "numba" or (engine == "auto" and HAVE_NUMBA):
         from ._peakfit_kernel import lm_fit
 
-        theta, cost, n_iter, conv, A, ssr = lm_fit(
+        theta, cost, n_iter, status, A, ssr = lm_fit(
             np.ascontiguousarray(y), np.ascontiguousarray(s), theta, SHAPE_CODES[shape],
-            n_peaks, mid, weights == "poisson", max_iter, tol, step)
-        return _finish(theta, cost, n_iter, ~conv, A, y, ssr, s, shape, n_peaks, per, K)
+            n_peaks, mid, weights == "poisson", max_iter, tol, step, POISSON_FLOOR)
+        return _finish(theta, cost, n_iter, status, A, y, ssr, s, shape, n_peaks, per, K,
+                       _covariance_kind(covariance, weights == "poisson"), mid)
 
     lam = np.full(P, 1e-3)
     active = np.ones(P, bool)
+    stalled = np.zeros(P, bool)
     n_iter = np.zeros(P, int)
 
     poisson = weights == "poisson"
 
     def weights_for(mu):
-        return 1.0 / np.maximum(mu, 1.0) if poisson else np.ones_like(mu)
+        return 1.0 / np.maximum(mu, POISSON_FLOOR) if poisson else np.ones_like(mu)
 
     def objective(yy, mu):
         """Poisson deviance (maximum likelihood) or the sum of squares, per spectrum."""
         if not poisson:
             return np.sum((yy - mu) ** 2, axis=1)
-        m_ = np.maximum(mu, 1e-9)
+        m_ = np.maximum(mu, POISSON_FLOOR)
         with np.errstate(divide="ignore", invalid="ignore"):
             term = np.where(yy > 0, yy * np.log(yy / m_), 0.0)
         return 2 * np.sum(m_ - yy + term, axis=1)
@@ -206,66 +220,165 @@ def fit_peaks(block, shift, lo: float, hi: float, *, shape: str = "lorentzian", 
         a = np.flatnonzero(active)
         if a.size == 0:
             break
-        Ja, Wa, ra = J[a], W[a], (y[a] - mu[a])
-        JtW = (Ja * Wa[:, :, None]).transpose(0, 2, 1)
-        A = JtW @ Ja
-        g = (JtW @ ra[:, :, None])[..., 0]
+        A, g = _normal_equations(J[a], W[a], y[a] - mu[a])
         diag = np.einsum("pkk->pk", A)
         A_damped = A + (lam[a][:, None] * np.maximum(diag, 1e-12))[:, :, None] * np.eye(K)
-        if shape == "pseudo_voigt":  # η held at a bound it is pushing against stays there
-            for k in range(n_peaks):
-                e = k * per + 3
-                held = (((theta[a, e] >= 1) & (g[:, e] > 0)) | ((theta[a, e] <= 0) & (g[:, e] < 0)))
-                A_damped[held, e, :] = 0.0
-                A_damped[held, :, e] = 0.0
-                A_damped[held, e, e] = 1.0
-                g[held, e] = 0.0
-        try:
-            delta = np.linalg.solve(A_damped, g[..., None])[..., 0]
-        except np.linalg.LinAlgError:
-            delta = np.stack([np.linalg.lstsq(A_damped[i], g[i], rcond=None)[0]
-                              for i in range(a.size)])
-        trial = clamp(theta[a] + delta)
+        if shape == "pseudo_voigt":
+            _hold_eta(A_damped, g, theta[a], n_peaks, per)
+        n_iter[a] += 1
+        delta, solved = _cholesky_solve(A_damped, g)
+        # a step whose damped system is not positive definite is a rejected step, as in
+        # the compiled kernel
+        trial = clamp(theta[a] + np.where(solved[:, None], delta, 0.0))
         mu_t, J_t = model_and_jacobian(trial, s, shape, n_peaks, mid)
         W_t = weights_for(mu_t)
         cost_t = objective(y[a], mu_t)
-        better = np.isfinite(cost_t) & (cost_t <= cost[a])
+        better = solved & np.isfinite(cost_t) & (cost_t <= cost[a])
         acc = a[better]
         rel = np.abs(cost[acc] - cost_t[better]) / np.maximum(cost[acc], 1e-300)
         theta[acc], mu[acc], J[acc], W[acc], cost[acc] = (trial[better], mu_t[better],
                                                           J_t[better], W_t[better], cost_t[better])
         lam[acc] = np.maximum(lam[acc] / 3.0, 1e-12)
-        lam[a[~better]] *= 4.0
-        n_iter[a] += 1
+        rej = a[~better]
+        lam[rej] *= 4.0
         done = np.zeros(P, bool)
         done[acc[rel < tol]] = True
-        done[a[~better][lam[a[~better]] > 1e12]] = True
+        stop = rej[lam[rej] > 1e12]
+        done[stop] = True
+        stalled[stop] = True
         active &= ~done
+    A, g = _normal_equations(J, W, y - mu)
+    if shape == "pseudo_voigt":
+        _hold_eta(A, g, theta, n_peaks, per)
+    # damping that ran away after rejected steps is convergence only where the remaining
+    # Gauss-Newton (Fisher-scoring) step would not lower the objective measurably
+    stalled &= ~_at_optimum(A, g, objective(y, mu), np.sum(W * y * y, axis=1), tol)
     A = np.einsum("pnk,pn,pnl->pkl", J, W, J)
     ssr = np.sum((y - mu) ** 2, axis=1)
     cost = np.sum(W * (y - mu) ** 2, axis=1)      # Pearson chi-square at the optimum
-    return _finish(theta, cost, n_iter, active, A, y, ssr, s, shape, n_peaks, per, K)
+    status = np.where(active, ITERATION_LIMIT, np.where(stalled, STALLED, CONVERGED))
+    return _finish(theta, cost, n_iter, status, A, y, ssr, s, shape, n_peaks, per, K,
+                   _covariance_kind(covariance, poisson), mid)
 
 
-def _finish(theta, cost, n_iter, active, A, y, ssr, s, shape, n_peaks, per, K):
-    """Standard errors, fit quality and convergence flags from the final state."""
+#: Poisson weights 1/max(μ, floor) and the deviance with max(μ, floor): one floor (counts)
+#: in both engines, so the step and the objective it is judged by belong to the same fit.
+#: A millionth of a count guards the logarithm and the weights without changing the
+#: likelihood of any model that predicts counts (a floor of 1 made the deviance flat
+#: where the background is below one count, and such fits stalled)
+POISSON_FLOOR = 1e-6
+#: fit states (the ``status`` entry and the map's ``fit_status`` field)
+CONVERGED, ITERATION_LIMIT, STALLED, CENTRE_OUTSIDE, SINGULAR = 0, 1, 2, 3, 4
+STATUS_NAMES = {CONVERGED: "converged", ITERATION_LIMIT: "iteration limit",
+                STALLED: "stalled (damping limit away from an optimum)",
+                CENTRE_OUTSIDE: "centre outside the window",
+                SINGULAR: "information matrix not invertible"}
+
+
+def _normal_equations(J, W, r):
+    """A = JᵀWJ (P, K, K) and g = JᵀWr (P, K)."""
+    JtW = (J * W[:, :, None]).transpose(0, 2, 1)
+    return JtW @ J, (JtW @ r[:, :, None])[..., 0]
+
+
+def _hold_eta(A, g, theta, n_peaks, per):
+    """η held at a bound it is pushing against stays there (in place on A and g)."""
+    for k in range(n_peaks):
+        e = k * per + 3
+        held = (((theta[:, e] >= 1) & (g[:, e] > 0)) | ((theta[:, e] <= 0) & (g[:, e] < 0)))
+        A[held, e, :] = 0.0
+        A[held, :, e] = 0.0
+        A[held, e, e] = 1.0
+        g[held, e] = 0.0
+
+
+def _cholesky_solve(A, g):
+    """Solve A x = g for every pixel by Cholesky, in the compiled kernel's operation order.
+
+    Returns (x, ok): ``ok`` is False where A is not positive definite (x is then 0).
+    """
+    P, K = g.shape
+    L = np.zeros((P, K, K))
+    ok = np.ones(P, bool)
+    for i in range(K):
+        for j in range(i + 1):
+            v = A[:, i, j].copy()
+            for k in range(j):
+                v -= L[:, i, k] * L[:, j, k]
+            if i == j:
+                ok &= v > 0
+                L[:, i, i] = np.sqrt(np.where(v > 0, v, 1.0))
+            else:
+                L[:, i, j] = v / L[:, j, j]
+    x = np.zeros((P, K))
+    for i in range(K):
+        v = g[:, i].copy()
+        for k in range(i):
+            v -= L[:, i, k] * x[:, k]
+        x[:, i] = v / L[:, i, i]
+    for i in range(K - 1, -1, -1):
+        v = x[:, i].copy()
+        for k in range(i + 1, K):
+            v -= L[:, k, i] * x[:, k]
+        x[:, i] = v / L[:, i, i]
+    return np.where(ok[:, None], x, 0.0), ok
+
+
+def _at_optimum(A, g, cost, scale, tol):
+    """True where the predicted decrease gᵀA⁻¹g of a full Gauss-Newton step is below
+    ``tol`` of the objective (or of 1e-14 Σwy², for fits that are exact to rounding)."""
+    x, ok = _cholesky_solve(A, g)
+    pred = np.einsum("pk,pk->p", g, x)
+    return ok & (pred <= tol * np.maximum(cost, 1e-14 * scale))
+
+
+def _covariance_kind(covariance, poisson):
+    if covariance not in ("auto", "model", "sandwich"):
+        raise MapkitError(f"unknown covariance {covariance!r}", field="covariance",
+                          fix="use auto, model or sandwich")
+    if covariance == "auto":
+        return "model" if poisson else "sandwich"
+    return covariance
+
+
+def _finish(theta, cost, n_iter, status, A, y, ssr, s, shape, n_peaks, per, K,
+            covariance="model", mid=None):
+    """Standard errors, fit quality and fit states from the final state."""
     P = theta.shape[0]
-    dof = s.size - K
+    N = s.size
+    dof = N - K
     chi2 = cost / dof
     cov = np.full((P, K, K), np.nan)
     ok = np.isfinite(A).all(axis=(1, 2))
     ok[ok] = np.linalg.det(A[ok]) > 0          # the information matrix must be invertible
-    cov[ok] = np.linalg.inv(A[ok])
-    stderr = np.sqrt(np.clip(np.einsum("pkk->pk", cov), 0, None) * chi2[:, None])
+    inv = np.linalg.inv(A[ok])
+    if covariance == "sandwich":
+        # least squares on data whose noise differs from channel to channel (shot noise
+        # after a baseline was subtracted): the heteroscedasticity-consistent covariance
+        # A⁻¹ (Σᵢ rᵢ²/(1 − hᵢᵢ) JᵢJᵢᵀ) A⁻¹ with the leverages hᵢᵢ = Jᵢᵀ A⁻¹ Jᵢ (White 1980,
+        # Econometrica 48:817; the leverage correction is HC2 of MacKinnon & White 1985,
+        # J. Econometrics 29:305, unbiased when the noise happens to be equal)
+        mu, J = model_and_jacobian(theta[ok], s, shape, n_peaks, mid)
+        lev = np.clip(np.einsum("pnk,pkl,pnl->pn", J, inv, J), 0.0, 1.0 - 1e-9)
+        meat = np.einsum("pnk,pn,pnl->pkl", J, (y[ok] - mu) ** 2 / (1.0 - lev), J)
+        cov[ok] = inv @ meat @ inv
+    else:
+        # inverse information scaled by the reduced chi-square
+        cov[ok] = inv * chi2[ok, None, None]
+    stderr = np.sqrt(np.clip(np.einsum("pkk->pk", cov), 0, None))
     ss_tot = np.sum((y - y.mean(axis=1, keepdims=True)) ** 2, axis=1)
     r2 = 1 - ssr / np.maximum(ss_tot, 1e-300)
     inside = np.ones(P, bool)
     for k in range(n_peaks):
         inside &= (theta[:, k * per + 1] >= s[0]) & (theta[:, k * per + 1] <= s[-1])
+    status = np.asarray(status, np.int8).copy()
+    status[(status == CONVERGED) & ~inside] = CENTRE_OUTSIDE
+    status[(status == CONVERGED) & ~ok] = SINGULAR
     names = [f"{p}_{k + 1}" if n_peaks > 1 else p for k in range(n_peaks)
              for p in PEAK_PARAMS[shape]] + ["background", "background_slope"]
     return {"theta": theta, "stderr": stderr, "cov": cov, "chi2_reduced": chi2, "r2": r2,
-            "converged": ~active & inside & ok, "n_iter": n_iter, "names": names}
+            "converged": status == CONVERGED, "status": status, "n_iter": n_iter,
+            "covariance": covariance, "names": names}
 
 
 #: bits of the peak-fit ``valid`` map's complement, the ``rejected`` bit field
@@ -307,13 +420,15 @@ def reject_fits(fit, lo: float, hi: float, shape: str, n_peaks: int,
 
 def peak_fit_map(m: RamanMap, lo: float, hi: float, *, shape: str = "lorentzian",
                  n_peaks: int = 1, centres=None, weights: str = "auto",
-                 name: str = "peakfit", block: int = 4096,
+                 name: str = "peakfit", block: int = 4096, covariance: str = "auto",
                  min_significance: float = 3.0) -> Result:
     """Maps of centre, FWHM, height and area (with standard errors) and the fit quality.
 
     Fields: for each peak ``centre``, ``fwhm``, ``height``, ``area`` (signal with
-    ``*_errors``), and ``chi2_reduced``, ``r2`` and ``converged`` (0/1 quality mask:
-    a pixel whose fit did not converge, or whose centre left the window, reads 0).
+    ``*_errors``), and ``chi2_reduced``, ``r2``, ``converged`` (0/1 quality mask:
+    a pixel whose fit did not converge, or whose centre left the window, reads 0) and
+    ``fit_status`` (why: the codes of :data:`STATUS_NAMES`). ``covariance`` as in
+    :func:`fit_peaks`.
     Pixels without a significant band (height ≤ ``min_significance`` standard errors),
     with a centre outside the window or without convergence are NaN in the peak maps
     and their errors (see :func:`reject_fits`); ``rejected`` records why (bit field:
@@ -334,10 +449,11 @@ def peak_fit_map(m: RamanMap, lo: float, hi: float, *, shape: str = "lorentzian"
         raise MapkitError("every pixel is masked; nothing to fit", file=m.source, field="mask",
                           fix="check the map's bad-pixel mask")
     parts = [fit_peaks(flat[good[i:i + block]].astype(np.float64), shift, lo, hi, shape=shape,
-                       n_peaks=n_peaks, centres=centres, weights=weights)
+                       n_peaks=n_peaks, centres=centres, weights=weights,
+                       covariance=covariance)
              for i in range(0, good.size, block)]
-    fit = {k: (np.concatenate([p[k] for p in parts]) if k != "names" else parts[0][k])
-           for k in parts[0]}
+    fit = {k: (np.concatenate([p[k] for p in parts]) if k not in ("names", "covariance")
+               else parts[0][k]) for k in parts[0]}
     per = len(PEAK_PARAMS[shape])
 
     def image(values, fill=np.nan):
@@ -362,7 +478,7 @@ def peak_fit_map(m: RamanMap, lo: float, hi: float, *, shape: str = "lorentzian"
         grad[:, o + 2] = area / np.where(w == 0, 1, w)
         if shape == "pseudo_voigt":
             grad[:, o + 3] = peak_area("lorentzian", h, w) - peak_area("gaussian", h, w)
-        var = np.einsum("pk,pkl,pl->p", grad, fit["cov"], grad) * fit["chi2_reduced"]
+        var = np.einsum("pk,pkl,pl->p", grad, fit["cov"], grad)
         earea = np.sqrt(np.clip(var, 0, None))
         for key, val, err, units in (("centre", c, ec, "1/cm"), ("fwhm", w, ew, "1/cm"),
                                      ("height", h, eh, "counts"),
@@ -378,10 +494,17 @@ def peak_fit_map(m: RamanMap, lo: float, hi: float, *, shape: str = "lorentzian"
     fields["r2"] = Field("r2", image(fit["r2"]), axes, "", long_name="coefficient of determination")
     conv = image(fit["converged"].astype(float), fill=0).astype(np.uint8)
     fields["converged"] = Field("converged", conv, axes, "", long_name="1 = fit converged")
+    state = image(fit["status"].astype(float), fill=255).astype(np.uint8)
+    fields["fit_status"] = Field("fit_status", state, axes, "", long_name="; ".join(
+        f"{k} = {v}" for k, v in STATUS_NAMES.items()) + "; 255 = masked")
     fields["rejected"] = Field("rejected", image(rejected, fill=0).astype(np.uint8), axes, "",
                                long_name="why a pixel is not reported (bits)")
     summary = {"pixels": int(good.size), "not_converged": int((~fit["converged"]).sum()),
+               **{key: int((fit["status"] == k).sum()) for k, key in
+                  ((ITERATION_LIMIT, "iteration_limit"), (STALLED, "stalled"),
+                   (CENTRE_OUTSIDE, "centre_outside"), (SINGULAR, "singular"))},
                "median_iterations": float(np.median(fit["n_iter"])),
+               "covariance": fit["covariance"],
                "reported": int(keep.sum()),
                "no_band": int(((rejected & NO_BAND) > 0).sum()),
                "left_window": int(((rejected & LEFT_WINDOW) > 0).sum()),
@@ -389,6 +512,7 @@ def peak_fit_map(m: RamanMap, lo: float, hi: float, *, shape: str = "lorentzian"
     return Result(name, f"peak_fit_{shape}", {"lo": lo, "hi": hi, "shape": shape,
                                                "n_peaks": n_peaks, "centres": centres,
                                                "weights": weights,
+                                               "covariance": fit["covariance"],
                                                "min_significance": min_significance},
                   fields, summary)
 

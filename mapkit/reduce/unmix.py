@@ -13,7 +13,8 @@ from ..errors import MapkitError
 from ._common import good_spectra, image_axes, shift_axis, to_images
 
 
-def nnls_batch(A, Y, *, max_sweeps: int = 2000, tol: float = 1e-10):
+def nnls_batch(A, Y, *, max_sweeps: int = 2000, tol: float = 1e-10,
+               return_converged: bool = False):
     """Non-negative least squares min ‖A x − y‖, x ≥ 0, for many right-hand sides at once.
 
     Sequential coordinate descent on the normal equations (Franc, Hlaváč &
@@ -26,10 +27,14 @@ def nnls_batch(A, Y, *, max_sweeps: int = 2000, tol: float = 1e-10):
     ----------
     A : array (n, k)
     Y : array (n, m)
+    return_converged : bool
+        Also return, per column, whether the sweeps met ``tol`` before ``max_sweeps``.
 
     Returns
     -------
     X : array (k, m)
+    converged : bool array (m,), only with ``return_converged``
+        False where the loop stopped at its sweep limit without meeting ``tol``.
 
     Examples
     --------
@@ -48,6 +53,7 @@ def nnls_batch(A, Y, *, max_sweeps: int = 2000, tol: float = 1e-10):
                           fix="check that every reference covers the map's shift axis")
     X = np.zeros((k, Y.shape[1]))
     scale = np.maximum(np.abs(H).max(axis=0), 1e-300)
+    converged = np.zeros(Y.shape[1], bool)
     for _ in range(max_sweeps):
         change = np.zeros(Y.shape[1])
         for j in range(k):
@@ -55,9 +61,10 @@ def nnls_batch(A, Y, *, max_sweeps: int = 2000, tol: float = 1e-10):
             new = np.maximum(0.0, X[j] + grad / diag[j])
             change = np.maximum(change, np.abs(new - X[j]) * diag[j])
             X[j] = new
-        if np.all(change <= tol * scale):
+        converged = change <= tol * scale
+        if np.all(converged):
             break
-    return X
+    return (X, converged) if return_converged else X
 
 
 def _project_simplex(V):
@@ -73,12 +80,15 @@ def _project_simplex(V):
     return np.maximum(V - theta, 0.0)
 
 
-def simplex_ls_batch(A, Y, *, max_iter: int = 5000, tol: float = 1e-12):
+def simplex_ls_batch(A, Y, *, max_iter: int = 5000, tol: float = 1e-12,
+                     return_converged: bool = False):
     """min ‖A x − y‖ with x ≥ 0 and Σx = 1, for every column of ``Y`` (FISTA on the Gram form).
 
     Accelerated projected gradient (Beck & Teboulle 2009) with the simplex projection of
     Duchi et al. 2008; the problem is convex, so it converges to the same optimum as any
-    constrained solver (tests compare with scipy's SLSQP).
+    constrained solver (tests compare with scipy's SLSQP). With ``return_converged`` it
+    also returns a bool per column: False where the last step still moved the abundances
+    by more than ``tol`` when ``max_iter`` was reached.
     """
     A = np.asarray(A, float)
     Y = np.asarray(Y, float)
@@ -88,15 +98,16 @@ def simplex_ls_batch(A, Y, *, max_iter: int = 5000, tol: float = 1e-12):
     k, m = G.shape[0], Y.shape[1]
     X = np.full((k, m), 1.0 / k)
     Z, t = X.copy(), 1.0
+    converged = np.zeros(m, bool)
     for _ in range(max_iter):
         X_new = _project_simplex(Z - step * (G @ Z - H))
         t_new = 0.5 * (1 + np.sqrt(1 + 4 * t * t))
         Z = X_new + ((t - 1) / t_new) * (X_new - X)
-        done = np.max(np.abs(X_new - X)) <= tol
+        converged = np.max(np.abs(X_new - X), axis=0) <= tol
         X, t = X_new, t_new
-        if done:
+        if np.all(converged):
             break
-    return X
+    return (X, converged) if return_converged else X
 
 
 def unmix_spectra(R, X, shift, baseline_order: int | None = None, *, sum_to_one: bool = False,

@@ -9,12 +9,19 @@ def open_with_panels(path):
     import napari
 
     from ._analysis import AnalysisPanel
+    from ._legend import ClassLegend
     from ._panel import SpectrumPanel
 
     viewer = napari.Viewer(title="mapkit")
     viewer.open(str(path), plugin="mapkit-napari")
-    viewer.window.add_dock_widget(SpectrumPanel(viewer), name="Pixel spectra", area="right")
+    spectra = SpectrumPanel(viewer)
+    viewer.window.add_dock_widget(spectra, name="Pixel spectra", area="right")
     viewer.window.add_dock_widget(AnalysisPanel(viewer), name="Map analysis", area="right")
+    viewer.window.add_dock_widget(ClassLegend(viewer, on_class=spectra.show_class_spectrum),
+                                  name="Class legend", area="left")
+    from ._optical import MicrographPanel
+
+    viewer.window.add_dock_widget(MicrographPanel(viewer), name="Micrograph", area="left")
     viewer.scale_bar.visible = True
     return viewer
 

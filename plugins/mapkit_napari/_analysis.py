@@ -102,6 +102,115 @@ class AnalysisPanel(QWidget):
         layout.addWidget(self.progress)
         layout.addWidget(self.status)
         layout.addWidget(self.canvas, 1)
+        self._add_calibration(layout)
+
+    # -- calibration (the same library calls as 'mapkit calibrate') ------------------------
+    def _add_calibration(self, layout):
+        from qtpy.QtWidgets import QGroupBox
+
+        # folded away until ticked, so the spectrum panel above keeps its room
+        box = QGroupBox("Calibration from standards")
+        box.setCheckable(True)
+        box.setChecked(False)
+        inner = QWidget()
+        QVBoxLayout(box).addWidget(inner)
+        box.toggled.connect(inner.setVisible)
+        inner.setVisible(False)
+        form = QFormLayout(inner)
+        self.standards = QLineEdit()
+        self.standards.setPlaceholderText("standards table (CSV)")
+        self.cal_model = QComboBox()
+        self.cal_model.addItems(["linear", "quadratic", "pls"])
+        form.addRow("Standards", self._with_browse(self.standards, file=True, pattern="*.csv"))
+        form.addRow("Model", self.cal_model)
+        row = QHBoxLayout()
+        self.fit_button = QPushButton("Fit")
+        self.fit_button.clicked.connect(lambda: self.fit_calibration())
+        self.save_button = QPushButton("Save model…")
+        self.save_button.setEnabled(False)
+        self.save_button.clicked.connect(lambda: self.save_calibration())
+        self.apply_button = QPushButton("Apply to map")
+        self.apply_button.setEnabled(False)
+        self.apply_button.clicked.connect(lambda: self.apply_calibration())
+        for b in (self.fit_button, self.save_button, self.apply_button):
+            row.addWidget(b)
+        form.addRow(row)
+        self.cal_status = QLabel("")
+        self.cal_status.setWordWrap(True)
+        self.cal_plot = QLabel()
+        form.addRow(self.cal_status)
+        form.addRow(self.cal_plot)
+        self.quant_model = None
+        self.quant_model_path = None
+        layout.addWidget(box)
+
+    def fit_calibration(self):
+        """Fit the model to the standards file; show the curve, residuals, LOD and LOQ."""
+        import tempfile
+
+        from qtpy.QtGui import QPixmap
+
+        from mapkit.errors import MapkitError
+        from mapkit.export.figures import save_calibration_figure
+        from mapkit.pipeline import Settings, quantification_model
+        from mapkit.preprocess.recipe import Recipe
+        from mapkit.read import read_library
+
+        try:
+            recipe = (Recipe.from_file(self.recipe.text().strip()) if self.recipe.text().strip()
+                      else Recipe.default())
+            lib = self.library.text().strip()
+            model = quantification_model(self.standards.text().strip(),
+                                         read_library(lib) if lib else None, recipe,
+                                         Settings(calibration_model=self.cal_model.currentText()))
+        except MapkitError as exc:
+            self._on_error(exc)
+            return None
+        self.quant_model, self.quant_model_path = model, None
+        c = model.calibration.summary()
+        fit = (f"R² {c['r2']:.4f}, {c['n_components']} latent variables" if c["model"] == "pls"
+               else f"r = {c['r']:.5f}")
+        self.cal_status.setText(f"{c['analyte']} ({c['unit']}), {c['model']} on {c['n']} "
+                                f"standards: {fit}; LOD {c['lod']:.3g} {c['unit']}, "
+                                f"LOQ {c['loq']:.3g} {c['unit']} (ICH Q2(R2))")
+        with tempfile.TemporaryDirectory() as tmp:
+            png = Path(tmp) / "calibration.png"
+            save_calibration_figure(png, model.calibration, overwrite=True, dpi=70)
+            self.cal_plot.setPixmap(QPixmap(str(png)).scaledToWidth(360))
+        self.save_button.setEnabled(True)
+        self.apply_button.setEnabled(True)
+        return model
+
+    def save_calibration(self, path=None):
+        """Save the fitted model as quant_model.json (the file dialog asks before replacing one)."""
+        if self.quant_model is None:
+            return None
+        if path is None:
+            path = QFileDialog.getSaveFileName(self, "Save model", "quant_model.json",
+                                               "*.json")[0]
+            if not path:
+                return None
+        from mapkit.errors import MapkitError
+
+        try:
+            written = self.quant_model.save(path, overwrite=True)
+        except MapkitError as exc:
+            self._on_error(exc)
+            return None
+        self.quant_model_path = str(written)
+        self.model.setText(self.quant_model_path)
+        self.cal_status.setText(self.cal_status.text() + f"; saved {Path(written).name}")
+        return written
+
+    def apply_calibration(self):
+        """Content map of the open map with the fitted model (saved first if it is not)."""
+        if self.quant_model is None:
+            return None
+        if self.quant_model_path is None and self.save_calibration() is None:
+            return None
+        self.model.setText(self.quant_model_path)
+        self.method.setCurrentText("Content map (saved model)")
+        return self.run()
 
     def _with_browse(self, edit, *, file, pattern=""):
         row = QWidget()
@@ -180,7 +289,11 @@ class AnalysisPanel(QWidget):
         self.progress.setValue(self.progress.maximum())
         layer = self.map_layer()
         path = layer.metadata["mapkit_path"] if layer is not None else ""
+        # over a micrograph the maps are drawn see-through, as when a results file opens
+        under = any("mapkit_optical" in lyr.metadata for lyr in self.viewer.layers)
         for data, kw, kind in result_layers(results, common_kwargs(m, path), visible=False):
+            if under:
+                kw.setdefault("opacity", 0.6)
             getattr(self.viewer, f"add_{kind}")(data, **kw)
         for lyr in list(self.viewer.layers)[-1:]:
             lyr.visible = True

@@ -7,6 +7,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from mapkit.export.figures import QUANTITY_CMAP  # one colour map for quantities: figures, docs, viewer
+
 
 def robust_limits(img):
     """Display range from the 1st to 99th percentile, so one hot pixel doesn't wash out the map."""
@@ -46,7 +48,7 @@ def result_layers(results, common, *, visible: bool = False):
                 for k, label in enumerate(f.axes[0].values):
                     plane = np.asarray(f.data[k], np.float32)
                     layers.append((plane, {**kw, "name": f"{r.name}: {label}",
-                                           "colormap": "viridis",
+                                           "colormap": QUANTITY_CMAP,
                                            "contrast_limits": robust_limits(plane)}, "image"))
             elif f.signal == "labels":  # napari labels: 0 is background, so shift by one
                 from mapkit.export.figures import CLASS_COLOURS
@@ -56,16 +58,53 @@ def result_layers(results, common, *, visible: bool = False):
                 colours = {None: "transparent", 0: "transparent"}
                 colours.update({k + 1: CLASS_COLOURS[k % len(CLASS_COLOURS)]
                                 for k in range(int(data.max()))})
+                meta["mapkit_classes"] = class_legend_data(r)
                 layers.append((data, {**kw, "name": f"{r.name}: classes", "opacity": 0.7,
                                       "colormap": colours}, "labels"))
             else:
                 img = np.asarray(f.data, np.float32)
                 layers.append((img, {**kw, "name": f"{r.name}: {fname}{suffix}",
-                                     "colormap": "viridis",
+                                     "colormap": QUANTITY_CMAP,
                                      "contrast_limits": robust_limits(img)}, "image"))
                 if f.errors is not None:
                     err = np.asarray(f.errors, np.float32)
                     layers.append((err, {**kw, "name": f"{r.name}: {fname} uncertainty{suffix}",
-                                         "colormap": "magma",
+                                         "colormap": QUANTITY_CMAP,
                                          "contrast_limits": robust_limits(err)}, "image"))
     return layers
+
+
+def class_legend_data(r):
+    """Rows of a class legend from a classification Result (numbers from its summary):
+    label value in the layer, colour, name (library match and HQI when identified), area %
+    and µm², and the class's mean ± sd spectrum."""
+    from mapkit.export.figures import CLASS_COLOURS
+
+    ident = {i["spectrum"]: i for i in r.summary.get("identification", [])}
+    spectra = r.fields.get("class_spectra")
+    rows = []
+    for k, (name, area) in enumerate(r.summary.get("areas", {}).items()):
+        match = ident.get(name)
+        shown = name if match is None or match.get("match") in (None, "unmatched") else \
+            f"{name}: {match['match']} (HQI {match['score']:.3f})"
+        row = {"label": k + 1, "class": name, "name": shown,
+               "colour": CLASS_COLOURS[k % len(CLASS_COLOURS)],
+               "fraction_pct": area["fraction_pct"], "area_um2": area["area_um2"]}
+        if spectra is not None and k < spectra.data.shape[0]:
+            row["shift"] = np.asarray(spectra.axes[-1].values, float)
+            row["mean"] = np.asarray(spectra.data[k], float)
+            row["sd"] = None if spectra.errors is None else np.asarray(spectra.errors[k], float)
+        rows.append(row)
+    return rows
+
+
+def optical_layer(placed, path=""):
+    """Layer data for a placed micrograph: drawn in the map's µm world through an affine."""
+    data = np.asarray(placed.image.data)
+    rgb = data.ndim == 3
+    kw = {"name": "micrograph", "affine": placed.pixel_to_map(), "rgb": rgb, "units": ("um", "um"),
+          "metadata": {"mapkit_optical": str(path),
+                       "description": placed.image.description}}
+    if not rgb:
+        kw.update(colormap="gray", contrast_limits=robust_limits(data))
+    return (data, kw, "image")

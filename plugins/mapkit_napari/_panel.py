@@ -242,6 +242,21 @@ class SpectrumPanel(QWidget):
         self._redraw()
         return mean, sd, n
 
+    def show_class_spectrum(self, row):
+        """Draw a class's mean ± sd spectrum (a legend row from ``class_legend_data``)."""
+        line, = self.ax.plot(row["shift"], row["mean"], color=row["colour"], lw=1.2,
+                             label=f"{row['name']}: mean ± sd")
+        self.region_lines.append(line)
+        if row.get("sd") is not None:
+            self.region_lines.append(self.ax.fill_between(
+                row["shift"], row["mean"] - row["sd"], row["mean"] + row["sd"],
+                color=row["colour"], alpha=0.25))
+        self.ax.set_ylabel("intensity (a.u.)", color=_FG, fontsize=9)
+        self.status.setText(f"{row['name']}: {row['fraction_pct']:.1f} % of the map, "
+                            f"{row['area_um2']:.0f} µm²")
+        self._redraw()
+        return line
+
     def band_from_range(self, lo, hi):
         """Make a band-integral image layer from a shift range dragged on the plot."""
         from mapkit.reduce import band_image

@@ -53,4 +53,16 @@ def read_layers(path):
         return []
     layers = [mean_image_layer(m, path, Path(path).stem)]
     layers += result_layers(results, common_kwargs(m, path))
+    placed = None
+    if is_nexus_map(path):
+        from mapkit.read.optical import read_placed_image
+
+        placed = read_placed_image(path)
+    if placed is not None:
+        # the micrograph at the bottom; the maps above it let it show through
+        from ._layers import optical_layer
+
+        for _, kw, _kind in layers:
+            kw.setdefault("opacity", 0.6)
+        layers.insert(0, optical_layer(placed, path))
     return layers
