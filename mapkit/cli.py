@@ -108,6 +108,10 @@ def _add_analysis_options(p, default_out="mapkit-output"):
                    help="number of classes for kmeans, minibatch or ward (default: as many as "
                         "--components)")
     p.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    p.add_argument("--min-score", type=_score, default=0.9,
+                   help="lowest hit-quality index (0-1, after removing offset and slope on both "
+                        "sides) that names a component or class from the library (default 0.9); "
+                        "below it the best candidate is still printed")
     p.add_argument("--recipe", help="TOML recipe of cleaning steps (default: mask bad pixels, "
                                     "despike, arPLS baseline; see 'mapkit steps')")
     big = p.add_argument_group("maps larger than memory")
@@ -207,6 +211,18 @@ def _range_arg(text):
     return _range(text)
 
 
+def _score(text: str) -> float:
+    import argparse
+
+    try:
+        v = float(text)
+    except ValueError:
+        v = float("nan")
+    if not 0.0 <= v <= 1.0:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a score between 0 and 1")
+    return v
+
+
 def _formats(a):
     choice = getattr(a, "figure_format", "png")
     return ("png", "svg") if choice == "both" else (choice,)
@@ -234,7 +250,7 @@ def _run_analysis(a, map_path, library, standards, bands):
                  n_classes=a.classes, seed=a.seed,
                  analyte=a.analyte, calibration_model=a.calibration_model,
                  weighting=a.weighting, response_band=a.response_band,
-                 internal_standard=a.internal_standard)
+                 internal_standard=a.internal_standard, min_score=a.min_score)
     if bands:
         s.bands = bands
     model = QuantModel.load(a.model_file) if a.model_file else None
@@ -266,21 +282,27 @@ def _run_analysis(a, map_path, library, standards, bands):
     if "optical" in summ:
         _print_optical(summ["optical"])
     km = summ["results"].get("classes") or summ["results"].get("kmeans", {})
-    names = {r["spectrum"]: r["match"] for r in km.get("identification", [])}
+    from .reduce.match import describe_match
+
+    names = {r["spectrum"]: describe_match(r) for r in km.get("identification", [])}
     if km.get("areas"):
         print("classes   " + ", ".join(
-            f"{k}{' (' + names[k] + ')' if k in names else ''} {v['fraction_pct']:.1f} %"
+            f"{k}{' = ' + names[k] if k in names else ''} {v['fraction_pct']:.1f} %"
             for k, v in km["areas"].items()))
     ident = summ["results"].get("nmf", {}).get("identification", [])
     if ident:
-        print("components " + ", ".join(f"{r['spectrum']} = {r['match']} (HQI "
-                                        f"{r['score']:.3f} on 0-1)" for r in ident))
+        print("components " + ", ".join(f"{r['spectrum']} = {describe_match(r)}"
+                                        for r in ident))
     conc = summ["results"].get("concentration")
     if conc:
         cal = conc["calibration"]
         fit = f"r = {cal['r']:.4f}" if "r" in cal else f"R² = {cal['r2']:.4f}"
         print(f"calibration {cal['analyte']} ({cal['model']}): {fit}, LOD {cal['lod']:.2f} "
               f"{cal['unit']}, LOQ {cal['loq']:.2f} {cal['unit']}")
+        if cal["model"] != "pls":
+            from .quantify.calibration import describe_lack_of_fit
+
+            print(f"          {describe_lack_of_fit(cal.get('lack_of_fit'))}")
         print(f"content   mean {conc['mean']:.2f} {conc['unit']}, median "
               f"{conc['percentiles'][50]:.2f}; {conc['below_loq']} of {conc['pixels']} pixels "
               f"below LOQ, {conc['outside_range']} outside the calibrated range")

@@ -39,6 +39,9 @@ def cmd_calibrate(a):
         coef = ", ".join(f"{v:.6g}" for v in c["coefficients"])
         print(f"coefficients b0, b1(, b2): {coef}")
         print(f"r = {c['r']:.5f}, s_y/x = {c['s_yx']:.5g}")
+        from .quantify.calibration import describe_lack_of_fit
+
+        print(describe_lack_of_fit(c.get("lack_of_fit")))
     print(f"LOD {c['lod']:.4g} {c['unit']}, LOQ {c['loq']:.4g} {c['unit']} (ICH Q2(R2))")
     print(f"wrote {path}, {out / 'recipe.toml'}, {out / 'calibration.png'}")
 

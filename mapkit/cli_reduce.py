@@ -113,9 +113,10 @@ def _write(a, m, results, lines):
 
 
 def _identified(res):
-    return [f"  {r['spectrum']}: {r['match']} (HQI {r['score']:.3f} on 0-1"
-            + (f", best candidate {r['best_candidate']}" if r["match"] == "unmatched" else "")
-            + ")" for r in res.summary.get("identification", [])]
+    from .reduce.match import describe_match
+
+    return [f"  {r['spectrum']}: {describe_match(r)}"
+            for r in res.summary.get("identification", [])]
 
 
 def cmd_components(a):
@@ -170,7 +171,8 @@ def cmd_unmix(a):
     ab = res.fields["abundance"].data
     names = [str(v) for v in res.fields["abundance"].axes[0].values]
     lines = [f"notice    {w}" for w in res.summary.get("notices", [])]
-    lines += [f"{n}: mean abundance {np.nanmean(ab[i]):.3g}" for i, n in enumerate(names)]
+    what = " (share of the fitted total)" if a.method == "fcls" else ""
+    lines += [f"{n}: mean abundance {np.nanmean(ab[i]):.3g}{what}" for i, n in enumerate(names)]
     lines.append(f"residual RMS median {np.nanmedian(res.fields['residual'].data):.3g} counts")
     return _write(a, m, [res], lines)
 
@@ -181,18 +183,23 @@ def cmd_peaks(a):
     m, _ = _prepare(a, minimal=True, lazy_ok=True)
     lo, hi = a.range
     res = peak_fit_map(m, lo, hi, shape=a.shape, n_peaks=a.peaks, centres=a.centres,
-                       weights=a.weights)
+                       weights=a.weights, min_significance=a.min_significance)
     results = [res]
     c = res.fields["centre" if a.peaks == 1 else "centre_1"]
-    lines = [f"{a.shape} fit in {lo:g}-{hi:g} 1/cm: {res.summary['pixels']} pixels, "
-             f"{res.summary['not_converged']} not converged ("
-             + ", ".join(f"{res.summary[k]} {k.replace('_', ' ')}" for k in
+    s = res.summary
+    lines = [f"{a.shape} fit in {lo:g}-{hi:g} 1/cm: {s['pixels']} pixels, "
+             f"{s['not_converged']} not converged ("
+             + ", ".join(f"{s[k]} {k.replace('_', ' ')}" for k in
                          ("iteration_limit", "stalled", "centre_outside", "singular")) + ")",
-             f"errors    {res.summary['covariance']} covariance"
-             + (" (robust to unequal channel noise)" if res.summary["covariance"] == "sandwich"
+             f"errors    {s['covariance']} covariance"
+             + (" (robust to unequal channel noise)" if s["covariance"] == "sandwich"
                 else ""),
-             f"centre median {np.nanmedian(c.data):.3f} 1/cm, median standard error "
-             f"{np.nanmedian(c.errors):.3f} 1/cm"]
+             f"reported  {s['reported']} pixels; masked {s['pixels'] - s['reported']} (band "
+             f"under {a.min_significance:g} standard errors: {s['no_band']}, centre outside "
+             f"the window: {s['left_window']})"]
+    if s["reported"]:
+        lines.append(f"centre median {np.nanmedian(c.data):.3f} 1/cm, median standard error "
+                     f"{np.nanmedian(c.errors):.3f} 1/cm (over the reported pixels)")
     if a.stress:
         if a.peaks != 1:
             raise MapkitError("a stress map needs a single-peak fit", field="--stress",
@@ -243,7 +250,8 @@ def add_parsers(sub, add_read_options, band_type, positive_int):
     c.add_argument("--closure", action="store_true", help="MCR: concentrations sum to one")
     c.add_argument("--library", help="folder of reference spectra to identify components")
     c.add_argument("--min-score", type=float, default=0.9,
-                   help="lowest hit-quality index that counts as a match (default 0.9)")
+                   help="lowest hit-quality index (0-1, after removing offset and slope on "
+                        "both sides) that counts as a match (default 0.9)")
     add_read_options(c)
     c.set_defaults(func=cmd_components)
 
@@ -260,7 +268,7 @@ def add_parsers(sub, add_read_options, band_type, positive_int):
                    help="print silhouette, Davies-Bouldin and inertia for each k in the range")
     k.add_argument("--library", help="folder of reference spectra to identify the classes")
     k.add_argument("--min-score", type=float, default=0.9,
-                   help="lowest hit-quality index that counts as a match (default 0.9)")
+                   help="lowest hit-quality index (0-1) that names a class (default 0.9)")
     add_read_options(k)
     k.set_defaults(func=cmd_classes)
 
@@ -268,7 +276,9 @@ def add_parsers(sub, add_read_options, band_type, positive_int):
     _common(u)
     u.add_argument("--library", required=True, help="folder of reference spectra")
     u.add_argument("--method", choices=("nnls", "fcls"), default="nnls",
-                   help="non-negative least squares, or fully constrained (shares sum to one)")
+                   help="nnls: non-negative abundances in reference units; fcls: shares that "
+                        "sum to 1 in every pixel, with a fitted per-pixel scale (so raw counts "
+                        "are fine; the scale is written as its own image)")
     u.add_argument("--baseline-order", type=int, default=5,
                    help="polynomial baseline terms fitted with the references (-1: none)")
     add_read_options(u)
@@ -291,6 +301,10 @@ def add_parsers(sub, add_read_options, band_type, positive_int):
                     help="poisson: maximum likelihood for shot noise (weights 1/expected "
                          "counts; raw counts only), uniform: least squares, auto (default): "
                          "poisson when every value in the window is non-negative")
+    pk.add_argument("--min-significance", type=float, default=3.0, metavar="Z",
+                    help="report a pixel only where every peak's height exceeds Z standard "
+                         "errors and its centre stays in the window (default 3); the others "
+                         "are blank in the maps and counted")
     pk.add_argument("--stress", choices=("uniaxial", "biaxial"),
                     help="also write a silicon stress map from the band centre")
     pk.add_argument("--reference", type=float, default=520.7,

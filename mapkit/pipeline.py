@@ -41,6 +41,7 @@ class Settings:
     response_band: tuple | None = None
     internal_standard: tuple | None = None
     memory_fraction: float = 0.5
+    min_score: float = 0.9
 
 
 def _memory_available() -> int:
@@ -203,17 +204,19 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     bar.update()
     # the same calls as the reduction subcommands and the viewer make (one place for each)
     stage("NMF")
-    nmf_result, = run_method(corrected, "nmf", n=s.n_components, seed=s.seed, library=refs)
+    nmf_result, = run_method(corrected, "nmf", n=s.n_components, seed=s.seed, library=refs,
+                             min_score=s.min_score)
     results.append(nmf_result)
     bar.update()
     stage("classes")
     if s.class_method == "dominant":
         km_result, = run_method(corrected, "dominant", n=s.n_components, library=refs,
-                                images=nmf_result.fields["images"].data, name="classes")
+                                images=nmf_result.fields["images"].data, name="classes",
+                                min_score=s.min_score)
     else:
         km_result, = run_method(corrected, s.class_method, n=s.n_classes or s.n_components,
                                 seed=s.seed, library=refs, normalisation=s.normalisation,
-                                name="classes")
+                                name="classes", min_score=s.min_score)
     results.append(km_result)
     bar.update()
     stage("unmixing")

@@ -6,10 +6,12 @@ import json
 import re
 from pathlib import Path
 
+import numpy as np
+
 from ..core.provenance import library_versions
 from ..core.result import Field
 from .atomic import atomic_path
-from .figures import save_image_figure, save_spectra_figure
+from .figures import bit_categories, save_image_figure, save_spectra_figure
 from .nexus import write_results_file
 from .tiff import write_tiff
 
@@ -52,13 +54,16 @@ def write_bundle(outdir, m, results, *, stem: str, overwrite: bool = False, figu
         for ext in formats:
             written.append(save(outdir / f"{base}.{ext}", *args, overwrite=overwrite, **kw))
 
+    from .labels import class_names, display_label, identified_names
+
     for r in results:
+        names = identified_names(r)
         for fname, fld in r.fields.items():
             if not fld.is_image or fld.data.ndim > 3 or fname in _NO_IMAGE_FILES:
                 continue
             base = f"{stem}_{r.name}" + ("" if fname in ("image", r.name) else f"_{fname}")
             written.append(write_tiff(outdir / f"{base}.tif", fld, overwrite=overwrite,
-                                      parameters=r.parameters))
+                                      parameters=r.parameters, names=names))
             if fld.errors is not None and fld.data.ndim == 2:
                 err = Field(f"{fld.signal}_uncertainty", fld.errors, fld.axes, fld.units,
                             long_name=f"standard uncertainty of {fld.long_name or fld.signal}")
@@ -72,15 +77,21 @@ def write_bundle(outdir, m, results, *, stem: str, overwrite: bool = False, figu
             if fld.data.ndim == 3:
                 for k, label in enumerate(fld.axes[0].values):
                     each_format(save_image_figure, f"{base}_{safe_name(label)}", fld, k,
-                                title=f"{r.name}: {label}")
+                                title=f"{r.name}: {display_label(label, names)}")
+            elif fld.signal == "labels":
+                n = int(np.max(fld.data)) + 1 if fld.data.size else 0
+                each_format(save_image_figure, base, fld, title=f"{r.name}: classes",
+                            classes=True, class_names=class_names(r, n))
             else:
-                each_format(save_image_figure, base, fld, title=r.name,
-                            classes=fld.signal == "labels")
+                bits = _bit_meanings(fld.signal)
+                each_format(save_image_figure, base, fld,
+                            title=r.name if fname in ("image", r.name) else f"{r.name}: {fname}",
+                            categories=None if bits is None else bit_categories(fld.data, bits))
         if figures:
             for fname, fld in r.fields.items():
                 if fld.axis_names[-1] == "raman_shift" and fld.data.ndim == 2:
                     each_format(save_spectra_figure, f"{stem}_{r.name}_{fname}", fld,
-                                title=f"{r.name}: {fname}")
+                                title=f"{r.name}: {fname}", names=names)
     if figures and optical is not None:
         written += write_optical_figures(outdir, stem, optical, results, overwrite=overwrite,
                                          formats=formats)
@@ -133,6 +144,19 @@ def write_optical_figures(outdir, stem, placed, results, *, overwrite=False, for
                                              k, title=label, classes=classes, underlay=placed,
                                              side_by_side=True, overwrite=overwrite))
     return written
+
+
+def _bit_meanings(signal: str):
+    """The bits of a quality bit field (drawn with a categorical legend), or None."""
+    if signal == "flags":
+        from ..quantify.concentration import FLAG_BITS
+
+        return FLAG_BITS
+    if signal == "rejected":
+        from ..reduce.peakfit import REJECT_MEANING
+
+        return REJECT_MEANING
+    return None
 
 
 def write_summary(outdir, summary: dict, name: str = "summary.json") -> Path:

@@ -45,6 +45,41 @@ def _figure(**kw):
     return Figure(**kw)
 
 
+def robust_limits(img, low: float = 2.0, high: float = 98.0):
+    """Colour limits from the ``low``-``high`` percentiles of the finite values, so a few
+    outliers (a fit that ran off, a hot pixel) do not flatten the real contrast.
+
+    Examples
+    --------
+    >>> v = np.r_[np.linspace(0, 1, 98), 1e6, np.nan]
+    >>> [round(float(x), 2) for x in robust_limits(v)]
+    [0.02, 0.99]
+    """
+    v = np.asarray(img, float)
+    v = v[np.isfinite(v)]
+    if v.size == 0:
+        return 0.0, 1.0
+    lo, hi = np.percentile(v, [low, high])
+    if not hi > lo:
+        lo, hi = float(v.min()), float(v.max())
+    if not hi > lo:
+        lo, hi = lo - 0.5, hi + 0.5
+    return float(lo), float(hi)
+
+
+def bit_categories(values, bits: dict) -> dict:
+    """Legend text for every bit-field value present: 0 "none", else the set bits joined.
+
+    Examples
+    --------
+    >>> bit_categories(np.array([0, 3, 3, 8]), {1: "low", 2: "lower", 8: "masked"})
+    {0: 'none', 3: 'low + lower', 8: 'masked'}
+    """
+    out = {}
+    for v in np.unique(np.asarray(values).astype(np.int64)):
+        names = [text for bit, text in bits.items() if int(v) & bit]
+        out[int(v)] = " + ".join(names) if names else "none"
+    return out
 def _draw_micrograph(ax, placed, extent, *, margin: float = 0.0, outline: bool = False,
                      max_side: int = 1200):
     """Draw a placed micrograph (mapkit.register.PlacedImage) under ``extent`` (µm), resampled
@@ -78,13 +113,20 @@ def _draw_micrograph(ax, placed, extent, *, margin: float = 0.0, outline: bool =
 
 def save_image_figure(path, field: Field, index: int | None = None, *, title: str = "",
                       classes: bool = False, overwrite: bool = False, dpi: int = 150,
+                      class_names=None, categories: dict | None = None,
                       underlay=None, opacity: float = 0.6, side_by_side: bool = False):
     """Save one image (a 2-D field, or plane ``index`` of a stack) as PNG or SVG.
+
+    Quantities use the 2nd-98th percentile as colour limits (:func:`robust_limits`; the
+    colourbar extends where values lie beyond). ``classes``: label images (0-based
+    indices, -1 masked) drawn with a legend numbered from 1, with ``class_names`` where
+    given. ``categories`` (value → text): a categorical legend, e.g. for bit fields.
 
     ``underlay`` (a :class:`mapkit.register.PlacedImage`) draws the map at ``opacity`` over
     the micrograph, or, with ``side_by_side``, the micrograph (map edge outlined) beside it.
     """
     from matplotlib.colors import BoundaryNorm, ListedColormap
+    from matplotlib.patches import Patch
 
     img = np.asarray(field.data if index is None else field.data[index], dtype=float)
     y, x = field.axes[-2].values, field.axes[-1].values
@@ -104,24 +146,57 @@ def save_image_figure(path, field: Field, index: int | None = None, *, title: st
         ax = fig.add_subplot()
         if underlay is not None:
             _draw_micrograph(ax, underlay, extent, margin=0.05)
-    if classes:
-        n = int(np.nanmax(img)) + 1
-        cmap = ListedColormap(CLASS_COLOURS[:max(n, 1)])
+    if classes or categories is not None:
+        if classes:
+            n = max(int(np.nanmax(img)) + 1, 1) if np.isfinite(img).any() else 1
+            values = list(range(n))
+            names = list(class_names or [])
+            labels = [f"class {k + 1}" + (f": {names[k]}" if k < len(names) and names[k]
+                                          else "") for k in values]
+            colours = [CLASS_COLOURS[k % len(CLASS_COLOURS)] for k in values]
+            masked = np.ma.masked_less(img, 0)
+        else:
+            values = sorted(categories)
+            labels = [categories[v] for v in values]
+            colours = ["#f2f2f2" if v == 0 else CLASS_COLOURS[k % len(CLASS_COLOURS)]
+                       for k, v in enumerate(values)]
+            masked = np.ma.masked_invalid(img)
+        # draw category indices, not the values themselves (bit fields are sparse)
+        lookup = {v: i for i, v in enumerate(values)}
+        index_img = np.ma.masked_array(np.zeros(img.shape), mask=np.ma.getmaskarray(masked))
+        for v, i in lookup.items():
+            index_img[np.asarray(img) == v] = i
+        cmap = ListedColormap(colours)
         cmap.set_bad("#bbbbbb")
-        masked = np.ma.masked_less(img, 0)
-        im = ax.imshow(masked, extent=extent, cmap=cmap, interpolation="nearest",
-                       norm=BoundaryNorm(np.arange(-0.5, n + 0.5), n))
-        cb = fig.colorbar(im, ax=ax, ticks=np.arange(n))
-        cb.ax.set_yticklabels([f"class {k + 1}" for k in range(n)])
+        im = ax.imshow(index_img, extent=extent, cmap=cmap, interpolation="nearest",
+                       norm=BoundaryNorm(np.arange(-0.5, len(values) + 0.5), len(values)))
+        cb = None
+        handles = [Patch(facecolor=c, edgecolor="#555555", label=t)
+                   for c, t in zip(colours, labels)]
+        if max(len(t) for t in labels) > 24:   # long texts below the map, not beside it
+            ax.legend(handles=handles, loc="upper center", bbox_to_anchor=(0.5, -0.2),
+                      fontsize=7, frameon=False, ncol=2)
+        else:
+            ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.02, 1.0),
+                      fontsize=7, frameon=False)
     else:
+        lo, hi = robust_limits(img)
+        finite = img[np.isfinite(img)]
+        extend = {(False, False): "neither", (True, False): "min", (False, True): "max",
+                  (True, True): "both"}[(bool(finite.size and finite.min() < lo),
+                                         bool(finite.size and finite.max() > hi))]
         im = ax.imshow(np.ma.masked_invalid(img), extent=extent, cmap=QUANTITY_CMAP,
-                       interpolation="nearest")
+                       interpolation="nearest", vmin=lo, vmax=hi)
         im.cmap.set_bad("#bbbbbb")
-        cb = fig.colorbar(im, ax=ax)
-        cb.set_label(f"{field.long_name or field.signal}" + (f" ({field.units})" if field.units else ""))
+        cb = fig.colorbar(im, ax=ax, extend=extend)
+        label = field.long_name or field.signal
+        if len(label) > 40:   # a long description would be cut off beside the bar
+            label = field.signal
+        cb.set_label(label + (f" ({field.units})" if field.units else ""))
     if underlay is not None and not side_by_side:
         im.set_alpha(opacity)
-        cb.solids.set_alpha(1)
+        if cb is not None:
+            cb.solids.set_alpha(1)
     ax.set_xlabel("x (µm)")
     ax.set_ylabel("y (µm)")
     _scale_bar(ax, extent)
@@ -132,10 +207,13 @@ def save_image_figure(path, field: Field, index: int | None = None, *, title: st
 
 
 def save_spectra_figure(path, field: Field, *, title: str = "", classes: bool = False,
-                        overwrite: bool = False, dpi: int = 150):
-    """Save stacked spectra (component or class spectra) against Raman shift."""
+                        overwrite: bool = False, dpi: int = 150, names: dict | None = None):
+    """Save stacked spectra (component or class spectra) against Raman shift; ``names``
+    (label → library name) are shown in the legend beside the labels."""
+    from .labels import display_label
+
     shift = field.axes[-1].values
-    names = [str(v) for v in field.axes[0].values]
+    names = [display_label(v, names or {}) for v in field.axes[0].values]
     fig = _figure(figsize=(6.4, 4.0), layout="constrained")
     ax = fig.add_subplot()
     data = np.asarray(field.data, float)

@@ -119,9 +119,17 @@ def _write_result(f, result: Result):
                 g.create_dataset(ax.name, data=[str(v) for v in vals], dtype=h5py.string_dtype())
             else:
                 _write_axis(g, ax.name, vals, ax.units)
-        d = g.create_dataset(fld.signal, data=fld.data)
+        if fld.signal == "labels":   # files number classes from 1 (0 = masked)
+            from .labels import CLASS_NUMBERING, class_numbers
+
+            d = g.create_dataset(fld.signal, data=class_numbers(fld.data))
+            d.attrs["numbering"] = CLASS_NUMBERING
+        else:
+            d = g.create_dataset(fld.signal, data=fld.data)
         d.attrs["units"] = fld.units
-        if fld.long_name:
+        if fld.signal == "labels":
+            d.attrs["long_name"] = CLASS_NUMBERING   # the Field's text describes 0-based indices
+        elif fld.long_name:
             d.attrs["long_name"] = fld.long_name
         if fld.errors is not None:
             e = g.create_dataset(f"{fld.signal}_errors", data=fld.errors)

@@ -11,6 +11,7 @@ from pathlib import Path
 
 from ..core.provenance import library_versions
 from .atomic import atomic_path
+from .labels import class_names, display_label, identified_names
 from .figures import (save_calibration_figure, save_histogram_figure, save_image_figure,
                       save_spectra_figure)
 
@@ -84,18 +85,18 @@ def write_report(path, *, map_name: str, summary: dict, results, model=None, rec
         if "nmf" in res:
             r = res["nmf"]
             imgs = r.fields["images"]
-            figs = [_img(fig(save_spectra_figure, r.fields["spectra"], title="component spectra"),
-                         "wide")]
-            figs += [_img(fig(save_image_figure, imgs, k, title=str(lbl)))
+            named = identified_names(r)
+            figs = [_img(fig(save_spectra_figure, r.fields["spectra"], title="component spectra",
+                             names=named), "wide")]
+            figs += [_img(fig(save_image_figure, imgs, k, title=display_label(lbl, named)))
                      for k, lbl in enumerate(imgs.axes[0].values)]
             ident = r.summary.get("identification", [])
-            table = _table([(i["spectrum"], i["match"], i["score"], i.get("runner_up", ""))
-                            for i in ident], ["component", "identified as", "HQI (0-1)",
-                                              "runner-up"]) if ident else ""
             parts.append("<h2>Components (NMF)</h2><p>Each component is a spectrum and an "
                          "image of where it sits; identification against the reference "
-                         "library uses the hit-quality index (1 = same shape).</p>"
-                         + table + f'<div class="figs">{"".join(figs)}</div>')
+                         "library uses the hit-quality index on a 0-1 scale (1 = same shape), "
+                         "after removing offset and slope from both sides.</p>"
+                         + _identification_table(ident, "component")
+                         + f'<div class="figs">{"".join(figs)}</div>')
         classes = res.get("classes") or res.get("kmeans")
         if classes is not None:
             r = classes
@@ -104,11 +105,14 @@ def write_report(path, *, map_name: str, summary: dict, results, model=None, rec
                      v.get("ecd_median_um")) for k, v in r.summary["areas"].items()]
             parts.append("<h2>Spectral classes (k-means)</h2>" + _table(
                 rows, ["class", "identified as", "area %", "area (µm²)", "domains",
-                       "median ECD (µm)"]) + '<div class="figs">'
+                       "median ECD (µm)"])
+                + _identification_table(r.summary.get("identification", []), "class")
+                + '<div class="figs">'
                 + _img(fig(save_image_figure, r.fields["labels"], title="classes",
-                           classes=True))
+                           classes=True, class_names=class_names(r, len(r.summary["areas"]))))
                 + _img(fig(save_spectra_figure, r.fields["class_spectra"],
-                           title="class mean ± sd"), "wide") + "</div>")
+                           title="class mean ± sd", names=identified_names(r)), "wide")
+                + "</div>")
         if "unmixing" in res:
             ab = res["unmixing"].fields["abundance"]
             figs = [_img(fig(save_image_figure, ab, k, title=str(lbl)))
@@ -135,6 +139,19 @@ def write_report(path, *, map_name: str, summary: dict, results, model=None, rec
     with atomic_path(path, overwrite=overwrite) as tmp_path:
         tmp_path.write_text(doc, encoding="utf-8")
     return Path(path)
+
+
+def _identification_table(ident, what):
+    """Library matches with their score (0-1); unmatched rows name the best candidate."""
+    if not ident:
+        return ""
+    rows = []
+    for i in ident:
+        other = (f"best candidate {i['best_candidate']}" if i["match"] == "unmatched"
+                 else f"runner-up {i['runner_up']} ({i['runner_up_score']:.3f})"
+                 if "runner_up" in i else "")
+        rows.append((i["spectrum"], i["match"], i["score"], other))
+    return _table(rows, [what, "identified as", "HQI (0-1)", "next best"])
 
 
 def _short(params, limit=160):
@@ -195,6 +212,9 @@ def _calibration(model, fig):
     else:
         rows += [("coefficients b0, b1(, b2)", ", ".join(f"{c:.5g}" for c in s["coefficients"])),
                  ("r" if s["model"] == "linear" else "R", s["r"]), ("s_y/x", s["s_yx"])]
+        from ..quantify.calibration import describe_lack_of_fit
+
+        rows.append(("lack-of-fit F-test", describe_lack_of_fit(s.get("lack_of_fit"))))
     rows += [("LOD (ICH Q2(R2), 3.3σ/S)", f"{s['lod']:.3g} {s['unit']}"),
              ("LOQ (ICH Q2(R2), 10σ/S)", f"{s['loq']:.3g} {s['unit']}")]
     return ("<h2>Calibration</h2>" + _table(rows, ["quantity", "value"])

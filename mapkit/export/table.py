@@ -11,9 +11,17 @@ from .atomic import atomic_path
 
 
 def image_columns(results):
-    """(column name, 2-D array) for every image in the results, stacks split by component."""
+    """(column name, 2-D array) for every image in the results, stacks split by component.
+
+    Components carry their library name where one was identified
+    (``nmf.images.component 1 (calcite)``); class images hold class numbers from 1
+    (0 = masked), as everywhere else.
+    """
+    from .labels import CLASS_NUMBERING, class_numbers, display_label, identified_names
+
     cols = []
     for r in results:
+        names = identified_names(r)
         for fname, fld in r.fields.items():
             if not fld.is_image or fld.data.ndim > 3:
                 continue
@@ -21,7 +29,9 @@ def image_columns(results):
             base = r.name if fname in ("image", r.name) else f"{r.name}.{fname}"
             if fld.data.ndim == 3:
                 for k, label in enumerate(fld.axes[0].values):
-                    cols.append((f"{base}.{label}{unit}", fld.data[k]))
+                    cols.append((f"{base}.{display_label(label, names)}{unit}", fld.data[k]))
+            elif fld.signal == "labels":
+                cols.append((f"{base} [{CLASS_NUMBERING}]", class_numbers(fld.data)))
             else:
                 cols.append((f"{base}{unit}", fld.data))
                 if fld.errors is not None:
@@ -31,13 +41,15 @@ def image_columns(results):
 
 def write_long_csv(path, m, results, *, overwrite: bool = False):
     """Write x (µm), y (µm), mask and every image value per pixel; a comment line records
-    the library versions. Masked or undefined values are empty cells."""
+    the library versions and the class legends. Masked or undefined values are empty
+    cells."""
     cols = image_columns(results)
     yy, xx = np.meshgrid(m.y, m.x, indexing="ij")
     with atomic_path(path, overwrite=overwrite) as tmp:
         with open(tmp, "w", newline="") as fh:
             fh.write("# mapkit long-form export; versions: " + ", ".join(
-                f"{k} {v}" for k, v in library_versions().items()) + "\n")
+                f"{k} {v}" for k, v in library_versions().items())
+                + "".join(f"; {line}" for line in _class_legends(results)) + "\n")
             w = csv.writer(fh)
             w.writerow(["x [um]", "y [um]", "masked"] + [c[0] for c in cols])
             flat = [c[1].ravel() for c in cols]
@@ -45,3 +57,20 @@ def write_long_csv(path, m, results, *, overwrite: bool = False):
                 w.writerow([f"{x:.6g}", f"{y:.6g}", int(bad)]
                            + ["" if not np.isfinite(v[i]) else f"{v[i]:.6g}" for v in flat])
     return path
+
+
+def _class_legends(results):
+    """``kmeans.labels: 1 = class 1 (calcite), 2 = class 2, ...`` for each class image."""
+    from .labels import display_label, identified_names
+
+    out = []
+    for r in results:
+        names = identified_names(r)
+        for fname, fld in r.fields.items():
+            if fld.signal == "labels" and fld.is_image and fld.data.size:
+                base = r.name if fname in ("image", r.name) else f"{r.name}.{fname}"
+                n = int(np.max(fld.data)) + 1
+                out.append(f"{base}: " + ", ".join(
+                    f"{k} = {display_label(f'class {k}', names)}" for k in range(1, n + 1))
+                           + ", 0 = masked")
+    return out

@@ -11,14 +11,19 @@ from ..core.result import Field
 from .atomic import atomic_path
 
 
-def write_tiff(path, field: Field, *, overwrite: bool = False, parameters: dict | None = None):
+def write_tiff(path, field: Field, *, overwrite: bool = False, parameters: dict | None = None,
+               names: dict | None = None):
     """Write an image or stack of images (…, y, x) as an ImageJ-compatible TIFF.
 
     The pixel size goes into the TIFF resolution tags and the ImageJ ``unit``
     (micron), so common image tools show the map in µm. Parameters and
-    library versions are recorded in the ImageJ ``Info`` property.
+    library versions are recorded in the ImageJ ``Info`` property. Class images are
+    written as class numbers from 1 (0 = masked); ``names`` (label → library name, e.g.
+    ``{"class 2": "calcite"}``) go into the ``Info`` record with the plane labels.
     """
     import tifffile
+
+    from .labels import CLASS_NUMBERING, class_numbers, display_label
 
     if not field.is_image:
         raise ValueError(f"{field.signal} is not an image (axes {field.axis_names})")
@@ -26,14 +31,23 @@ def write_tiff(path, field: Field, *, overwrite: bool = False, parameters: dict 
     dy = float(abs(np.median(np.diff(y)))) if len(y) > 1 else 1.0
     dx = float(abs(np.median(np.diff(x)))) if len(x) > 1 else 1.0
     data = np.asarray(field.data)
+    names = names or {}
+    extra = {}
+    if field.signal == "labels":
+        data = class_numbers(data)
+        n = int(data.max()) if data.size else 0
+        extra = {"numbering": CLASS_NUMBERING,
+                 "classes": {str(k): display_label(f"class {k}", names) for k in range(1, n + 1)}}
     if data.dtype.kind == "f" or data.dtype == np.float64:
         data = data.astype(np.float32)
     elif data.dtype.kind == "i" and data.dtype.itemsize > 2:
         data = data.astype(np.int16)
     axes = "ZYX" if data.ndim == 3 else "YX"
     info = json.dumps({"signal": field.signal, "units": field.units,
-                       "long_name": field.long_name, "origin_um": [float(y[0]), float(x[0])],
-                       "labels": [str(v) for v in field.axes[0].values] if data.ndim == 3 else [],
+                       "long_name": CLASS_NUMBERING if field.signal == "labels" else field.long_name,
+                       "origin_um": [float(y[0]), float(x[0])],
+                       "labels": [display_label(v, names) for v in field.axes[0].values]
+                       if data.ndim == 3 else [], **extra,
                        "parameters": parameters or {}, "versions": library_versions()})
     with atomic_path(path, overwrite=overwrite) as tmp:
         tifffile.imwrite(tmp, data, imagej=True, resolution=(1.0 / dx, 1.0 / dy),

@@ -50,6 +50,15 @@ class PolynomialCalibration(RegressorMixin, BaseEstimator):
     x_range_ : (float, float)
         Lowest and highest standard: results outside are flagged.
     residuals_ : array
+    lack_of_fit_ : dict or None
+        Lack-of-fit F-test when some levels were measured more than once and there are
+        more levels than coefficients (Draper & Smith 1998, *Applied Regression Analysis*,
+        3rd ed., §2.1; ISO 8466-1:2021): the residual sum of squares is split into pure
+        error (replicates about their level's mean, n − L degrees of freedom) and lack of
+        fit (level means about the curve, L − p), F = MS_lof / MS_pe. Keys ``F``,
+        ``df_lof``, ``df_pe``, ``p`` and ``suggestion`` (set when p < 0.05: the quadratic
+        model for a straight line, a narrower range for a quadratic). None without
+        replicates.
     """
 
     def __init__(self, degree: int = 1, weighting: str = "none", analyte: str = "analyte",
@@ -148,6 +157,7 @@ class PolynomialCalibration(RegressorMixin, BaseEstimator):
         self.x_mean_ = float(np.average(x))
         self.y_mean_ = float(np.average(y))
         self.sxx_ = float(np.sum((x - x.mean()) ** 2))
+        self.lack_of_fit_ = lack_of_fit_test(x, y, resid, w, p, degree=self.degree)
         return self
 
     # -- using ----------------------------------------------------------------------------
@@ -189,7 +199,8 @@ class PolynomialCalibration(RegressorMixin, BaseEstimator):
                 [float(c) for c in self.coef_], "slope": self.slope_, "intercept": self.intercept_,
                 "r": self.r_, "r2": self.r2_, "s_yx": self.s_yx_, "n": self.n_, "lod": self.lod_,
                 "loq": self.loq_, "range": list(self.x_range_), "t95": self.t95_,
-                "residuals": [float(r) for r in self.residuals_]}
+                "residuals": [float(r) for r in self.residuals_],
+                "lack_of_fit": getattr(self, "lack_of_fit_", None)}
 
     def to_dict(self) -> dict:
         return {"kind": "polynomial", "degree": self.degree, "weighting": self.weighting,
@@ -199,6 +210,54 @@ class PolynomialCalibration(RegressorMixin, BaseEstimator):
     @classmethod
     def from_dict(cls, d: dict) -> "PolynomialCalibration":
         return cls(d["degree"], d["weighting"], d["analyte"], d["unit"]).fit(d["x"], d["y"])
+
+
+#: significance level of the lack-of-fit test
+LACK_OF_FIT_ALPHA = 0.05
+
+
+def lack_of_fit_test(x, y, resid, w, p: int, *, degree: int = 1):
+    """Lack-of-fit F-test of a fitted curve against replicate standards (None without them).
+
+    ``resid`` are the fit's residuals, ``w`` its weights and ``p`` its number of
+    coefficients. Pure error is the (weighted) scatter of replicates about the mean of
+    their level; the rest of the residual sum of squares is lack of fit (Draper & Smith
+    1998, §2.1). Returns ``{"F", "df_lof", "df_pe", "p", "alpha", "suggestion"}``.
+    """
+    x = np.asarray(x, float)
+    levels, inverse = np.unique(x, return_inverse=True)
+    n, n_levels = x.size, levels.size
+    df_pe, df_lof = n - n_levels, n_levels - p
+    if df_pe < 1 or df_lof < 1:
+        return None
+    y = np.asarray(y, float)
+    w = np.asarray(w, float)
+    wsum = np.bincount(inverse, w)
+    means = np.bincount(inverse, w * y) / wsum
+    ss_pe = float(np.sum(w * (y - means[inverse]) ** 2))
+    ss_res = float(np.sum(w * np.asarray(resid, float) ** 2))
+    ss_lof = max(ss_res - ss_pe, 0.0)
+    if ss_pe <= 0:
+        return None  # identical replicates: no pure error to test against
+    F = (ss_lof / df_lof) / (ss_pe / df_pe)
+    pval = float(stats.f.sf(F, df_lof, df_pe))
+    suggestion = None
+    if pval < LACK_OF_FIT_ALPHA:
+        suggestion = ("the straight line misses the curvature of the standards: try the "
+                      "quadratic model" if degree == 1 else
+                      "the quadratic misses the shape of the standards: narrow the "
+                      "calibrated range or check the response")
+    return {"F": float(F), "df_lof": int(df_lof), "df_pe": int(df_pe), "p": pval,
+            "alpha": LACK_OF_FIT_ALPHA, "suggestion": suggestion}
+
+
+def describe_lack_of_fit(lof) -> str:
+    """One line for the lack-of-fit test (or why there is none)."""
+    if lof is None:
+        return "lack of fit: not tested (needs replicate standards at more levels than coefficients)"
+    text = (f"lack of fit F({lof['df_lof']}, {lof['df_pe']}) = {lof['F']:.3g}, p = {lof['p']:.3g} "
+            "(pure error from replicates; Draper & Smith 1998)")
+    return text + (f": {lof['suggestion']}" if lof["suggestion"] else ": no evidence of lack of fit")
 
 
 class LinearCalibration(PolynomialCalibration):

@@ -10,6 +10,9 @@ from ..errors import MapkitError
 #: bit flags of the concentration quality map
 BELOW_LOD, BELOW_LOQ, OUTSIDE_RANGE, MASKED = 1, 2, 4, 8
 FLAG_MEANING = "1 below LOD, 2 below LOQ, 4 outside the calibrated range, 8 masked or no response"
+#: the same, bit by bit (legends of the flags figure)
+FLAG_BITS = {BELOW_LOD: "below LOD", BELOW_LOQ: "below LOQ",
+             OUTSIDE_RANGE: "outside the calibrated range", MASKED: "masked or no response"}
 
 
 def response_fraction(abundance: np.ndarray, names, analyte: str) -> np.ndarray:

@@ -100,6 +100,7 @@ def read_results(path) -> dict[str, dict]:
                     "units": g[signal].attrs.get("units", ""),
                     "axes": {a: g[a][...] for a in axes if a in g},
                     "errors": g[f"{signal}_errors"][...] if f"{signal}_errors" in g else None,
+                    "numbering": str(g[signal].attrs.get("numbering", "")),
                     "extras": {k: g[k][...] for k in g if k not in (signal, f"{signal}_errors", *axes)},
                 }
             out[rname] = {"method": rgroup.attrs.get("method", ""),
@@ -124,8 +125,13 @@ def read_result_objects(path) -> list:
                 axes.append(Axis(aname, vals, "um" if aname in ("x", "y") else
                                  "1/cm" if aname == "raman_shift" else ""))
             units = f["units"].decode() if isinstance(f["units"], bytes) else str(f["units"])
+            data = f["data"]
+            if f.get("numbering"):   # class numbers from 1 in the file, 0-based in Python
+                from ..export.labels import class_indices
+
+                data = class_indices(data)
             try:
-                fields[fname] = Field(f["signal"], f["data"], tuple(axes), units,
+                fields[fname] = Field(f["signal"], data, tuple(axes), units,
                                       errors=f["errors"])
             except ValueError:
                 continue  # a group whose axes are not all stored: not an image or spectrum

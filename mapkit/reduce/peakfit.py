@@ -381,9 +381,47 @@ def _finish(theta, cost, n_iter, status, A, y, ssr, s, shape, n_peaks, per, K,
             "covariance": covariance, "names": names}
 
 
+#: bits of the peak-fit ``valid`` map's complement, the ``rejected`` bit field
+NOT_CONVERGED, NO_BAND, LEFT_WINDOW = 1, 2, 4
+REJECT_MEANING = {NOT_CONVERGED: "fit not converged", NO_BAND: "band not significant",
+                  LEFT_WINDOW: "centre outside the window"}
+
+
+def reject_fits(fit, lo: float, hi: float, shape: str, n_peaks: int,
+                min_significance: float = 3.0):
+    """Bit field (n,) of the reasons a pixel's fit is not to be reported (0 = keep).
+
+    ``NOT_CONVERGED`` (1): the fit's own flag; ``NO_BAND`` (2): some peak's height is not
+    above ``min_significance`` standard errors (or its error is undefined), so the pixel
+    holds no band to measure; ``LEFT_WINDOW`` (4): some centre lies outside ``lo``-``hi``.
+    Such pixels keep centres far from the band (a fit chasing noise), which would set a
+    figure's colour scale and the medians.
+
+    Examples
+    --------
+    >>> fit = {"theta": np.array([[50., 520., 4., 1., 0.], [2., 600., 4., 1., 0.]]),
+    ...        "stderr": np.array([[5., .1, .2, .1, .1], [3., 9., 9., 9., 9.]]),
+    ...        "converged": np.array([True, True])}
+    >>> reject_fits(fit, 500, 540, "lorentzian", 1).tolist()
+    [0, 6]
+    """
+    per = len(PEAK_PARAMS[shape])
+    theta, err = np.asarray(fit["theta"]), np.asarray(fit["stderr"])
+    out = np.where(np.asarray(fit["converged"], bool), 0, NOT_CONVERGED).astype(np.uint8)
+    lo, hi = sorted((lo, hi))
+    for k in range(n_peaks):
+        h, eh, c = theta[:, k * per], err[:, k * per], theta[:, k * per + 1]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            weak = ~(np.isfinite(eh) & (h > min_significance * eh))
+        out[weak] |= NO_BAND
+        out[~((c >= lo) & (c <= hi))] |= LEFT_WINDOW
+    return out
+
+
 def peak_fit_map(m: RamanMap, lo: float, hi: float, *, shape: str = "lorentzian",
                  n_peaks: int = 1, centres=None, weights: str = "auto",
-                 name: str = "peakfit", block: int = 4096, covariance: str = "auto") -> Result:
+                 name: str = "peakfit", block: int = 4096, covariance: str = "auto",
+                 min_significance: float = 3.0) -> Result:
     """Maps of centre, FWHM, height and area (with standard errors) and the fit quality.
 
     Fields: for each peak ``centre``, ``fwhm``, ``height``, ``area`` (signal with
@@ -391,6 +429,11 @@ def peak_fit_map(m: RamanMap, lo: float, hi: float, *, shape: str = "lorentzian"
     a pixel whose fit did not converge, or whose centre left the window, reads 0) and
     ``fit_status`` (why: the codes of :data:`STATUS_NAMES`). ``covariance`` as in
     :func:`fit_peaks`.
+    Pixels without a significant band (height ≤ ``min_significance`` standard errors),
+    with a centre outside the window or without convergence are NaN in the peak maps
+    and their errors (see :func:`reject_fits`); ``rejected`` records why (bit field:
+    1 not converged, 2 band not significant, 4 centre outside the window) and the
+    summary counts them, so medians and colour scales describe real bands only.
     """
     ny, nx, ns = m.shape
     # only the fit window is read: on a lazy map, chunk by chunk, so a cube larger than
@@ -420,6 +463,8 @@ def peak_fit_map(m: RamanMap, lo: float, hi: float, *, shape: str = "lorentzian"
 
     axes = image_axes(m)
     fields = {}
+    rejected = reject_fits(fit, lo, hi, shape, n_peaks, min_significance)
+    keep = rejected == 0
     for k in range(n_peaks):
         o = k * per
         tag = f"_{k + 1}" if n_peaks > 1 else ""
@@ -438,10 +483,11 @@ def peak_fit_map(m: RamanMap, lo: float, hi: float, *, shape: str = "lorentzian"
         for key, val, err, units in (("centre", c, ec, "1/cm"), ("fwhm", w, ew, "1/cm"),
                                      ("height", h, eh, "counts"),
                                      ("area", area, earea, "counts*1/cm")):
-            fields[f"{key}{tag}"] = Field(key, image(val), axes, units, errors=image(err),
+            fields[f"{key}{tag}"] = Field(key, image(np.where(keep, val, np.nan)), axes,
+                                          units, errors=image(np.where(keep, err, np.nan)),
                                           long_name=f"peak {key}{tag} ({shape})")
         if shape == "pseudo_voigt":
-            fields[f"eta{tag}"] = Field("eta", image(eta), axes, "",
+            fields[f"eta{tag}"] = Field("eta", image(np.where(keep, eta, np.nan)), axes, "",
                                         long_name="Lorentzian fraction")
     fields["chi2_reduced"] = Field("chi2_reduced", image(fit["chi2_reduced"]), axes, "",
                                    long_name="reduced chi-square")
@@ -451,16 +497,23 @@ def peak_fit_map(m: RamanMap, lo: float, hi: float, *, shape: str = "lorentzian"
     state = image(fit["status"].astype(float), fill=255).astype(np.uint8)
     fields["fit_status"] = Field("fit_status", state, axes, "", long_name="; ".join(
         f"{k} = {v}" for k, v in STATUS_NAMES.items()) + "; 255 = masked")
+    fields["rejected"] = Field("rejected", image(rejected, fill=0).astype(np.uint8), axes, "",
+                               long_name="why a pixel is not reported (bits)")
     summary = {"pixels": int(good.size), "not_converged": int((~fit["converged"]).sum()),
                **{key: int((fit["status"] == k).sum()) for k, key in
                   ((ITERATION_LIMIT, "iteration_limit"), (STALLED, "stalled"),
                    (CENTRE_OUTSIDE, "centre_outside"), (SINGULAR, "singular"))},
                "median_iterations": float(np.median(fit["n_iter"])),
-               "covariance": fit["covariance"]}
+               "covariance": fit["covariance"],
+               "reported": int(keep.sum()),
+               "no_band": int(((rejected & NO_BAND) > 0).sum()),
+               "left_window": int(((rejected & LEFT_WINDOW) > 0).sum()),
+               "min_significance": float(min_significance)}
     return Result(name, f"peak_fit_{shape}", {"lo": lo, "hi": hi, "shape": shape,
                                                "n_peaks": n_peaks, "centres": centres,
                                                "weights": weights,
-                                               "covariance": fit["covariance"]},
+                                               "covariance": fit["covariance"],
+                                               "min_significance": min_significance},
                   fields, summary)
 
 

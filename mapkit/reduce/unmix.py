@@ -118,7 +118,9 @@ def unmix_spectra(R, X, shift, baseline_order: int | None = None, *, sum_to_one:
     without sign constraint, by projecting data and references onto the orthogonal
     complement of the polynomials. ``sum_to_one`` adds the fully constrained
     least-squares condition Σa = 1 (FCLS, Heinz & Chang 2001, IEEE TGRS 39:529), solved
-    exactly on the simplex. ``tol`` is the NNLS stopping tolerance (relative; 1e-6 is about
+    exactly on the simplex with the scale fixed at 1: right only when spectra and
+    references share one intensity scale (e.g. both area-normalised); for counts use
+    ``ReferenceUnmixing(method="fcls")``, which fits the scale. ``tol`` is the NNLS stopping tolerance (relative; 1e-6 is about
     3x faster and changes abundances by ~1e-8 relative). Returns (abundances (k, m),
     residual RMS (m,)).
     """
@@ -191,6 +193,36 @@ def polynomial_basis(shift, order: int) -> np.ndarray:
     return q
 
 
+#: |r| above which two references (after the baseline projection) are reported as collinear
+COLLINEAR_R = 0.98
+
+
+def collinear_pairs(R, shift, baseline_order: int | None, threshold: float = COLLINEAR_R):
+    """Pairs of rows of ``R`` whose correlation after the baseline projection exceeds
+    ``threshold`` in absolute value: ``[(i, j, r), ...]``.
+
+    The baseline terms of the unmixing (polynomials up to ``baseline_order``, or just a
+    constant when None) are projected out first, so two references that differ only by
+    an offset or a slope count as the same spectrum, as they do for the fit.
+
+    Examples
+    --------
+    >>> s = np.linspace(0, 1, 50)
+    >>> R = np.stack([np.exp(-(s - .3) ** 2 / .01), 2 * np.exp(-(s - .3) ** 2 / .01) + s,
+    ...               np.exp(-(s - .7) ** 2 / .01)])
+    >>> [(i, j, round(r, 6)) for i, j, r in collinear_pairs(R, s, 1)]
+    [(0, 1, 1.0)]
+    """
+    Q = polynomial_basis(shift, 0 if baseline_order is None else baseline_order)
+    P = np.asarray(R, float).T
+    P = P - Q @ (Q.T @ P)
+    norm = np.linalg.norm(P, axis=0)
+    C = (P.T @ P) / np.maximum(np.outer(norm, norm), 1e-300)
+    k = C.shape[0]
+    return [(i, j, float(C[i, j])) for i in range(k) for j in range(i + 1, k)
+            if abs(C[i, j]) > threshold]
+
+
 class ReferenceUnmixing(TransformerMixin, BaseEstimator):
     """Abundances of known reference spectra in every pixel, with an optional polynomial baseline.
 
@@ -203,9 +235,18 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
     removed beforehand eats the wings of broad bands, and the joint fit then has nothing
     left to correct (measured on the scene family: benchmarks/RESULTS.md).
 
-    With ``method="fcls"`` the abundances are also forced to sum to one (fully
-    constrained least squares, Heinz & Chang 2001); that only makes sense when spectra
-    and references share one intensity scale (e.g. both area-normalised).
+    With ``method="fcls"`` the abundances are shares that sum to one (fully constrained
+    least squares, Heinz & Chang 2001) times a free scale per pixel,
+    y = s Σ aᵢ rᵢ + baseline with aᵢ ≥ 0, Σaᵢ = 1, s ≥ 0. Raw counts and references on
+    any intensity scale then give the right shares: the classical FCLS with s fixed at 1
+    is only right when spectra and references share one scale, and on counts it forced
+    the shares far off. Since every non-negative vector is a scale times a point of the
+    simplex, the optimum is the NNLS solution z with a = z / Σz and s = Σz (exact, not
+    an approximation); ``scale`` is written as its own image. The shares are in units of
+    the references as given (a reference scaled ×2 halves its share).
+
+    References that are (nearly) collinear after the baseline projection cannot be told
+    apart: ``fit`` warns with each pair whose correlation exceeds ``COLLINEAR_R`` (0.98).
 
     Parameters
     ----------
@@ -225,6 +266,8 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
         References on the map's axis.
     resampled_ : bool
         True when the references were interpolated onto the map's axis.
+    collinear_ : list of (str, str, float)
+        Reference pairs with |r| > ``COLLINEAR_R`` after the baseline projection.
     """
 
     def __init__(self, references=(), baseline_order: int | str | None = "auto",
@@ -260,37 +303,71 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
         if self.resampled_:
             warnings.warn("reference spectra were interpolated onto the map's shift axis",
                           stacklevel=2)
-        self.names_ = names
-        self.references_ = R
-        self.raman_shift_ = m.raman_shift.copy()
         if order == "auto":
             X, _ = good_spectra(m, what="unmixing")
             order = choose_baseline_order(R, X, m.raman_shift)
         self.baseline_order_ = order
+        self.collinear_ = [(names[i], names[j], r) for i, j, r in
+                           collinear_pairs(R, m.raman_shift, self.baseline_order_)]
+        for a, b, r in self.collinear_:
+            warnings.warn(f"references {a!r} and {b!r} are nearly collinear (r = {r:.4f} after "
+                          "the baseline terms): their abundances cannot be told apart; drop "
+                          "or merge one of them", stacklevel=2)
+        if self.method == "fcls":
+            warnings.warn("fcls: abundances are shares summing to 1 in each pixel; the fitted "
+                          "total (counts per unit reference) is the 'scale' image", stacklevel=2)
+        self.names_ = names
+        self.references_ = R
+        self.raman_shift_ = m.raman_shift.copy()
         return self
 
     def transform(self, m: RamanMap):
-        """Abundance images (k, ny, nx) and the residual RMS image (ny, nx); masked pixels NaN."""
+        """Abundance images (k, ny, nx) and the residual RMS image (ny, nx); masked pixels NaN.
+
+        For ``method="fcls"`` the abundances are shares (sum 1 per pixel; NaN where nothing
+        of any reference is found) and :meth:`scale_images` holds the fitted totals.
+        """
+        abundance, rms, _ = self._unmix(m)
+        return abundance, rms
+
+    def _unmix(self, m: RamanMap):
         if m.shape[2] != self.raman_shift_.size or not np.allclose(m.raman_shift, self.raman_shift_):
             raise MapkitError("the map's shift axis differs from the one the model was fitted on",
                               file=m.source, field="raman_shift", fix="fit on this map")
         X, good = good_spectra(m, what="unmixing")
-        A, rms = unmix_spectra(self.references_, X, m.raman_shift, self.baseline_order_,
-                               sum_to_one=self.method == "fcls")
-        return to_images(m, A.T, good), to_images(m, rms[:, None], good)[0]
+        # fcls with a free scale: the NNLS optimum z gives shares z / sum(z) exactly
+        A, rms = unmix_spectra(self.references_, X, m.raman_shift, self.baseline_order_)
+        scale = None
+        if self.method == "fcls":
+            total = A.sum(axis=0)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                A = np.where(total > 0, A / total, np.nan)
+            scale = to_images(m, total[:, None], good)[0]
+        return to_images(m, A.T, good), to_images(m, rms[:, None], good)[0], scale
 
     def result(self, m: RamanMap, name: str = "unmixing") -> Result:
-        abundance, rms = self.transform(m)
+        abundance, rms, scale = self._unmix(m)
         comp = Axis("component", np.array(self.names_))
+        fcls = self.method == "fcls"
+        fields = {"abundance": Field("abundance", abundance, (comp, *image_axes(m)),
+                                     "share" if fcls else "reference units",
+                                     long_name="share of each reference (sum 1)" if fcls
+                                     else "abundance of each reference"),
+                  "residual": Field("residual_rms", rms, image_axes(m), "counts",
+                                    long_name="RMS of the fit residual"),
+                  "references": Field("reference", self.references_,
+                                      (comp, shift_axis(m)), "a.u.",
+                                      long_name="reference spectrum on the map axis")}
+        if fcls:
+            fields["scale"] = Field("scale", scale, image_axes(m), "reference units",
+                                    long_name="fitted total of the references (shares × scale "
+                                              "= abundances)")
+        summary = {}
+        if self.collinear_:
+            summary["collinear_references"] = [{"pair": [a, b], "r": r}
+                                               for a, b, r in self.collinear_]
         return Result(name, f"{self.method}_unmixing",
                       {"references": self.names_, "baseline_order": self.baseline_order_,
                        "baseline_order_requested": self.baseline_order,
                        "method": self.method, "resampled": self.resampled_},
-                      {"abundance": Field("abundance", abundance, (comp, *image_axes(m)),
-                                          "reference units",
-                                          long_name="abundance of each reference"),
-                       "residual": Field("residual_rms", rms, image_axes(m), "counts",
-                                         long_name="RMS of the fit residual"),
-                       "references": Field("reference", self.references_,
-                                           (comp, shift_axis(m)), "a.u.",
-                                           long_name="reference spectrum on the map axis")})
+                      fields, summary)
