@@ -7,10 +7,12 @@ plain script, both scored against the noise floor.
 For every scene kind (``mapkit.scenes.KINDS``) and seed, the scene is written as a map file
 plus a library of its true pure spectra, and run through
 
-- **mapkit**: ``mapkit analyse MAP --library LIB --components K --classes K`` with every
-  other option at its default (K = the scene's number of materials, as a user who knows
+- **mapkit**: ``mapkit analyse MAP --library LIB --components K`` with every other option
+  at its default (K = the scene's number of materials, as a user who knows
   the sample would choose);
-- **plain script**: pybaselines ``asls`` per spectrum (its defaults), then scikit-learn
+- **plain script**: spikes replaced by a 5-channel running median where a channel stands
+  more than 6 robust standard deviations above it (common practice), pybaselines ``asls``
+  per spectrum (its defaults), then scikit-learn
   ``NMF`` (nndsvda) on the clipped corrected spectra, ``KMeans`` on the vector-normalised
   corrected spectra and ``scipy.optimize.nnls`` per pixel against the true references.
 
@@ -47,12 +49,12 @@ def run_mapkit(scene, folder, extra=()):
     out = Path(folder) / "out"
     k = len(scene.names)
     rc = mapkit_main(["analyse", str(map_path), "--library", str(lib), "--components", str(k),
-                      "--classes", str(k), "--out", str(out), "--no-figures", "--quiet",
+                      "--out", str(out), "--no-figures", "--quiet",
                       "--overwrite", *extra])
     if rc != 0:
         raise SystemExit(f"mapkit analyse failed on {scene.kind} seed {scene.seed} (exit {rc})")
     res = read_results(out / "results.h5")
-    nmf = res["nmf"]["fields"]
+    nmf = (res.get("mcr") or res["nmf"])["fields"]
     classes = next(r for name, r in res.items() if "labels" in r["fields"])
     un = res["unmixing"]["fields"]["abundance"]
     names = [n.decode() if isinstance(n, bytes) else str(n) for n in un["axes"]["component"]]
@@ -71,8 +73,16 @@ def run_plain(scene, seed=0):
     ny, nx, n = scene.counts.shape
     X = scene.counts.reshape(-1, n).astype(float)
     good = ~np.all(X == 0, axis=1)
+    from scipy.signal import medfilt
+
+    Y = X[good].copy()
+    for y in Y:
+        med = medfilt(y, 5)
+        r = y - med
+        spike = r > 6 * 1.4826 * np.median(np.abs(r - np.median(r)))
+        y[spike] = med[spike]
     fitter = Baseline(scene.raman_shift)
-    C = np.array([y - fitter.asls(y)[0] for y in X[good]])
+    C = np.array([y - fitter.asls(y)[0] for y in Y])
     k = len(scene.names)
     nmf = NMF(k, init="nndsvda", max_iter=1000, random_state=seed)
     W = nmf.fit_transform(np.clip(C, 0, None))

@@ -99,6 +99,10 @@ def _add_analysis_options(p, default_out="mapkit-output"):
     p.add_argument("--band", action="append", type=_band, metavar="NAME:LO-HI",
                    help="band image to integrate, cm-1 (repeatable)")
     p.add_argument("--components", type=_positive_int, default=4, help="NMF components (default 4)")
+    p.add_argument("--component-method", choices=("mcr", "nmf"), default="mcr",
+                   help="components: 'mcr' (default) is MCR-ALS on the despiked spectra with a "
+                        "polynomial background per pixel, started from the purest pixels; "
+                        "'nmf' factorises the baseline-corrected spectra")
     p.add_argument("--class-method", choices=("dominant", "kmeans", "minibatch", "ward"),
                    default="dominant",
                    help="classes: 'dominant' (default) puts each pixel in the NMF component "
@@ -246,7 +250,8 @@ def _run_analysis(a, map_path, library, standards, bands):
     if a.class_method == "dominant" and a.classes not in (None, a.components):
         raise MapkitError("dominant-component classes come one per NMF component",
                           field="--classes", fix="drop --classes, or add --class-method kmeans")
-    s = Settings(n_components=a.components, class_method=a.class_method,
+    s = Settings(n_components=a.components, component_method=a.component_method,
+                 class_method=a.class_method,
                  n_classes=a.classes, seed=a.seed,
                  analyte=a.analyte, calibration_model=a.calibration_model,
                  weighting=a.weighting, response_band=a.response_band,
@@ -289,7 +294,8 @@ def _run_analysis(a, map_path, library, standards, bands):
         print("classes   " + ", ".join(
             f"{k}{' = ' + names[k] if k in names else ''} {v['fraction_pct']:.1f} %"
             for k, v in km["areas"].items()))
-    ident = summ["results"].get("nmf", {}).get("identification", [])
+    results = summ["results"]
+    ident = (results.get("mcr") or results.get("nmf") or {}).get("identification", [])
     if ident:
         print("components " + ", ".join(f"{r['spectrum']} = {describe_match(r)}"
                                         for r in ident))

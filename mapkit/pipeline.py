@@ -25,6 +25,9 @@ class Settings:
     bands: list = field(default_factory=list)
     normalisation: str = "vector"
     n_components: int = 4
+    #: "mcr": MCR-ALS with a polynomial background per pixel on the despiked spectra;
+    #: "nmf": NMF of the baseline-corrected spectra
+    component_method: str = "mcr"
     #: "dominant" (each pixel joins its dominant NMF component) or a clustering method
     #: ("kmeans", "minibatch", "ward") of the spectra's shapes
     class_method: str = "dominant"
@@ -132,7 +135,7 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     outdir.mkdir(parents=True, exist_ok=True)
     recipe = recipe or Recipe.default()
     stages = ["read"] + [name for name, _ in recipe.steps] + [
-        "bands", "NMF", "classes", "unmixing", "concentration", "write"]
+        "bands", "components", "classes", "unmixing", "concentration", "write"]
     bar = tqdm(total=len(stages), desc="mapkit", unit="step", disable=not progress, leave=False)
 
     def stage(name):
@@ -176,19 +179,9 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
         stage(name)
         bar.update()
 
-    # unmixing fits the background together with the references, so it takes the map as
-    # it was before the recipe's first baseline step (a baseline subtracted first eats the
-    # wings of broad bands); a later binning step would change the grid, so then it cannot
-    corrected, extras, with_background = m, {}, None
-    previous = m
-    for name, corrected, extra in recipe.iter_apply(m, progress=step_progress):
-        extras[name] = extra
-        if name == "baseline" and with_background is None:
-            with_background = previous
-        previous = corrected
-    names = [n for n, _ in recipe.steps]
-    if with_background is None or "bin" in names[names.index("baseline"):]:
-        with_background = corrected
+    # unmixing and background MCR fit the fluorescence themselves: the map before the baseline
+    corrected, extras, with_background = recipe.apply_keeping_background(
+        m, progress=step_progress)
     bad_report = extras.get("mask_bad_pixels", {}).get("report",
                                                        {"nonfinite": 0, "dead": 0, "saturated": 0})
     spikes = extras.get("despike", {}).get("spikes")
@@ -203,15 +196,20 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
                               fix=exc.fix) from None
     bar.update()
     # the same calls as the reduction subcommands and the viewer make (one place for each)
-    stage("NMF")
-    nmf_result, = run_method(corrected, "nmf", n=s.n_components, seed=s.seed, library=refs,
-                             min_score=s.min_score)
-    results.append(nmf_result)
+    stage("components")
+    if s.component_method == "mcr":   # fits the background itself: the despiked map
+        comp_result, = run_method(with_background, "mcr_background", n=s.n_components,
+                                 seed=s.seed, library=refs, min_score=s.min_score)
+    else:
+        comp_result, = run_method(corrected, "nmf", n=s.n_components, seed=s.seed,
+                                 library=refs, min_score=s.min_score)
+    results.append(comp_result)
     bar.update()
     stage("classes")
     if s.class_method == "dominant":
         km_result, = run_method(corrected, "dominant", n=s.n_components, library=refs,
-                                images=nmf_result.fields["images"].data, name="classes",
+                                images=comp_result.fields["images"].data, name="classes",
+                                spectra=comp_result.fields["spectra"].data,
                                 min_score=s.min_score)
     else:
         km_result, = run_method(corrected, s.class_method, n=s.n_classes or s.n_components,
@@ -348,14 +346,17 @@ def optical_summary(placed) -> dict:
     return out
 
 
-METHODS = ("nmf", "mcr", "pca", "kmeans", "minibatch", "ward", "dominant", "unmix", "fcls",
+#: methods that fit the background themselves and take the map before the baseline step
+FITS_BACKGROUND = ("mcr_background", "unmix", "fcls")
+METHODS = ("nmf", "mcr", "mcr_background", "pca", "kmeans", "minibatch", "ward", "dominant", "unmix", "fcls",
            "content")
 
 
 def run_method(m, method: str, *, n: int = 4, seed: int = 0, library=None, model=None,
                init: str = "nndsvda", closure: bool = False, smooth: float = 0.0,
                baseline_order: int | str | None = "auto", min_score: float = 0.9,
-               images=None, normalisation: str = "vector", name: str = "classes"):
+               images=None, spectra=None, normalisation: str = "vector",
+               name: str = "classes"):
     """Run one reduction or quantification method on a cleaned map; returns its Results.
 
     The command line's ``analyse``, ``components``, ``classes`` and ``unmix`` subcommands
@@ -363,13 +364,14 @@ def run_method(m, method: str, *, n: int = 4, seed: int = 0, library=None, model
     ``normalisation`` and ``name`` apply to the classifications (spectra are normalised
     before clustering; ``name`` is the result's name). ``"dominant"`` classes follow the
     largest of the component ``images`` (default: those of an NMF of ``m`` with ``n``
-    components); ``baseline_order`` is the unmixing's ("auto": chosen by the data).
+    components) and are named by matching the components' ``spectra`` (default: the class
+    means); ``baseline_order`` is the unmixing's ("auto": chosen by the data).
     """
     import warnings
 
     from .preprocess import normalise_map
-    from .reduce import (MCRALS, DominantClasses, KMeansClasses, NMFComponents, PCAScores,
-                         ReferenceUnmixing)
+    from .reduce import (MCRALS, BackgroundMCR, DominantClasses, KMeansClasses, NMFComponents,
+                         PCAScores, ReferenceUnmixing)
     from .reduce import match_library
 
     if method not in METHODS:
@@ -378,9 +380,11 @@ def run_method(m, method: str, *, n: int = 4, seed: int = 0, library=None, model
     names = [f"component {i + 1}" for i in range(n)]
     if method == "pca":
         return [PCAScores(n_components=n, random_state=seed).fit(m).result(m)]
-    if method in ("nmf", "mcr"):
+    if method in ("nmf", "mcr", "mcr_background"):
         if method == "nmf":
             est = NMFComponents(n_components=n, init=init, random_state=seed).fit(m)
+        elif method == "mcr_background":
+            est = BackgroundMCR(n_components=n, random_state=seed).fit(m)
         else:
             est = MCRALS(n_components=n, init=init if init != "nndsvda" else "vca",
                          closure=closure, random_state=seed).fit(m)
@@ -392,13 +396,14 @@ def run_method(m, method: str, *, n: int = 4, seed: int = 0, library=None, model
         return [res]
     if method == "dominant":
         if images is None:   # the components of an NMF of this map
-            images = run_method(m, "nmf", n=n, seed=seed)[0].fields["images"].data
+            fields = run_method(m, "nmf", n=n, seed=seed)[0].fields
+            images, spectra = fields["images"].data, fields["spectra"].data
         dom = DominantClasses(n_classes=len(images)).fit(m, images)
         res = dom.result(m, name=name)
-        if library:
-            res.summary["identification"] = match_library(dom.class_mean_, m.raman_shift,
-                                                          library, names=list(res.summary["areas"]),
-                                                          min_score=min_score)
+        if library:   # class k is component k: its spectrum names it
+            res.summary["identification"] = match_library(
+                dom.class_mean_ if spectra is None else spectra, m.raman_shift, library,
+                names=list(res.summary["areas"]), min_score=min_score)
         return [res]
     if method in ("kmeans", "minibatch", "ward"):
         normed = normalise_map(m, method=normalisation)

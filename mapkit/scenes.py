@@ -21,10 +21,11 @@ Truth (``Scene.truth``):
 - ``abundance`` (k, ny, nx): the coefficient of each pure spectrum in each pixel (volume
   fraction times the local collection efficiency), so the noise-free Raman signal is
   ``abundance·pure_spectra``;
-- ``fraction`` (k, ny, nx): volume fractions (sum to one);
+- ``fraction`` (k, ny, nx): volume fractions (sum to one); ``labels`` is their argmax
+  (the component with the largest abundance), -1 on dead pixels; ``core`` marks pixels
+  whose largest fraction is at least 0.8;
 - ``signal_share`` (k, ny, nx): share of each component in the pixel's integrated Raman
-  signal; ``labels`` is its argmax (the component a spectral method can see dominating),
-  -1 on dead pixels; ``core`` marks pixels where that share is at least 0.8;
+  signal;
 - ``background`` (ny, nx, n): fluorescence plus detector offset, in counts;
 - ``spike_mask`` (ny, nx, n): channels a cosmic-ray spike was added to;
 - ``bad_pixels`` (ny, nx): dead pixels (flat zero).
@@ -330,10 +331,11 @@ def make_scene(kind: str, seed: int = 0, shape=(48, 56)) -> Scene:
     spike_mask[bad] = False
     counts = np.clip(np.round(counts), 0, 65535).astype(np.float32)
 
-    labels = np.argmax(share, axis=0).astype(np.int16)
+    labels = np.argmax(fraction, axis=0).astype(np.int16)
     labels[bad] = -1
     truth = {"pure_spectra": pure, "abundance": abundance, "fraction": fraction,
-             "signal_share": share, "labels": labels, "core": (dominant_share >= 0.8) & ~bad,
+             "signal_share": share, "labels": labels,
+             "core": (fraction.max(axis=0) >= 0.8) & ~bad,
              "background": background.astype(np.float32), "spike_mask": spike_mask,
              "bad_pixels": bad, "focus": focus}
     return Scene(kind, seed, counts, shift, tuple(spec.materials), truth)

@@ -101,7 +101,7 @@ def noise_floor(scene) -> float:
 
 def class_agreement(labels, truth) -> dict:
     """Adjusted Rand index of a class map against the dominant-component truth, on every
-    good pixel and on the core pixels (dominant share of the signal ≥ 0.8)."""
+    good pixel and on the core pixels (largest fraction ≥ 0.8)."""
     from sklearn.metrics import adjusted_rand_score
 
     lab = np.asarray(labels)

@@ -30,7 +30,7 @@ def test_demo_writes_everything(demo_out):
                      "tablet_map_maps.csv",
                      "tablet_map_classes_labels.tif", "tablet_map_classes_labels.png",
                      "tablet_map_concentration.tif", "tablet_map_concentration_uncertainty.tif",
-                     "tablet_map_nmf_images.tif", "tablet_map_unmixing_abundance.tif"):
+                     "tablet_map_mcr_images.tif", "tablet_map_unmixing_abundance.tif"):
         assert expected in names, expected
     assert not [n for n in names if n.endswith(".part")]
 
@@ -38,7 +38,7 @@ def test_demo_writes_everything(demo_out):
 def test_demo_results_file_layout(demo_out):
     _, out, *_ = demo_out
     with h5py.File(out / "results.h5", "r") as f:
-        for group in ("nmf/images", "nmf/spectra", "classes/labels", "classes/class_spectra",
+        for group in ("mcr/images", "mcr/spectra", "classes/labels", "classes/class_spectra",
                       "unmixing/abundance", "concentration/concentration", "spikes/replaced"):
             assert f"/entry/results/{group}" in f, group
         conc = f["/entry/results/concentration/concentration"]
@@ -58,7 +58,7 @@ def test_tiff_has_physical_pixel_size(demo_out):
     import tifffile
 
     _, out, *_ = demo_out
-    with tifffile.TiffFile(out / "tablet_map_nmf_images.tif") as tif:
+    with tifffile.TiffFile(out / "tablet_map_mcr_images.tif") as tif:
         assert tif.is_imagej
         assert tif.imagej_metadata["unit"] in ("micron", "um", "\\u00B5m")
         xres = tif.pages[0].tags["XResolution"].value
@@ -79,7 +79,7 @@ def test_demo_is_reproducible(demo_out, tmp_path):
     _, out, *_ = demo_out
     assert main(["demo", "--out", str(tmp_path), "--quiet", "--no-figures"]) == 0
     with h5py.File(out / "results.h5") as a, h5py.File(tmp_path / "results.h5") as b:
-        for path in ("/entry/map/intensity", "/entry/results/nmf/images/abundance",
+        for path in ("/entry/map/intensity", "/entry/results/mcr/images/concentration",
                      "/entry/results/classes/labels/labels",
                      "/entry/results/concentration/concentration/concentration"):
             np.testing.assert_array_equal(a[path][...], b[path][...])

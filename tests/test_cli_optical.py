@@ -45,7 +45,7 @@ def test_analyse_stores_and_reports_the_micrograph(analysed, capsys):
         inputs = json.loads(f["/entry/provenance"].attrs["inputs"])
         assert set(inputs) >= {"map", "optical", "control_points"}
     for name in ("tablet_map_classes_labels_on_optical.png",
-                 "tablet_map_nmf_component_1_on_optical.png",
+                 "tablet_map_mcr_component_1_on_optical.png",
                  "tablet_map_unmixing_acetaminophen_on_optical.png",
                  "tablet_map_optical_side_by_side.png"):
         assert (analysed / name).stat().st_size > 10_000

@@ -264,7 +264,7 @@ def test_micrograph_layer_sits_in_map_coordinates(make_napari_viewer, optical_re
                                    atol=1e-9)
     # the maps above it are see-through
     assert viewer.layers["classes"].opacity < 1
-    assert viewer.layers["nmf: component 1"].opacity < 1
+    assert viewer.layers["mcr: component 1"].opacity < 1
 
 
 def test_class_legend_matches_the_summary(make_napari_viewer, optical_results):

@@ -82,8 +82,9 @@ def write_report(path, *, map_name: str, summary: dict, results, model=None, rec
 
         parts.append(_overview(map_name, summary, res))
         parts.append(_inputs(summary, inputs or {}, recipe_text))
-        if "nmf" in res:
-            r = res["nmf"]
+        comp_name = next((n for n in ("mcr", "nmf") if n in res), None)
+        if comp_name:
+            r = res[comp_name]
             imgs = r.fields["images"]
             named = identified_names(r)
             figs = [_img(fig(save_spectra_figure, r.fields["spectra"], title="component spectra",
@@ -91,7 +92,9 @@ def write_report(path, *, map_name: str, summary: dict, results, model=None, rec
             figs += [_img(fig(save_image_figure, imgs, k, title=display_label(lbl, named)))
                      for k, lbl in enumerate(imgs.axes[0].values)]
             ident = r.summary.get("identification", [])
-            parts.append("<h2>Components (NMF)</h2><p>Each component is a spectrum and an "
+            title = ("MCR-ALS, background fitted per pixel" if r.method == "mcr_als_background"
+                     else comp_name.upper())
+            parts.append(f"<h2>Components ({title})</h2><p>Each component is a spectrum and an "
                          "image of where it sits; identification against the reference "
                          "library uses the hit-quality index on a 0-1 scale (1 = same shape), "
                          "after removing offset and slope from both sides.</p>"
@@ -164,7 +167,8 @@ def _overview(map_name, summary, res):
     shape = summary.get("shape")
     if shape:
         lines.append(f"The map holds {shape[0]} × {shape[1]} spectra of {shape[2]} channels.")
-    ident = res.get("nmf").summary.get("identification", []) if "nmf" in res else []
+    comp = res.get("mcr") or res.get("nmf")
+    ident = comp.summary.get("identification", []) if comp is not None else []
     found = sorted({i["match"] for i in ident if i["match"] != "unmatched"})
     if found:
         lines.append("Its components were identified as " + ", ".join(found) + ".")

@@ -212,6 +212,25 @@ class Recipe:
             extras[name] = extra
         return m, extras
 
+    def apply_keeping_background(self, m, *, progress=None):
+        """Run every step; returns (map, by-products, the map before the first baseline step).
+
+        Methods that fit the fluorescence together with the Raman bands (unmixing with
+        baseline terms, MCR-ALS with a background per pixel) take the third map: a
+        baseline subtracted first eats the wings of broad bands. Without a baseline step,
+        or when a binning step after it changes the grid, it is the cleaned map itself.
+        """
+        extras, before, previous = {}, None, m
+        for name, out, extra in self.iter_apply(m, progress=progress):
+            extras[name] = extra
+            if name == "baseline" and before is None:
+                before = previous
+            previous = out
+        names = [n for n, _ in self.steps]
+        if before is None or "bin" in names[names.index("baseline"):]:
+            before = previous
+        return previous, extras, before
+
     def iter_apply(self, m, *, spectra_only: bool = False, progress=None):
         """Run the steps one by one, yielding (step name, map after it, by-products).
 

@@ -290,3 +290,147 @@ class MCRALS(TransformerMixin, BaseEstimator):
             {"lack_of_fit_pct": self.lack_of_fit_, "explained_variance_pct":
              self.explained_variance_, "n_iter": self.n_iter_,
              "converged": self.n_iter_ < self.max_iter})
+
+
+def least_area_lift(S, Q):
+    """Add to each row of ``S`` the combination of the columns of ``Q`` that makes it
+    non-negative with the least area (a linear programme per row, HiGHS via scipy).
+
+    A pixel-wise free polynomial background leaves the polynomial part of a component
+    spectrum undetermined by the data; the spectrum that sits on zero between its bands
+    (least area while non-negative) is the usual convention for Raman spectra (common
+    practice). Rows where the programme fails are clipped at zero instead.
+    """
+    from scipy.optimize import linprog
+
+    out = np.clip(S, 0, None)
+    cost = Q.sum(axis=0)
+    for k, s in enumerate(S):
+        res = linprog(cost, A_ub=-Q, b_ub=s, bounds=[(None, None)] * Q.shape[1],
+                      method="highs")
+        if res.status == 0:
+            out[k] = np.maximum(s + Q @ res.x, 0.0)
+    return out
+
+
+class BackgroundMCR(TransformerMixin, BaseEstimator):
+    """MCR-ALS on spectra that keep their fluorescence, with a polynomial background per pixel.
+
+    D = C Sᵀ + B Pᵀ with non-negative concentrations C and spectra S, and free polynomial
+    background coefficients B on a fixed Legendre basis P (MCR-ALS: Tauler 1995, Chemom.
+    Intell. Lab. Syst. 30:133; a background modelled as extra unconstrained terms: de Juan &
+    Tauler 2006, Crit. Rev. Anal. Chem. 36:163). Fitting on despiked counts, instead of
+    after a baseline subtraction, keeps the wings of broad bands and the weak bands of
+    minor phases that a separate baseline step eats.
+
+    The start is the successive projection algorithm (:func:`~mapkit.reduce.endmembers.
+    successive_projections`) on the leading principal components of the background-free
+    part of the spectra: the purest pixels, which finds minor phases in small spots that
+    an NMF of baseline-corrected spectra merges away. The spectra's polynomial part, which
+    the data cannot fix, is set by :func:`least_area_lift`.
+
+    Parameters
+    ----------
+    n_components : int
+    baseline_order : int or "auto"
+        Polynomial order of the background; "auto" chooses it on the map
+        (:func:`~mapkit.reduce.unmix.choose_baseline_order` against provisional spectra).
+    max_iter : int
+        Alternating least-squares sweeps after the start. More sweeps improve the spectra
+        of maps without pure pixels but let abundances drift on maps with them; 25 was the
+        best compromise on the scene family (benchmarks/bench_accuracy.py).
+    random_state : int
+        Seed of the pixel sample the background order is chosen on.
+
+    Attributes
+    ----------
+    components_ : array (n_components, n_shift), unit maximum
+    fit_images_ : array (n_components, ny, nx)
+    baseline_order_ : int
+    start_pixels_ : array of int
+        Flat indices (among the good pixels) of the starting pure pixels.
+    lack_of_fit_ : float
+        100·‖D − C Sᵀ − B Pᵀ‖ / ‖D − B Pᵀ‖ in %.
+
+    Examples
+    --------
+    >>> s = np.linspace(0, 1, 120)
+    >>> S = np.stack([np.exp(-0.5 * ((s - c) / 0.02) ** 2) for c in (0.3, 0.7)])
+    >>> rng = np.random.default_rng(0)
+    >>> C = rng.dirichlet([1, 1], 60); C[:2] = np.eye(2)
+    >>> X = C @ S + 0.5 + 0.3 * s + rng.normal(0, 1e-3, (60, 120))
+    >>> m = RamanMap(X.reshape(6, 10, 120), raman_shift=s, x=np.arange(10.), y=np.arange(6.))
+    >>> est = BackgroundMCR(n_components=2, baseline_order=1).fit(m)
+    >>> bool(np.sort(est.components_ @ S.T / np.linalg.norm(est.components_, axis=1)[:, None]
+    ...              / np.linalg.norm(S, axis=1), axis=None)[-2] > 0.99)
+    True
+    """
+
+    def __init__(self, n_components: int = 4, baseline_order="auto", max_iter: int = 25,
+                 random_state: int = 0):
+        self.n_components = n_components
+        self.baseline_order = baseline_order
+        self.max_iter = max_iter
+        self.random_state = random_state
+
+    def _start(self, X, Q):
+        from .endmembers import successive_projections
+
+        Xp = X - (X @ Q) @ Q.T
+        # the leading principal directions of the background-free spectra (uncentred: the
+        # mixing is linear, not affine, once the background is gone)
+        _, sv, vt = np.linalg.svd(Xp[:: max(1, Xp.shape[0] // 20000)], full_matrices=False)
+        V = vt[: self.n_components]
+        scores = Xp @ V.T
+        idx = successive_projections(scores, self.n_components)
+        return least_area_lift(scores[idx] @ V, Q), idx
+
+    def fit(self, m: RamanMap, y=None):
+        from .unmix import choose_baseline_order, polynomial_basis
+
+        X, good = good_spectra(m, what="MCR-ALS")
+        check_components(self.n_components, m, X.shape[0])
+        order = self.baseline_order
+        if order == "auto":
+            # provisional spectra from a moderate background, then the order they support
+            S, _ = self._start(X, polynomial_basis(m.raman_shift, 6))
+            order = choose_baseline_order(S, X, m.raman_shift, random_state=self.random_state)
+        Q = polynomial_basis(m.raman_shift, int(order))
+        S, idx = self._start(X, Q)
+        Xp = X - (X @ Q) @ Q.T
+        for _ in range(self.max_iter):
+            C = nnls_batch((S - (S @ Q) @ Q.T).T, Xp.T, tol=1e-6).T
+            background = (X - C @ S) @ Q                 # polynomial coefficients per pixel
+            S = least_area_lift(nnls_batch(C, X - background @ Q.T, tol=1e-6), Q)
+            scale = S.max(axis=1, keepdims=True)
+            S = S / np.where(scale > 0, scale, 1.0)
+        Sp = S - (S @ Q) @ Q.T
+        C = nnls_batch(Sp.T, Xp.T).T
+        self.components_ = S
+        self.baseline_order_ = int(order)
+        self.start_pixels_ = idx
+        self.lack_of_fit_ = float(100 * np.linalg.norm(Xp - C @ Sp) / (np.linalg.norm(Xp) or 1))
+        self.raman_shift_ = m.raman_shift.copy()
+        self.n_iter_ = self.max_iter
+        self.fit_images_ = to_images(m, C, good)
+        return self
+
+    def fit_transform(self, m: RamanMap, y=None) -> np.ndarray:
+        return self.fit(m).fit_images_
+
+    def transform(self, m: RamanMap) -> np.ndarray:
+        """Concentration images (n_components, ny, nx) of a map on the same axis."""
+        X, good = good_spectra(m, what="MCR-ALS")
+        A, _ = unmix_spectra(self.components_, X, m.raman_shift, self.baseline_order_)
+        return to_images(m, A.T, good)
+
+    def result(self, m: RamanMap, images=None, name: str = "mcr") -> Result:
+        comp = _component_axis(self.n_components)
+        images = self.fit_images_ if images is None else images
+        return Result(name, "mcr_als_background", self.get_params(), {
+            "images": Field("concentration", images, (comp, *image_axes(m)), "a.u.",
+                            long_name="MCR-ALS concentration (background fitted per pixel)"),
+            "spectra": Field("spectrum", self.components_, (comp, shift_axis(m)), "a.u.",
+                             long_name="MCR-ALS spectrum (unit maximum)")},
+            {"lack_of_fit_pct": self.lack_of_fit_, "baseline_order": self.baseline_order_,
+             "n_iter": self.n_iter_})

@@ -14,6 +14,7 @@ from qtpy.QtWidgets import (QComboBox, QFileDialog, QFormLayout, QHBoxLayout, QL
 
 #: what the user picks → mapkit method name
 METHOD_CHOICES = {
+    "Components: MCR-ALS, background per pixel": "mcr_background",
     "Components: NMF": "nmf",
     "Components: MCR-ALS": "mcr",
     "Components: PCA": "pca",
@@ -27,7 +28,7 @@ METHOD_CHOICES = {
 
 def analysis_job(path, method, *, n=4, recipe_path="", library_path="", model_path="", seed=0):
     """Generator run in the worker: yields (done, total, label), returns (map, results)."""
-    from mapkit.pipeline import run_method
+    from mapkit.pipeline import FITS_BACKGROUND, run_method
     from mapkit.preprocess.recipe import Recipe
     from mapkit.quantify import QuantModel
     from mapkit.read import open_map, read_library
@@ -40,11 +41,13 @@ def analysis_job(path, method, *, n=4, recipe_path="", library_path="", model_pa
     else:
         recipe = Recipe.default()
     library = read_library(library_path) if library_path else None
-    total = len(recipe.steps) + 2
+    total = 3
     yield 0, total, "reading the map"
     m = open_map(path).load()
-    for i, (name, m, _) in enumerate(recipe.iter_apply(m), 1):
-        yield i, total, f"cleaning: {name}"
+    yield 1, total, "cleaning: " + ", ".join(name for name, _ in recipe.steps)
+    m, _, before_baseline = recipe.apply_keeping_background(m)
+    if method in FITS_BACKGROUND:
+        m = before_baseline
     if model is not None:
         model.check_recipe(recipe)
     yield total - 1, total, f"running {method}"
