@@ -26,7 +26,7 @@ Truth (``Scene.truth``):
   whose largest fraction is at least 0.8;
 - ``signal_share`` (k, ny, nx): share of each component in the pixel's integrated Raman
   signal;
-- ``background`` (ny, nx, n): fluorescence plus detector offset, in counts;
+- ``background`` (ny, nx, n): fluorescence plus the detector ``offset``, in counts;
 - ``spike_mask`` (ny, nx, n): channels a cosmic-ray spike was added to;
 - ``bad_pixels`` (ny, nx): dead pixels (flat zero).
 """
@@ -337,7 +337,7 @@ def make_scene(kind: str, seed: int = 0, shape=(48, 56)) -> Scene:
              "signal_share": share, "labels": labels,
              "core": (fraction.max(axis=0) >= 0.8) & ~bad,
              "background": background.astype(np.float32), "spike_mask": spike_mask,
-             "bad_pixels": bad, "focus": focus}
+             "bad_pixels": bad, "focus": focus, "offset": offset}
     return Scene(kind, seed, counts, shift, tuple(spec.materials), truth)
 
 

@@ -1,0 +1,177 @@
+"""Accuracy of the default reductions on a family of invented scenes, against the noise floor.
+
+No test here knows a generator constant: every score is scale-free (cosine, adjusted Rand
+index, abundance RMSE after one least-squares scale, as a multiple of the noise floor of
+NNLS with the true references on the map with its true background removed; see
+mapkit.scoring). Bounds are the worst value measured over seeds 0-2 at this map size
+(2026-12-02), plus a margin; the benchmark (benchmarks/bench_accuracy.py) runs the larger
+family through the command line.
+"""
+
+import itertools
+
+import numpy as np
+import pytest
+
+from mapkit.preprocess.recipe import Recipe
+from mapkit.reduce import (BackgroundMCR, DominantClasses, KMeansClasses, NMFComponents,
+                           ReferenceUnmixing, choose_baseline_order)
+from mapkit.scenes import KINDS, MATERIALS, make_scene
+from mapkit.scoring import (class_agreement, match_spectra, noise_floor, score_factorisation,
+                            score_unmixing, scaled_rmse)
+
+SHAPE = (36, 44)
+SEEDS = (0, 1, 2)
+
+
+@pytest.fixture(scope="module")
+def family():
+    """Every kind and seed, cleaned two ways: despiked only, and with the default recipe."""
+    out = {}
+    for kind in KINDS:
+        for seed in SEEDS:
+            scene = make_scene(kind, seed, SHAPE)
+            m = scene.to_map()
+            out[kind, seed] = {"scene": scene, "floor": noise_floor(scene),
+                               "despiked": Recipe.minimal().apply(m)[0],
+                               "corrected": Recipe.default().apply(m)[0]}
+    return out
+
+
+def test_scene_family_meets_its_specification(family):
+    # the issue's specification of the family (common practice for a benchmark family)
+    for (kind, seed), d in family.items():
+        s, t = d["scene"], d["scene"].truth
+        assert 500 <= s.raman_shift.size <= 1000
+        raman = np.einsum("kyx,ks->yxs", t["abundance"], t["pure_spectra"])
+        ratio = (t["background"].max(axis=-1) - t["offset"]) / raman.max(axis=-1)
+        assert 0.4 <= np.percentile(ratio, 5) and np.percentile(ratio, 95) <= 5.5, kind
+        spiked = t["spike_mask"].any(axis=-1).mean()
+        assert 0.002 <= spiked <= 0.012, (kind, spiked)
+        assert 1 <= t["bad_pixels"].sum() <= 5 and (t["labels"][t["bad_pixels"]] == -1).all()
+        assert (s.counts[t["bad_pixels"]] == 0).all()
+    minor = family["minor", 0]["scene"].truth
+    assert 0 < (minor["labels"] == 3).mean() < 0.05, "the minor phase covers under 5 %"
+    widths = [w for name in KINDS["broad"].materials for _, _, w in MATERIALS[name]]
+    assert max(widths) >= 40 and min(widths) <= 12
+    low = family["lowcount", 0]["scene"].truth["pure_spectra"].max()
+    assert 15 <= low <= 100, "low counts at a unit peak"
+
+
+def test_spectra_pairing_matches_exhaustive_search():
+    # reference: the best pairing by trying every permutation (what the Hungarian method
+    # of Kuhn 1955 finds without trying them)
+    rng = np.random.default_rng(3)
+    true = np.abs(rng.normal(size=(5, 40)))
+    est = true[[3, 0, 4, 1, 2]] + 0.3 * np.abs(rng.normal(size=(5, 40)))
+    rows, cols, cos = match_spectra(est, true)
+    e = est / np.linalg.norm(est, axis=1, keepdims=True)
+    t = true / np.linalg.norm(true, axis=1, keepdims=True)
+    best = max(itertools.permutations(range(5)), key=lambda p: sum(e[i] @ t[j]
+                                                                   for i, j in enumerate(p)))
+    assert list(cols[np.argsort(rows)]) == list(best)
+    # the scale-free RMSE equals the residual of numpy's one-parameter least squares
+    a, b = rng.normal(size=(2, 50))
+    coef = np.linalg.lstsq(a[:, None], b, rcond=None)[0]
+    assert scaled_rmse(a, b) == pytest.approx(np.sqrt(np.mean((a * coef[0] - b) ** 2)))
+
+
+@pytest.mark.parametrize("order", [2, 4, 7])
+def test_baseline_order_choice_finds_the_true_order(order):
+    # the Bayesian information criterion (Schwarz 1978) is consistent: on a background that
+    # is exactly a polynomial of known order, under shot noise, it picks that order
+    shift = np.linspace(200, 1800, 700)
+    t = 2 * (shift - 200) / 1600 - 1
+    refs = np.stack([100 / (1 + ((shift - c) / 6) ** 2) for c in (520, 1000, 1350)])
+    for seed in SEEDS:
+        rng = np.random.default_rng(seed)
+        coef = rng.uniform(-1, 1, (300, order + 1)) * 100
+        coef[:, 0] += 1500
+        bg = np.polynomial.legendre.legvander(t, order) @ coef.T
+        X = rng.poisson(rng.uniform(0, 2, (300, 3)) @ refs + bg.T).astype(float)
+        assert choose_baseline_order(refs, X, shift) == order, seed
+
+
+def _unmix_ratio(d, m, order):
+    s = d["scene"]
+    un = ReferenceUnmixing(_library(s), baseline_order=order).fit(m)
+    return score_unmixing(un.transform(m)[0], s, d["floor"])
+
+
+def _library(scene):
+    from mapkit.read.reference import Spectrum
+
+    return [Spectrum(n, scene.raman_shift, p) for n, p in zip(scene.names, scene.truth["pure_spectra"])]
+
+
+def test_default_unmixing_stays_near_the_noise_floor(family):
+    # the default: references and a data-chosen polynomial fitted together on the despiked
+    # counts. Measured worst over seeds 0-2 at this size (2026-12-02): 1.24 (low counts),
+    # 1.13 (broad bands), <= 1.08 on every other kind; the old default (arPLS first, then
+    # order 5) is at least 1.2x worse on broad bands, where the separate baseline eats
+    # their wings.
+    worst = {}
+    for (kind, seed), d in family.items():
+        r = _unmix_ratio(d, d["despiked"], "auto")
+        worst[kind] = max(worst.get(kind, 0), r)
+    for kind, r in worst.items():
+        assert r <= (1.3 if kind == "lowcount" else 1.2), (kind, r)
+    broad = max(_unmix_ratio(family["broad", s], family["broad", s]["corrected"], 5)
+                for s in SEEDS)
+    assert broad >= 1.2 * worst["broad"], (broad, worst["broad"])
+
+
+def test_background_mcr_keeps_minor_phases_and_broad_bands(family):
+    # measured worst cosine over seeds 0-2 at this size (2026-12-02): grains 0.978, overlap
+    # 0.995, broad 0.958, minor 0.861; bounds below leave ~0.02. Against NMF of the
+    # baseline-corrected spectra (the former default) the gain is in the worst case: on
+    # broad bands NMF lost a phase on one seed, while on the minor-phase kind at this size
+    # NMF did slightly better (0.90-0.94), so no ordering is asserted there.
+    bounds = {"grains": 0.96, "overlap": 0.98, "broad": 0.94, "minor": 0.84}
+    for kind, bound in bounds.items():
+        cos_mcr, cos_nmf = [], []
+        for seed in SEEDS:
+            d = family[kind, seed]
+            k = len(d["scene"].names)
+            mcr = BackgroundMCR(n_components=k).fit(d["despiked"])
+            nmf = NMFComponents(n_components=k).fit(d["corrected"])
+            cos_mcr.append(score_factorisation(mcr.components_, mcr.fit_images_, d["scene"],
+                                               d["floor"])["worst_cosine"])
+            cos_nmf.append(score_factorisation(nmf.components_, nmf.fit_images_, d["scene"],
+                                               d["floor"])["worst_cosine"])
+        assert min(cos_mcr) >= bound, (kind, cos_mcr)
+        if kind == "broad":   # NMF after arPLS lost a broad-band phase on one seed (0.01)
+            assert min(cos_mcr) > min(cos_nmf) + 0.2, (kind, cos_mcr, cos_nmf)
+
+
+def test_dominant_classes_follow_composition_at_boundaries(family):
+    # with the same abundances (NNLS on the true references), classes taken from the
+    # dominant component agree with the truth at blurred grain boundaries, where clustering
+    # the spectra's shapes (k-means on vector-normalised spectra) splits on shape alone
+    from mapkit.preprocess import normalise_map
+    from mapkit.reduce import nnls_batch
+    from mapkit.reduce._common import good_spectra, to_images
+
+    for seed in SEEDS:
+        d = family["grains", seed]
+        s, m = d["scene"], d["corrected"]
+        X, good = good_spectra(d["despiked"], what="test")
+        bg = s.truth["background"].reshape(-1, X.shape[1])[good]
+        A = nnls_batch(s.truth["pure_spectra"].T, (X - bg).T).T
+        dom = DominantClasses(n_classes=A.shape[1]).fit(m, to_images(m, A, good))
+        km = KMeansClasses(n_classes=A.shape[1]).fit(normalise_map(m))
+        ari_dom = class_agreement(dom.labels_, s.truth)["all"]
+        ari_km = class_agreement(km.labels_, s.truth)["all"]
+        assert ari_dom >= 0.97 and ari_dom > ari_km, (seed, ari_dom, ari_km)
+
+
+def test_default_path_classes_on_grains(family):
+    # the default path end to end in Python: background MCR, then dominant classes.
+    # Measured ARI over seeds 0-2 at this size: >= 0.98 on grains and overlap.
+    for kind in ("grains", "overlap"):
+        for seed in SEEDS:
+            d = family[kind, seed]
+            k = len(d["scene"].names)
+            mcr = BackgroundMCR(n_components=k).fit(d["despiked"])
+            dom = DominantClasses(n_classes=k).fit(d["corrected"], mcr.fit_images_)
+            assert class_agreement(dom.labels_, d["scene"].truth)["all"] >= 0.95, (kind, seed)
