@@ -42,7 +42,8 @@ def _channel_need(a, library):
     if a.command == "components":
         return a.n, f"{a.method.upper()} with {a.n} components"
     if a.command == "unmix" and library:
-        terms = 0 if a.baseline_order < 0 else a.baseline_order + 1
+        terms = 0 if a.baseline_order is None else 1 if a.baseline_order == "auto" \
+            else a.baseline_order + 1
         return (len(library) + terms + 1,
                 f"unmixing {len(library)} references with {terms} baseline terms")
     return 0, ""
@@ -120,10 +121,12 @@ def _identified(res):
 
 
 def cmd_components(a):
-    from .pipeline import run_method
+    from .pipeline import FITS_BACKGROUND, run_method
 
-    m, library = _prepare(a)
-    res = run_method(m, a.method, n=a.n, seed=a.seed, library=library, init=a.init,
+    method = "mcr_background" if a.method == "mcr-background" else a.method
+    # methods that fit the fluorescence themselves get the despiked map (minimal recipe)
+    m, library = _prepare(a, minimal=method in FITS_BACKGROUND)
+    res = run_method(m, method, n=a.n, seed=a.seed, library=library, init=a.init,
                      closure=a.closure, min_score=a.min_score)[0]
     s = res.summary
     if a.method == "pca":
@@ -131,6 +134,9 @@ def cmd_components(a):
                  ", ".join(f"PC{i + 1} {v:.1f}" for i, v in enumerate(s["cumulative_pct"]))]
     elif a.method == "nmf":
         lines = [f"NMF: {a.n} components, {s['n_iter']} iterations"]
+    elif method == "mcr_background":
+        lines = [f"MCR-ALS with a background per pixel: {a.n} components, baseline order "
+                 f"{s['baseline_order']}, lack of fit {s['lack_of_fit_pct']:.2f} %"]
     else:
         lines = [f"MCR-ALS: {a.n} components, lack of fit {s['lack_of_fit_pct']:.2f} %, "
                  f"explained variance {s['explained_variance_pct']:.2f} %, {s['n_iter']} "
@@ -162,17 +168,33 @@ def cmd_classes(a):
     return _write(a, m, [res], lines + _identified(res))
 
 
+def _order(text: str):
+    """A baseline order: 'auto', a whole number, or -1 (none)."""
+    import argparse
+
+    if text.strip().lower() == "auto":
+        return "auto"
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not auto, a whole number or -1") from None
+    return None if v < 0 else v
+
+
 def cmd_unmix(a):
     from .pipeline import run_method
 
-    m, library = _prepare(a)
+    m, library = _prepare(a, minimal=True)   # the baseline is fitted with the references
     res = run_method(m, "fcls" if a.method == "fcls" else "unmix", library=library,
-                     baseline_order=None if a.baseline_order < 0 else a.baseline_order)[0]
+                     baseline_order=a.baseline_order)[0]
     ab = res.fields["abundance"].data
     names = [str(v) for v in res.fields["abundance"].axes[0].values]
     lines = [f"notice    {w}" for w in res.summary.get("notices", [])]
     what = " (share of the fitted total)" if a.method == "fcls" else ""
     lines += [f"{n}: mean abundance {np.nanmean(ab[i]):.3g}{what}" for i, n in enumerate(names)]
+    lines.append(f"baseline  polynomial order {res.parameters['baseline_order']}"
+                 + (" (chosen by the data)" if res.parameters.get("baseline_order_requested")
+                    == "auto" else ""))
     lines.append(f"residual RMS median {np.nanmedian(res.fields['residual'].data):.3g} counts")
     return _write(a, m, [res], lines)
 
@@ -241,9 +263,12 @@ def add_parsers(sub, add_read_options, band_type, positive_int):
     c = sub.add_parser("components", help="component spectra and images (NMF, MCR-ALS, PCA)",
                        description="Factorise the cleaned map into component spectra and images; "
                                    "with --library, name each component.")
-    _common(c)
-    c.add_argument("--method", choices=("nmf", "mcr", "pca"), default="nmf",
-                   help="factorisation (default nmf)")
+    _common(c, default_recipe="minimal (mcr-background) or default (the others)")
+    c.add_argument("--method", choices=("mcr-background", "nmf", "mcr", "pca"),
+                   default="mcr-background",
+                   help="factorisation: mcr-background (default; MCR-ALS on the despiked "
+                        "spectra with a polynomial background per pixel, started from the "
+                        "purest pixels), nmf or mcr of the baseline-corrected spectra, pca")
     c.add_argument("--n", type=positive_int, default=4, help="number of components (default 4)")
     c.add_argument("--init", choices=("nndsvda", "vca", "nmf"), default="nndsvda",
                    help="starting point (NMF: nndsvda or vca; MCR: vca or nmf)")
@@ -273,14 +298,16 @@ def add_parsers(sub, add_read_options, band_type, positive_int):
     k.set_defaults(func=cmd_classes)
 
     u = sub.add_parser("unmix", help="abundance maps against reference spectra (NNLS, FCLS)")
-    _common(u)
+    _common(u, default_recipe="minimal (bad pixels and spikes only)")
     u.add_argument("--library", required=True, help="folder of reference spectra")
     u.add_argument("--method", choices=("nnls", "fcls"), default="nnls",
                    help="nnls: non-negative abundances in reference units; fcls: shares that "
                         "sum to 1 in every pixel, with a fitted per-pixel scale (so raw counts "
                         "are fine; the scale is written as its own image)")
-    u.add_argument("--baseline-order", type=int, default=5,
-                   help="polynomial baseline terms fitted with the references (-1: none)")
+    u.add_argument("--baseline-order", type=_order, default="auto",
+                   help="order of the polynomial baseline fitted with the references on the "
+                        "despiked counts: auto (default; chosen by the Bayesian information "
+                        "criterion), a whole number, or -1 for none")
     add_read_options(u)
     u.set_defaults(func=cmd_unmix)
 
