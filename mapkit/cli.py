@@ -98,14 +98,15 @@ def _add_analysis_options(p, default_out="mapkit-output"):
     p.add_argument("--analyte", help="reference to quantify (default: from the standards file)")
     p.add_argument("--band", action="append", type=_band, metavar="NAME:LO-HI",
                    help="band image to integrate, cm-1 (repeatable)")
-    p.add_argument("--components", type=_positive_int, default=4, help="NMF components (default 4)")
+    p.add_argument("--components", type=_positive_int, default=4,
+                   help="number of components (default 4)")
     p.add_argument("--component-method", choices=("mcr", "nmf"), default="mcr",
                    help="components: 'mcr' (default) is MCR-ALS on the despiked spectra with a "
                         "polynomial background per pixel, started from the purest pixels; "
                         "'nmf' factorises the baseline-corrected spectra")
     p.add_argument("--class-method", choices=("dominant", "kmeans", "minibatch", "ward"),
                    default="dominant",
-                   help="classes: 'dominant' (default) puts each pixel in the NMF component "
+                   help="classes: 'dominant' (default) puts each pixel in the component "
                         "with the largest abundance, one class per component; kmeans, "
                         "minibatch or ward cluster the spectra's shapes")
     p.add_argument("--classes", type=_positive_int,
@@ -247,9 +248,6 @@ def _run_analysis(a, map_path, library, standards, bands):
     from .quantify import QuantModel
     from .quantify.regions import parse_region
 
-    if a.class_method == "dominant" and a.classes not in (None, a.components):
-        raise MapkitError("dominant-component classes come one per NMF component",
-                          field="--classes", fix="drop --classes, or add --class-method kmeans")
     s = Settings(n_components=a.components, component_method=a.component_method,
                  class_method=a.class_method,
                  n_classes=a.classes, seed=a.seed,
@@ -372,9 +370,9 @@ def _run_large(a, map_path, recipe, reason, library, standards, model):
                      internal_standard=a.internal_standard)
         model = quantification_model(standards, refs, recipe, s)
     print(f"mode      chunk-wise ({reason})")
-    if a.class_method != "minibatch":
-        print("notice    chunk-wise classes are mini-batch k-means clusters and unmixing runs on "
-              "the baseline-corrected cube (the in-memory path does both the default way)")
+    print("notice    chunk-wise, components are NMF of the baseline-corrected cube, classes "
+          "mini-batch k-means and unmixing uses 6 fixed baseline terms on that cube (the "
+          "in-memory defaults are not available chunk-wise yet)")
     out = analyse_large(map_path, a.out, recipe=recipe, n_components=a.components,
                         n_classes=a.classes or a.components, seed=a.seed, workers=a.workers,
                         address=a.scheduler, overwrite=a.overwrite, figures=not a.no_figures,

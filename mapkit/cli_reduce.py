@@ -42,14 +42,17 @@ def _channel_need(a, library):
     if a.command == "components":
         return a.n, f"{a.method.upper()} with {a.n} components"
     if a.command == "unmix" and library:
-        terms = 0 if a.baseline_order is None else 1 if a.baseline_order == "auto" \
-            else a.baseline_order + 1
+        from .reduce.unmix import baseline_terms
+
+        terms = baseline_terms(a.baseline_order)
         return (len(library) + terms + 1,
                 f"unmixing {len(library)} references with {terms} baseline terms")
     return 0, ""
 
 
-def _prepare(a, minimal=False, lazy_ok=False):
+def _prepare(a, minimal=False, lazy_ok=False, background=False):
+    """Open and clean the map. ``background``: the method fits the fluorescence itself, so
+    it gets the map cleaned by every step of the recipe except the baseline ones."""
     from .preprocess.recipe import Recipe
     from .read import open_map
 
@@ -86,7 +89,7 @@ def _prepare(a, minimal=False, lazy_ok=False):
     elif not getattr(a, "quiet", False):
         print("mode      chunk-wise (the cube would not fit comfortably in memory)")
     if recipe is not None:
-        m, _ = recipe.apply(m)
+        m = recipe.apply_keeping_background(m)[2] if background else recipe.apply(m)[0]
     return m, library
 
 
@@ -124,8 +127,11 @@ def cmd_components(a):
     from .pipeline import FITS_BACKGROUND, run_method
 
     method = "mcr_background" if a.method == "mcr-background" else a.method
-    # methods that fit the fluorescence themselves get the despiked map (minimal recipe)
-    m, library = _prepare(a, minimal=method in FITS_BACKGROUND)
+    if method == "mcr_background" and (a.closure or a.init != "nndsvda"):
+        raise MapkitError("--init and --closure do not apply to mcr-background (it starts "
+                          "from the purest pixels)", field="--init",
+                          fix="drop them, or choose --method mcr")
+    m, library = _prepare(a, background=method in FITS_BACKGROUND)
     res = run_method(m, method, n=a.n, seed=a.seed, library=library, init=a.init,
                      closure=a.closure, min_score=a.min_score)[0]
     s = res.summary
@@ -178,13 +184,15 @@ def _order(text: str):
         v = int(text)
     except ValueError:
         raise argparse.ArgumentTypeError(f"{text!r} is not auto, a whole number or -1") from None
-    return None if v < 0 else v
+    if v < -1:
+        raise argparse.ArgumentTypeError(f"{text} is not auto, a whole number >= 0 or -1 (none)")
+    return None if v == -1 else v
 
 
 def cmd_unmix(a):
     from .pipeline import run_method
 
-    m, library = _prepare(a, minimal=True)   # the baseline is fitted with the references
+    m, library = _prepare(a, background=True)   # the baseline is fitted with the references
     res = run_method(m, "fcls" if a.method == "fcls" else "unmix", library=library,
                      baseline_order=a.baseline_order)[0]
     ab = res.fields["abundance"].data

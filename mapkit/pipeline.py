@@ -18,6 +18,10 @@ from .core.result import Axis, Field, Result
 from .errors import MapkitError
 
 
+COMPONENT_METHODS = ("mcr", "nmf")
+CLASS_METHODS = ("dominant", "kmeans", "minibatch", "ward")
+
+
 @dataclass
 class Settings:
     """Parameters of the end-to-end path (all recorded in every output)."""
@@ -28,7 +32,7 @@ class Settings:
     #: "mcr": MCR-ALS with a polynomial background per pixel on the despiked spectra;
     #: "nmf": NMF of the baseline-corrected spectra
     component_method: str = "mcr"
-    #: "dominant" (each pixel joins its dominant NMF component) or a clustering method
+    #: "dominant" (each pixel joins its dominant component) or a clustering method
     #: ("kmeans", "minibatch", "ward") of the spectra's shapes
     class_method: str = "dominant"
     #: classes for the clustering methods (None: as many as components)
@@ -122,6 +126,15 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     from .reduce import band_image
 
     s = settings or Settings()
+    if s.component_method not in COMPONENT_METHODS:
+        raise MapkitError(f"unknown component method {s.component_method!r}",
+                          field="component_method", fix=f"use one of {', '.join(COMPONENT_METHODS)}")
+    if s.class_method not in CLASS_METHODS:
+        raise MapkitError(f"unknown class method {s.class_method!r}", field="class_method",
+                          fix=f"use one of {', '.join(CLASS_METHODS)}")
+    if s.class_method == "dominant" and s.n_classes not in (None, s.n_components):
+        raise MapkitError("dominant-component classes come one per component",
+                          field="--classes", fix="drop --classes, or add --class-method kmeans")
     outdir = Path(outdir)
     if outdir.exists() and not outdir.is_dir():
         raise MapkitError("the output path is a file, not a folder", file=outdir,
@@ -158,10 +171,11 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     raw = open_map(map_path, **{"block_bytes": layout.READ_BYTES, **(open_kwargs or {})})
     # the axis alone, before the cube is read: a crop too narrow for NMF or unmixing, or a
     # library that does not cover what the recipe leaves, fails here with the recipe line
-    need, why = s.n_components, f"NMF with {s.n_components} components"
+    need, why = s.n_components, f"{s.component_method.upper()} with {s.n_components} components"
     if refs:
-        order = s.unmix_baseline_order
-        terms = 1 if order == "auto" else 0 if order is None else order + 1
+        from .reduce.unmix import baseline_terms
+
+        terms = baseline_terms(s.unmix_baseline_order)
         if len(refs) + terms + 1 > need:
             need, why = len(refs) + terms + 1, f"unmixing {len(refs)} references with {terms} " \
                                                 "baseline terms"

@@ -9,10 +9,11 @@ scene was generated with:
 - an abundance image is compared with the true abundance after the one scale factor that
   fits it best (least squares), since a factorisation fixes spectra and images only up to
   a scale;
-- the **noise floor** is the worst-component abundance RMSE of non-negative least squares
-  with the true references on the map with its true background subtracted: what any
-  method could reach without knowing the background. Abundance scores are given as
-  multiples of it;
+- the **noise floor** is an oracle's error: the worst-component abundance RMSE of
+  non-negative least squares with the true references on the map with its true
+  background subtracted. A method that has to estimate the background (and, for a
+  factorisation, the spectra) can only approach it; ratios a little below 1 are possible
+  (the oracle does not weight or smooth). Abundance scores are given as multiples of it;
 - classes are compared by the adjusted Rand index (Hubert & Arabie 1985), which ignores
   how classes are numbered.
 """
@@ -87,7 +88,7 @@ def scored_pixels(truth) -> np.ndarray:
 
 def noise_floor(scene) -> float:
     """Worst-component abundance RMSE of NNLS with the true references on the map with
-    its true background subtracted (the best any method can do without the background)."""
+    its true background subtracted (an oracle that knows spectra and background)."""
     from .reduce.unmix import nnls_batch
 
     t = scene.truth

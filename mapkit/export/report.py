@@ -106,7 +106,10 @@ def write_report(path, *, map_name: str, summary: dict, results, model=None, rec
             names = {i["spectrum"]: i["match"] for i in r.summary.get("identification", [])}
             rows = [(k, names.get(k, ""), v["fraction_pct"], v["area_um2"], v.get("domains"),
                      v.get("ecd_median_um")) for k, v in r.summary["areas"].items()]
-            parts.append("<h2>Spectral classes (k-means)</h2>" + _table(
+            how = {"dominant": "each pixel with its dominant component",
+                   "kmeans": "k-means", "minibatch": "mini-batch k-means",
+                   "minibatch_kmeans": "mini-batch k-means", "ward": "Ward clustering"}
+            parts.append(f"<h2>Spectral classes ({how.get(r.method, r.method)})</h2>" + _table(
                 rows, ["class", "identified as", "area %", "area (µm²)", "domains",
                        "median ECD (µm)"])
                 + _identification_table(r.summary.get("identification", []), "class")

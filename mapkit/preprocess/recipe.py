@@ -213,23 +213,40 @@ class Recipe:
         return m, extras
 
     def apply_keeping_background(self, m, *, progress=None):
-        """Run every step; returns (map, by-products, the map before the first baseline step).
+        r"""Run every step; returns (map, by-products, the map cleaned without baselines).
 
+        The third map has had every step but the baseline ones (the same masks, spikes,
+        crops, axis corrections and binning), so its grid and axis are those of the first.
         Methods that fit the fluorescence together with the Raman bands (unmixing with
-        baseline terms, MCR-ALS with a background per pixel) take the third map: a
-        baseline subtracted first eats the wings of broad bands. Without a baseline step,
-        or when a binning step after it changes the grid, it is the cleaned map itself.
+        baseline terms, MCR-ALS with a background per pixel) take it: a baseline
+        subtracted first eats the wings of broad bands. Without a baseline step it is the
+        cleaned map itself.
+
+        Examples
+        --------
+        >>> import numpy as np
+        >>> from mapkit.core.ramanmap import RamanMap
+        >>> m = RamanMap(np.ones((2, 3, 50)) + np.linspace(0, 1, 50), raman_shift=np.arange(50.),
+        ...              x=np.arange(3.), y=np.arange(2.))
+        >>> r = Recipe.from_text('[[step]]\nname = "baseline"\nmethod = "als"\n'
+        ...                      '[[step]]\nname = "crop"\nlow = 10\nhigh = 40', "example")
+        >>> cleaned, _, background = r.apply_keeping_background(m)
+        >>> cleaned.shape == background.shape, bool(background.intensity.min() > 0.9)
+        (True, True)
         """
-        extras, before, previous = {}, None, m
-        for name, out, extra in self.iter_apply(m, progress=progress):
+        self.check_axis(m.raman_shift)
+        m = m.derive(m.intensity, Step("recipe", {"name": self.name, "source": self.source,
+                                                   "text": self.text}))
+        extras, keep = {}, m
+        for name, params in self.steps:
+            if progress:
+                progress(name)
+            out, extra = get_step(name).run(m, **params)
             extras[name] = extra
-            if name == "baseline" and before is None:
-                before = previous
-            previous = out
-        names = [n for n, _ in self.steps]
-        if before is None or "bin" in names[names.index("baseline"):]:
-            before = previous
-        return previous, extras, before
+            if name != "baseline":   # until the first baseline the two maps are one
+                keep = out if keep is m else get_step(name).run(keep, **params)[0]
+            m = out
+        return m, extras, keep
 
     def iter_apply(self, m, *, spectra_only: bool = False, progress=None):
         """Run the steps one by one, yielding (step name, map after it, by-products).

@@ -386,11 +386,14 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
         return least_area_lift(scores[idx] @ V, Q), idx
 
     def fit(self, m: RamanMap, y=None):
-        from .unmix import choose_baseline_order, polynomial_basis
+        from .unmix import check_baseline_order, choose_baseline_order, polynomial_basis
 
         X, good = good_spectra(m, what="MCR-ALS")
         check_components(self.n_components, m, X.shape[0])
-        order = self.baseline_order
+        order = check_baseline_order(self.baseline_order)
+        if order is None:
+            raise MapkitError("background MCR needs background terms", field="baseline_order",
+                              fix="give an order (0 for a constant) or auto; for none use MCRALS")
         if order == "auto":
             # provisional spectra from a moderate background, then the order they support
             S, _ = self._start(X, polynomial_basis(m.raman_shift, 6))
@@ -420,6 +423,10 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
 
     def transform(self, m: RamanMap) -> np.ndarray:
         """Concentration images (n_components, ny, nx) of a map on the same axis."""
+        if m.shape[2] != self.raman_shift_.size or not np.allclose(m.raman_shift,
+                                                                    self.raman_shift_):
+            raise MapkitError("the map's shift axis differs from the one the model was fitted on",
+                              file=m.source, field="raman_shift", fix="fit on this map")
         X, good = good_spectra(m, what="MCR-ALS")
         A, _ = unmix_spectra(self.components_, X, m.raman_shift, self.baseline_order_)
         return to_images(m, A.T, good)

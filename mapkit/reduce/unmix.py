@@ -140,6 +140,22 @@ def unmix_spectra(R, X, shift, baseline_order: int | None = None, *, sum_to_one:
     return A, rms
 
 
+def check_baseline_order(order):
+    """A polynomial baseline order as the fits take it: None, "auto" or a whole number ≥ 0."""
+    if order is None or order == "auto":
+        return order
+    if isinstance(order, (int, np.integer)) and not isinstance(order, bool) and order >= 0:
+        return int(order)
+    raise MapkitError(f"baseline order {order!r} is not auto, none or a whole number >= 0",
+                      field="baseline_order", fix="give an order such as 5, none or auto")
+
+
+def baseline_terms(order) -> int:
+    """Polynomial terms an order adds to a fit (at least one for "auto")."""
+    order = check_baseline_order(order)
+    return 0 if order is None else 1 if order == "auto" else order + 1
+
+
 #: Largest polynomial baseline order the automatic choice considers.
 MAX_AUTO_ORDER = 16
 
@@ -288,12 +304,8 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
         if len(set(names)) != len(names):
             raise MapkitError("two references share a name", field="references",
                               fix="give every reference a unique name")
-        order = self.baseline_order
-        if isinstance(order, str) and order != "auto":
-            raise MapkitError(f"baseline order {order!r} is not a whole number",
-                              field="baseline_order", fix="give an order such as 5, none or auto")
-        terms = 1 if order == "auto" else 0 if order is None else order + 1
-        if len(refs) + terms >= m.shape[2]:
+        order = check_baseline_order(self.baseline_order)
+        if len(refs) + baseline_terms(order) >= m.shape[2]:
             raise MapkitError(f"{len(refs)} references and the baseline terms need more channels "
                               f"than the map's {m.shape[2]}", file=m.source, field="references",
                               fix="use fewer references or a lower baseline order")

@@ -18,7 +18,7 @@ METHOD_CHOICES = {
     "Components: NMF": "nmf",
     "Components: MCR-ALS": "mcr",
     "Components: PCA": "pca",
-    "Classes: dominant NMF component": "dominant",
+    "Classes: dominant component (NMF)": "dominant",
     "Classes: k-means": "kmeans",
     "Classes: Ward": "ward",
     "Abundances: unmixing (NNLS)": "unmix",
