@@ -236,3 +236,25 @@ def test_dominant_classes_refuse_images_of_another_shape():
         DominantClasses(n_classes=2).fit(m, np.ones((2, 9, 8)))
     with pytest.raises(MapkitError, match="background terms"):
         BackgroundMCR(n_components=2, baseline_order=None).fit(m)
+
+
+def test_unmixing_reports_pixels_where_nnls_stopped_early():
+    # two nearly collinear references make coordinate descent crawl (Franc, Hlaváč &
+    # Navara 2005 converge linearly at a rate set by the Gram matrix's conditioning): the
+    # pixels where it hit its sweep limit are flagged in the result, the others are not
+    import warnings
+
+    from mapkit.read.reference import Spectrum
+
+    scene = make_scene("overlap", 0, (10, 12))
+    m = Recipe.minimal().apply(scene.to_map())[0]
+    lib = _library(scene)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        res = ReferenceUnmixing(lib, baseline_order=3).fit(m).result(m)
+        assert res.summary["not_converged"] == 0
+        twin = Spectrum("twin", scene.raman_shift, scene.truth["pure_spectra"][0] * 1.0001
+                        + 1e-3 * scene.truth["pure_spectra"][1])
+        res2 = ReferenceUnmixing(lib + [twin], baseline_order=3).fit(m).result(m)
+    flags = res2.fields["converged"].data
+    assert res2.summary["not_converged"] == int((flags == 0)[~m.mask].sum()) > 0
