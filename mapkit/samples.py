@@ -4,8 +4,8 @@ The scenario is invented: a cross-section of a fictitious chewable tablet made
 of an active ingredient (acetaminophen granules), a mineral filler (calcite
 particles), a binder (microcrystalline cellulose) and a thin white coating
 (anatase). Band positions are published values for the real materials
-(acetaminophen from ASTM E1840; the others common literature values, see
-docs/sample-data.md); everything else (shapes, widths, relative strengths,
+(acetaminophen from ASTM E1840; the others common literature values, recalled from
+memory); everything else (shapes, widths, relative strengths,
 layout, background, noise, spikes, defects) is made up.
 
 ``python -m mapkit.samples OUTDIR`` (or ``mapkit samples OUTDIR``) writes:
