@@ -8,7 +8,8 @@ from mapkit.cli import main
 
 
 @pytest.mark.parametrize("args, group, words", [
-    (["components", "--library", "LIB"], "nmf/spectra", "acetaminophen (HQI"),
+    (["components", "--library", "LIB"], "mcr/spectra", "acetaminophen (HQI"),
+    (["components", "--method", "nmf"], "nmf/spectra", "NMF: 4 components"),
     (["components", "--method", "mcr", "--init", "nmf"], "mcr/images", "lack of fit"),
     (["components", "--method", "pca", "--n", "5"], "pca/explained_variance", "PC4"),
     (["classes", "--guide", "2-5", "--library", "LIB"], "classes/domains",
