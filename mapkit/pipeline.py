@@ -171,7 +171,8 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     raw = open_map(map_path, **{"block_bytes": layout.READ_BYTES, **(open_kwargs or {})})
     # the axis alone, before the cube is read: a crop too narrow for NMF or unmixing, or a
     # library that does not cover what the recipe leaves, fails here with the recipe line
-    need, why = s.n_components, f"{s.component_method.upper()} with {s.n_components} components"
+    label = {"mcr": "MCR-ALS", "nmf": "NMF"}[s.component_method]
+    need, why = s.n_components, f"{label} with {s.n_components} components"
     if refs:
         from .reduce.unmix import baseline_terms
 

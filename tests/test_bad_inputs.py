@@ -170,7 +170,7 @@ CASES = [
     ("recipe: reversed crop", lambda t: _with_recipe(t, GOOD_RECIPE + '\n[[step]]\nname = "crop"\nlow = 1700.0\nhigh = 300.0\n'),
      "error", "line 10: crop low = 1700 is not below high = 300"),
     ("recipe: crop leaves too few channels", lambda t: _with_recipe(t, GOOD_RECIPE + '\n[[step]]\nname = "crop"\nlow = 1790.0\nhigh = 1800.0\n'),
-     "error", "line 7: crop keeps 1 of 60 channels (1800.0-1800.0 1/cm), fewer than the 2 that NMF with 2 components"),
+     "error", "line 7: crop keeps 1 of 60 channels (1800.0-1800.0 1/cm), fewer than the 2 that MCR-ALS with 2 components"),
     ("existing output is found before cleaning", lambda t: _existing_output(t), "error",
      "the output file exists"),
     ("short library is found before cleaning", lambda t: _narrow_library(t, cube=_cube(all_nan=1)),
