@@ -320,6 +320,10 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
         if order == "auto":
             X, _ = good_spectra(m, what="unmixing")
             order = choose_baseline_order(R, X, m.raman_shift)
+            if order >= MAX_AUTO_ORDER:
+                warnings.warn(f"the chosen baseline order reached the largest considered "
+                              f"({MAX_AUTO_ORDER}): the background may need a cleaning "
+                              "baseline step or a narrower shift range", stacklevel=2)
         self.baseline_order_ = order
         self.collinear_ = [(names[i], names[j], r) for i, j, r in
                            collinear_pairs(R, m.raman_shift, self.baseline_order_)]
