@@ -194,7 +194,7 @@ def cmd_unmix(a):
 
     m, library = _prepare(a, background=True)   # the baseline is fitted with the references
     res = run_method(m, "fcls" if a.method == "fcls" else "unmix", library=library,
-                     baseline_order=a.baseline_order)[0]
+                     baseline_order=a.baseline_order, weights=a.weights)[0]
     ab = res.fields["abundance"].data
     names = [str(v) for v in res.fields["abundance"].axes[0].values]
     lines = [f"notice    {w}" for w in res.summary.get("notices", [])]
@@ -312,6 +312,9 @@ def add_parsers(sub, add_read_options, band_type, positive_int):
                    help="nnls: non-negative abundances in reference units; fcls: shares that "
                         "sum to 1 in every pixel, with a fitted per-pixel scale (so raw counts "
                         "are fine; the scale is written as its own image)")
+    u.add_argument("--weights", choices=("poisson", "none"), default="poisson",
+                   help="poisson (default): each channel weighted by its shot-noise variance "
+                        "(spectra in counts); none: ordinary least squares")
     u.add_argument("--baseline-order", type=_order, default="auto",
                    help="order of the polynomial baseline fitted with the references on the "
                         "despiked counts: auto (default; chosen by the Bayesian information "

@@ -371,7 +371,7 @@ def run_method(m, method: str, *, n: int = 4, seed: int = 0, library=None, model
                init: str = "nndsvda", closure: bool = False, smooth: float = 0.0,
                baseline_order: int | str | None = "auto", min_score: float = 0.9,
                images=None, spectra=None, normalisation: str = "vector",
-               name: str = "classes"):
+               name: str = "classes", weights: str = "poisson"):
     """Run one reduction or quantification method on a cleaned map; returns its Results.
 
     The command line's ``analyse``, ``components``, ``classes`` and ``unmix`` subcommands
@@ -435,7 +435,7 @@ def run_method(m, method: str, *, n: int = 4, seed: int = 0, library=None, model
                               fix="choose a library folder")
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
-            un = ReferenceUnmixing(library, baseline_order=baseline_order,
+            un = ReferenceUnmixing(library, baseline_order=baseline_order, weights=weights,
                                    method="fcls" if method == "fcls" else "nnls").fit(m)
         res = un.result(m)
         res.summary["notices"] = [str(w.message) for w in caught]

@@ -44,20 +44,30 @@ def nnls_batch(A, Y, *, max_sweeps: int = 2000, tol: float = 1e-10,
     """
     A = np.asarray(A, float)
     Y = np.asarray(Y, float)
-    G = A.T @ A
-    H = A.T @ Y
-    k = G.shape[0]
-    diag = np.diag(G).copy()
+    return nnls_gram(A.T @ A, A.T @ Y, max_sweeps=max_sweeps, tol=tol,
+                     return_converged=return_converged)
+
+
+def nnls_gram(G, H, *, max_sweeps: int = 2000, tol: float = 1e-10,
+              return_converged: bool = False):
+    """The coordinate descent of :func:`nnls_batch` on normal equations: ``G`` (k, k) shared
+    by every column of ``H`` (k, m), or one Gram matrix per column, ``G`` (m, k, k) (a
+    weighted fit, whose weights differ from pixel to pixel)."""
+    G = np.asarray(G, float)
+    H = np.asarray(H, float)
+    per_column = G.ndim == 3
+    k, m = H.shape
+    diag = np.einsum("mkk->km", G) if per_column else np.diag(G)[:, None]
     if np.any(diag <= 0):
         raise MapkitError("a reference spectrum is zero over the map's range", field="references",
                           fix="check that every reference covers the map's shift axis")
-    X = np.zeros((k, Y.shape[1]))
+    X = np.zeros((k, m))
     scale = np.maximum(np.abs(H).max(axis=0), 1e-300)
-    converged = np.zeros(Y.shape[1], bool)
+    converged = np.zeros(m, bool)
     for _ in range(max_sweeps):
-        change = np.zeros(Y.shape[1])
+        change = np.zeros(m)
         for j in range(k):
-            grad = H[j] - G[j] @ X
+            grad = H[j] - (np.einsum("mk,km->m", G[:, j, :], X) if per_column else G[j] @ X)
             new = np.maximum(0.0, X[j] + grad / diag[j])
             change = np.maximum(change, np.abs(new - X[j]) * diag[j])
             X[j] = new
@@ -140,6 +150,62 @@ def unmix_spectra(R, X, shift, baseline_order: int | None = None, *, sum_to_one:
         A, converged = nnls_batch(Rp, Xp, tol=tol, return_converged=True)
     rms = np.sqrt(np.mean((Xp - Rp @ A) ** 2, axis=0))
     return (A, rms, converged) if return_converged else (A, rms)
+
+
+#: Spectra per block of the weighted fit (its projections are per pixel: n x terms each).
+WEIGHTED_BLOCK = 1024
+
+
+def unmix_spectra_poisson(R, X, shift, baseline_order: int | None = None, *,
+                          tol: float = 1e-10):
+    """:func:`unmix_spectra` weighted for shot noise: each channel by 1/variance, the
+    variance taken as the unweighted fit's counts (at least 1 count²).
+
+    Weighted least squares with the variance of Poisson counts (iteratively reweighted
+    least squares, one reweighting: McCullagh & Nelder 1989, Generalized Linear Models,
+    ch. 2), so channels under strong fluorescence, which carry more shot noise, count
+    less. The polynomial terms stay free; they are eliminated per pixel by projecting onto
+    the weighted complement of the polynomials. Assumes the spectra are in counts (for
+    scaled data the weights reduce to equal ones where every value is below 1). Returns
+    (abundances (k, m), residual RMS in counts (m,), converged flags (m,)).
+
+    Examples
+    --------
+    >>> s = np.linspace(0, 1, 200)
+    >>> R = np.stack([np.exp(-0.5 * ((s - c) / 0.02) ** 2) for c in (0.3, 0.6)]) * 50
+    >>> rng = np.random.default_rng(0)
+    >>> X = rng.poisson([2.0, 1.0] @ R + 400 + 300 * s, (30, 200)).astype(float)
+    >>> A, rms, ok = unmix_spectra_poisson(R, X, s, 1)
+    >>> bool(np.all(np.abs(A.mean(axis=1) - [2.0, 1.0]) < 0.1)), bool(ok.all())
+    (True, True)
+    """
+    R = np.asarray(R, float)
+    X = np.asarray(X, float)
+    A0, _ = unmix_spectra(R, X, shift, baseline_order, tol=1e-6)
+    n = X.shape[1]
+    Q = (np.zeros((n, 0)) if baseline_order is None
+         else polynomial_basis(shift, baseline_order))
+    A = np.zeros((R.shape[0], X.shape[0]))
+    rms = np.zeros(X.shape[0])
+    converged = np.zeros(X.shape[0], bool)
+    for start in range(0, X.shape[0], WEIGHTED_BLOCK):
+        sl = slice(start, start + WEIGHTED_BLOCK)
+        Xb = X[sl]
+        raman = A0[:, sl].T @ R
+        mu = raman + ((Xb - raman) @ Q) @ Q.T
+        sw = 1.0 / np.sqrt(np.maximum(mu, 1.0))
+        Qo = np.linalg.qr(sw[:, :, None] * Q[None])[0] if Q.shape[1] else None
+        Rw = sw[:, :, None] * R.T[None]                     # (b, n, k)
+        Xw = sw * Xb
+        if Qo is not None:
+            Rw = Rw - Qo @ np.einsum("bnp,bnk->bpk", Qo, Rw)
+            Xw = Xw - np.einsum("bnp,bp->bn", Qo, np.einsum("bnp,bn->bp", Qo, Xw))
+        Ab, ok = nnls_gram(np.einsum("bnk,bnl->bkl", Rw, Rw), np.einsum("bnk,bn->kb", Rw, Xw),
+                           tol=tol, return_converged=True)
+        A[:, sl], converged[sl] = Ab, ok
+        resid = (Xw - np.einsum("bnk,kb->bn", Rw, Ab)) / sw
+        rms[sl] = np.sqrt(np.mean(resid ** 2, axis=1))
+    return A, rms, converged
 
 
 def check_baseline_order(order):
@@ -274,6 +340,11 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
         it on the fitted map by the information criterion of
         :func:`choose_baseline_order`.
     method : {"nnls", "fcls"}
+    weights : {"poisson", "none"}
+        "poisson" (default) weights every channel by the inverse of its shot-noise
+        variance (:func:`unmix_spectra_poisson`; spectra in counts); "none" is ordinary
+        least squares. On the scene family the weights lowered the error against the
+        noise floor on 17 of 18 maps (median 1.065 to 1.04; benchmarks/RESULTS.md).
 
     Attributes
     ----------
@@ -289,15 +360,19 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
     """
 
     def __init__(self, references=(), baseline_order: int | str | None = "auto",
-                 method: str = "nnls"):
+                 method: str = "nnls", weights: str = "poisson"):
         self.references = references
         self.baseline_order = baseline_order
         self.method = method
+        self.weights = weights
 
     def fit(self, m: RamanMap, y=None):
         if self.method not in ("nnls", "fcls"):
             raise MapkitError(f"unknown unmixing method {self.method!r}", field="method",
                               fix="use nnls or fcls")
+        if self.weights not in ("poisson", "none"):
+            raise MapkitError(f"unknown unmixing weights {self.weights!r}", field="weights",
+                              fix="use poisson (spectra in counts) or none")
         refs = list(self.references)
         if not refs:
             raise MapkitError("no reference spectra given", field="references",
@@ -354,8 +429,12 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
                               file=m.source, field="raman_shift", fix="fit on this map")
         X, good = good_spectra(m, what="unmixing")
         # fcls with a free scale: the NNLS optimum z gives shares z / sum(z) exactly
-        A, rms, converged = unmix_spectra(self.references_, X, m.raman_shift,
-                                          self.baseline_order_, return_converged=True)
+        if self.weights == "poisson":
+            A, rms, converged = unmix_spectra_poisson(self.references_, X, m.raman_shift,
+                                                      self.baseline_order_)
+        else:
+            A, rms, converged = unmix_spectra(self.references_, X, m.raman_shift,
+                                              self.baseline_order_, return_converged=True)
         converged = to_images(m, converged[:, None], good, fill=True)[0].astype(bool)
         scale = None
         if self.method == "fcls":
@@ -392,5 +471,6 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
         return Result(name, f"{self.method}_unmixing",
                       {"references": self.names_, "baseline_order": self.baseline_order_,
                        "baseline_order_requested": self.baseline_order,
-                       "method": self.method, "resampled": self.resampled_},
+                       "method": self.method, "weights": self.weights,
+                       "resampled": self.resampled_},
                       fields, summary)
