@@ -396,7 +396,7 @@ def test_classes_are_numbered_from_one_with_their_names_in_every_output(
     csv_labels = np.array([int(r[col]) for r in rows[1:]]).reshape(h5_labels.shape)
     np.testing.assert_array_equal(csv_labels, h5_labels)
     # the class figure's legend: numbered from 1, with the library names
-    fig = next(f for f in made if f.axes[0].get_title() == "classes: classes")
+    fig = next(f for f in made if f.axes[0].get_title() == "classes")
     texts = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
     assert texts[0] == f"class 1: {names['class 1']}" and len(texts) == 4
     # reading the file back gives the 0-based indices of the estimator again

@@ -80,7 +80,7 @@ def write_bundle(outdir, m, results, *, stem: str, overwrite: bool = False, figu
                                 title=f"{r.name}: {display_label(label, names)}")
             elif fld.signal == "labels":
                 n = int(np.max(fld.data)) + 1 if fld.data.size else 0
-                each_format(save_image_figure, base, fld, title=f"{r.name}: classes",
+                each_format(save_image_figure, base, fld, title="classes" if r.name == "classes" else f"{r.name}: classes",
                             classes=True, class_names=class_names(r, n))
             else:
                 bits = _bit_meanings(fld.signal)
