@@ -38,7 +38,8 @@ import numpy as np
 from mapkit.cli import main as mapkit_main
 from mapkit.read.nexus import read_results
 from mapkit.scenes import KINDS, make_scene
-from mapkit.scoring import class_agreement, noise_floor, score_factorisation, score_unmixing
+from mapkit.scoring import (class_agreement, noise_floor, oracle_abundances,
+                            score_factorisation, score_unmixing)
 
 COLUMNS = ("cosine", "abund/floor", "ARI all", "ARI core", "unmix/floor")
 # which way is better for each score
@@ -106,14 +107,9 @@ def run_plain(scene, seed=0):
 def floor_classes(scene):
     """The class map of the noise-floor abundances (true references, true background
     removed): what the dominant-component truth looks like through the noise."""
-    from mapkit.reduce import nnls_batch
-
-    t = scene.truth
-    good = ~t["bad_pixels"]
-    A = nnls_batch(t["pure_spectra"].T, (scene.counts.astype(float) - t["background"])[good].T)
-    lab = np.full(good.shape, -1)
-    lab[good] = np.argmax(A, axis=0)
-    return class_agreement(lab, t)
+    good = ~scene.truth["bad_pixels"]
+    lab = np.where(good, np.argmax(oracle_abundances(scene, good), axis=0), -1)
+    return class_agreement(lab, scene.truth)
 
 
 def score(out, scene, floor):

@@ -62,8 +62,7 @@ def scaled_rmse(estimate, truth, where=None) -> float:
     t = np.asarray(truth, float)
     if where is not None:
         e, t = e[where], t[where]
-    ok = np.isfinite(e)
-    e, t = np.where(ok, e, 0.0), t
+    e = np.where(np.isfinite(e), e, 0.0)
     den = e @ e
     scale = (e @ t) / den if den > 0 else 0.0
     return float(np.sqrt(np.mean((scale * e - t) ** 2)))
@@ -86,18 +85,24 @@ def scored_pixels(truth) -> np.ndarray:
     return ~truth["bad_pixels"] & ~truth["spike_mask"].any(axis=-1)
 
 
-def noise_floor(scene) -> float:
-    """Worst-component abundance RMSE of NNLS with the true references on the map with
-    its true background subtracted (an oracle that knows spectra and background)."""
+def oracle_abundances(scene, where) -> np.ndarray:
+    """Abundance images (k, ny, nx) of NNLS with the true references on the map with its
+    true background subtracted, on the pixels ``where`` (zero elsewhere)."""
     from .reduce.unmix import nnls_batch
 
     t = scene.truth
-    where = scored_pixels(t)
-    X = (scene.counts.astype(float) - t["background"])[where]
-    A = nnls_batch(t["pure_spectra"].T, X.T)
     images = np.zeros(t["abundance"].shape)
-    images[:, where] = A
-    return float(abundance_errors(images, t["abundance"], where).max())
+    images[:, where] = nnls_batch(t["pure_spectra"].T,
+                                  (scene.counts.astype(float) - t["background"])[where].T)
+    return images
+
+
+def noise_floor(scene) -> float:
+    """Worst-component abundance RMSE of the oracle (:func:`oracle_abundances`, which knows
+    the spectra and the background) over the scored pixels."""
+    where = scored_pixels(scene.truth)
+    return float(abundance_errors(oracle_abundances(scene, where), scene.truth["abundance"],
+                                  where).max())
 
 
 def class_agreement(labels, truth) -> dict:

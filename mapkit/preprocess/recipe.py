@@ -212,6 +212,13 @@ class Recipe:
             extras[name] = extra
         return m, extras
 
+    def _begin(self, m):
+        """Check the axis first (a crop too narrow fails at its line before any work) and
+        record the recipe in the map's provenance."""
+        self.check_axis(m.raman_shift)
+        return m.derive(m.intensity, Step("recipe", {"name": self.name, "source": self.source,
+                                                      "text": self.text}))
+
     def apply_keeping_background(self, m, *, progress=None):
         r"""Run every step; returns (map, by-products, the map cleaned without baselines).
 
@@ -234,9 +241,7 @@ class Recipe:
         >>> cleaned.shape == background.shape, bool(background.intensity.min() > 0.9)
         (True, True)
         """
-        self.check_axis(m.raman_shift)
-        m = m.derive(m.intensity, Step("recipe", {"name": self.name, "source": self.source,
-                                                   "text": self.text}))
+        m = self._begin(m)
         extras, keep = {}, m
         for name, params in self.steps:
             if progress:
@@ -254,9 +259,7 @@ class Recipe:
         The axis is checked first (:meth:`check_axis`), so a crop that leaves too few
         channels for a later step fails at the crop's line before any work.
         """
-        self.check_axis(m.raman_shift)
-        m = m.derive(m.intensity, Step("recipe", {"name": self.name, "source": self.source,
-                                                   "text": self.text}))
+        m = self._begin(m)
         for name, params in self.steps:
             if spectra_only and (name == "bin" or (name == "despike"
                                                    and params.get("method") == "neighbours")):
