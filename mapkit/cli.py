@@ -11,84 +11,13 @@ import argparse
 import os
 
 import numpy as np
-import re
 import sys
 from pathlib import Path
 
+from .cli_common import (_add_read_options, _band, _check_outputs, _formats, _map_files,
+                         _open_kwargs, _positive_int, _print_notes, _range_arg,
+                         add_response_options)
 from .errors import MapkitError
-
-def _band(text: str):
-    m = re.fullmatch(r"\s*(?:([A-Za-z_][\w.-]*)[:=])?\s*([\d.]+)\s*-\s*([\d.]+)\s*", text)
-    if not m:
-        raise argparse.ArgumentTypeError(f"band {text!r} is not NAME:LO-HI (e.g. api:845-872)")
-    lo, hi = float(m.group(2)), float(m.group(3))
-    return (m.group(1) or f"band_{lo:g}_{hi:g}", lo, hi)
-
-
-def _positive_int(text: str) -> int:
-    try:
-        v = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
-    if v < 1:
-        raise argparse.ArgumentTypeError(f"{text} must be at least 1")
-    return v
-
-
-def _add_read_options(p, laser: bool = True):
-    g = p.add_argument_group("reading a cube from any HDF5 file")
-    g.add_argument("--dataset", help="path of the intensity cube inside the HDF5 file")
-    g.add_argument("--axes", help="the dataset's axis order, e.g. y,x,raman_shift (a 2-D stack "
-                                  "of spectra: pixel,raman_shift); checked against the file's "
-                                  "dimension labels and the shift and position datasets, and "
-                                  "reported when nothing in the file can confirm it")
-    g.add_argument("--shift-dataset", dest="shift_path",
-                   help="path of the shift axis dataset; its units attribute is honoured "
-                        "(1/cm, cm-1, cm^-1: Raman shift; nm: wavelength, converted with "
-                        "--laser); other units are refused")
-    g.add_argument("--x", dest="x_path", help="path of the x positions dataset (um; one per "
-                                              "column, or one per spectrum of a 2-D stack)")
-    g.add_argument("--y", dest="y_path", help="path of the y positions dataset (um)")
-    g.add_argument("--pixel-size", type=float, help="step in um when no position datasets exist")
-    p.add_argument("--position-tolerance", type=float, metavar="UM",
-                   help="text tables and 2-D stacks: snap positions that jitter by up to UM "
-                        "around a grid onto it (reported); default: positions must repeat "
-                        "exactly")
-    if laser:
-        p.add_argument("--laser", type=float, help="excitation wavelength in nm, if the file lacks "
-                                                   "it (converts a wavelength axis to shift)")
-
-
-def _open_kwargs(a) -> dict:
-    from . import layout
-
-    # every command is a pass over whole maps: read them in blocks, not pixel tiles
-    return {"dataset": a.dataset, "axes": a.axes, "shift": a.shift_path, "x": a.x_path,
-            "y": a.y_path, "pixel_size": a.pixel_size, "laser_wavelength": a.laser,
-            "position_tolerance": a.position_tolerance, "block_bytes": layout.READ_BYTES}
-
-
-def _print_notes(m, prefix="notice    ", file=None):
-    """Print what the reader converted, snapped or could not confirm."""
-    from .read.dispatch import read_notes
-
-    for note in read_notes(m):
-        print(f"{prefix}{note}", file=file or sys.stdout)
-
-
-def _check_outputs(out, overwrite, names=("results.h5",)):
-    """Refuse, before any work, an output folder that is a file or holds earlier outputs."""
-    out = Path(out)
-    if out.exists() and not out.is_dir():
-        raise MapkitError("the output path is a file, not a folder", file=out, field="--out",
-                          fix="give a folder for the outputs")
-    if overwrite:
-        return
-    for name in names:
-        if (out / name).exists():
-            raise MapkitError("the output file exists (from an earlier run)", file=out / name,
-                              field="--out", fix="choose another --out folder or pass --overwrite")
-
 
 def _add_analysis_options(p, default_out="mapkit-output"):
     p.add_argument("--out", default=default_out,
@@ -197,25 +126,6 @@ def _print_optical(info):
                                                                 reg["residuals_um"]) + " um")
 
 
-def add_response_options(g, range_type):
-    """Options that define the calibration response (analyse and calibrate share them)."""
-    g.add_argument("--weighting", choices=("none", "replicates"), default="none",
-                   help="least-squares weights of the standards: none (default), or "
-                        "replicates (1/variance, a line fitted to the replicate variances "
-                        "at each level)")
-    g.add_argument("--response-band", type=range_type, metavar="LO-HI",
-                   help="response: the band area over LO-HI 1/cm above a straight line "
-                        "through its end points (default: the unmixing fraction)")
-    g.add_argument("--internal-standard", type=range_type, metavar="LO-HI",
-                   help="divide the response band by this band's area")
-
-
-def _range_arg(text):
-    from .cli_reduce import _range
-
-    return _range(text)
-
-
 def _score(text: str) -> float:
     import argparse
 
@@ -226,11 +136,6 @@ def _score(text: str) -> float:
     if not 0.0 <= v <= 1.0:
         raise argparse.ArgumentTypeError(f"{text!r} is not a score between 0 and 1")
     return v
-
-
-def _formats(a):
-    choice = getattr(a, "figure_format", "png")
-    return ("png", "svg") if choice == "both" else (choice,)
 
 
 def _recipe(a):
@@ -525,19 +430,6 @@ def cmd_spectrum(a):
     print("raman_shift_cm-1,intensity")
     for sh, v in zip(m.raman_shift, s):
         print(f"{sh:.3f},{v:.6g}")
-
-
-def _map_files(target):
-    from .read.dispatch import MAP_SUFFIXES
-
-    p = Path(target)
-    if p.is_dir():
-        files = sorted(q for q in p.iterdir() if q.suffix.lower() in MAP_SUFFIXES)
-        if not files:
-            raise MapkitError("no map files in the folder", file=p,
-                              fix=f"put maps ({', '.join(MAP_SUFFIXES)}) in it")
-        return files
-    return [p]
 
 
 def cmd_preprocess(a):

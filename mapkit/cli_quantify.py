@@ -5,7 +5,7 @@ from __future__ import annotations
 import csv
 from pathlib import Path
 
-
+from .cli_common import _check_outputs, _common, _map_files, _prepare, _write, add_response_options
 
 
 def cmd_calibrate(a):
@@ -14,8 +14,6 @@ def cmd_calibrate(a):
     from .pipeline import Settings, quantification_model
     from .preprocess.recipe import Recipe
     from .read import read_library
-
-    from .cli import _check_outputs
 
     recipe = Recipe.from_file(a.recipe) if a.recipe else Recipe.default()
     _check_outputs(a.out, a.overwrite, ("quant_model.json",))   # before any fitting
@@ -47,7 +45,6 @@ def cmd_calibrate(a):
 
 
 def cmd_batch(a):
-    from .cli import _map_files
     from .export.atomic import atomic_path
     from .export.bundle import safe_name, write_bundle
     from .preprocess.recipe import Recipe
@@ -91,7 +88,6 @@ def cmd_batch(a):
 
 
 def cmd_temperature(a):
-    from .cli_reduce import _prepare, _write
     from .quantify import temperature_map
 
     m, _ = _prepare(a, minimal=True)
@@ -105,7 +101,6 @@ def cmd_temperature(a):
 
 
 def cmd_crystallite(a):
-    from .cli_reduce import _prepare, _write
     from .quantify import crystallite_size_map
 
     m, _ = _prepare(a)
@@ -118,8 +113,6 @@ def cmd_crystallite(a):
 
 
 def add_parsers(sub, add_read_options, range_type):
-    from .cli_reduce import _common
-
     c = sub.add_parser("calibrate", help="fit a quantification model from standards and save it",
                        description="Clean the standards with the recipe, compute the response, "
                                    "fit the calibration, report LOD/LOQ and save the model.")
@@ -128,8 +121,6 @@ def add_parsers(sub, add_read_options, range_type):
     c.add_argument("--recipe", help="cleaning recipe (default recipe when omitted)")
     c.add_argument("--model", choices=("linear", "quadratic", "pls"), default="linear",
                    help="calibration model (default linear)")
-    from .cli import add_response_options
-
     add_response_options(c, range_type)
     c.add_argument("--analyte", help="reference name of the analyte (default: from the file)")
     c.add_argument("--out", default="mapkit-output", help="folder for the model and figure")
