@@ -202,6 +202,7 @@ def _prepare(a, minimal=False, lazy_ok=False, background=False):
 
 def _write(a, m, results, lines):
     from .core.provenance import Step
+    from .export.atomic import output_transaction
     from .export.bundle import safe_name, write_bundle, write_summary
 
     out = Path(a.out)
@@ -211,11 +212,12 @@ def _write(a, m, results, lines):
     out.mkdir(parents=True, exist_ok=True)
     final = m.derive(m.intensity, Step(a.command, {k: v for k, v in vars(a).items()
                                                    if k not in ("func",)}))
-    written = write_bundle(out, final, results, stem=safe_name(Path(a.map).stem),
-                           overwrite=a.overwrite, figures=not a.no_figures,
-                           inputs={"map": a.map}, formats=_formats(a))
-    written.append(write_summary(out, {"map": str(a.map), "command": a.command,
-                                       "results": {r.name: r.summary for r in results}}))
+    with output_transaction(out):   # the bundle and its summary replace the old ones together
+        written = write_bundle(out, final, results, stem=safe_name(Path(a.map).stem),
+                               overwrite=a.overwrite, figures=not a.no_figures,
+                               inputs={"map": a.map}, formats=_formats(a))
+        written.append(write_summary(out, {"map": str(a.map), "command": a.command,
+                                           "results": {r.name: r.summary for r in results}}))
     for line in lines:
         print(line)
     print(f"wrote     {len(written)} files to {out}/ (results in {written[0]})")

@@ -10,7 +10,7 @@ import numpy as np
 
 from ..core.provenance import library_versions
 from ..core.result import Field
-from .atomic import atomic_path
+from .atomic import all_or_nothing, atomic_path
 from .figures import bit_categories, save_image_figure, save_spectra_figure
 from .nexus import write_results_file
 from .tiff import write_tiff
@@ -24,6 +24,7 @@ def safe_name(name: str) -> str:
     return re.sub(r"[^A-Za-z0-9_.-]+", "_", str(name)).strip("_") or "map"
 
 
+@all_or_nothing   # a failure part-way leaves the previous bundle as it was
 def write_bundle(outdir, m, results, *, stem: str, overwrite: bool = False, figures: bool = True,
                  inputs: dict | None = None, results_name: str = "results.h5",
                  formats=("png",), write_h5: bool = True, csv: bool = True,

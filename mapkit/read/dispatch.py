@@ -38,11 +38,12 @@ def open_map(path, *, dataset: str | None = None, axes=None, shift: str | None =
         For a mapkit file: read the cube in blocks of about this size (whole-cube passes)
         instead of one file chunk at a time (single-pixel reads).
     """
+    from ..export.atomic import staged
     from .hdf5 import read_hdf5_dataset
     from .nexus import read_nexus_map
     from .table import read_table
 
-    p = Path(path)
+    p = staged(path)   # an output of this run, finished but not yet put in place: read that
     if not p.exists():
         raise MapkitError("file not found", file=p, fix="check the path")
     if dataset is not None:
