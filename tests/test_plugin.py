@@ -413,3 +413,63 @@ def test_screenshot_of_the_calibration_panel(make_napari_viewer, sample_map_path
     assert panel.fit_calibration() is not None
     qtbot.wait(300)
     _screenshot(viewer, tmp_path, "viewer_calibration.png")
+
+
+def _small_sample_budget(monkeypatch):
+    """Make the 7 MB sample map count as large: an estimate from 2 of its 12 tiles' worth,
+    refined one row of tiles at a time (as a multi-GB map is by default)."""
+    import mapkit.core.overview as overview
+
+    tile = 16 * 16 * 600 * 4
+    monkeypatch.setattr(overview, "SAMPLE_BYTES", 2 * tile)
+    monkeypatch.setattr(overview, "BAND_BYTES", tile)
+
+
+def test_large_map_shows_an_estimate_then_the_exact_mean(make_napari_viewer, sample_map_path,
+                                                         sample_map, qtbot, monkeypatch):
+    """The first image comes from a sample of the cube; a worker with a progress bar makes
+    it exact (numpy's mean as the reference) while the cursor spectrum keeps working."""
+    from mapkit_napari import _refine
+    from mapkit_napari._panel import SpectrumPanel
+
+    _small_sample_budget(monkeypatch)
+    viewer = make_napari_viewer()
+    viewer.open(str(sample_map_path), plugin="mapkit-napari")
+    layer = viewer.layers[0]
+    exact = np.asarray(sample_map.intensity, np.float64).mean(axis=-1)
+    assert layer.metadata["mapkit_mean"].startswith("estimate")
+    assert layer.data.shape == exact.shape
+    assert not np.allclose(layer.data, exact, rtol=1e-3)
+    (worker,) = _refine._RUNNING
+    assert worker.pbar.total == 3
+    panel = SpectrumPanel(viewer)
+    viewer.cursor.position = (sample_map.y[30], sample_map.x[17])
+    np.testing.assert_array_equal(panel.line.get_data()[1], sample_map.intensity[30, 17])
+    qtbot.waitUntil(lambda: not _refine._RUNNING, timeout=60000)
+    qtbot.waitUntil(lambda: layer.metadata["mapkit_mean"] == "exact", timeout=10000)
+    assert worker.pbar.n == 3                     # one step of the progress bar per band
+    np.testing.assert_allclose(layer.data, exact, rtol=1e-6)
+    assert layer.contrast_limits[0] < layer.contrast_limits[1]
+    assert not _refine._RUNNING
+
+
+def test_small_map_and_no_event_loop_give_the_exact_mean_at_once(make_napari_viewer,
+                                                                  sample_map_path, sample_map,
+                                                                  monkeypatch):
+    from qtpy.QtWidgets import QApplication
+
+    from mapkit_napari import _refine
+    from mapkit_napari._reader import read_layers
+
+    exact = np.asarray(sample_map.intensity, np.float64).mean(axis=-1)
+    viewer = make_napari_viewer()
+    viewer.open(str(sample_map_path), plugin="mapkit-napari")   # 7 MB: no estimate needed
+    assert viewer.layers[0].metadata["mapkit_mean"] == "exact" and not _refine._RUNNING
+    np.testing.assert_allclose(viewer.layers[0].data, exact, rtol=1e-6)
+    # a script reading layers with no Qt application: nothing could show the steps
+    _small_sample_budget(monkeypatch)
+    monkeypatch.setattr(QApplication, "instance", staticmethod(lambda: None))
+    data, kw, kind = read_layers(str(sample_map_path))[0]
+    assert kind == "image" and kw["metadata"]["mapkit_mean"] == "exact"
+    np.testing.assert_allclose(data, exact, rtol=1e-6)
+    assert not _refine._RUNNING

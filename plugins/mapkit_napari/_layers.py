@@ -26,11 +26,19 @@ def common_kwargs(m, path):
 
 
 def mean_image_layer(m, path, name):
-    # the mean over the shift axis is computed chunk-wise by Dask (the cube stays on disk)
-    mean = np.asarray(m.intensity.mean(axis=-1).compute() if m.is_lazy
-                      else m.intensity.mean(axis=-1), dtype=np.float32)
-    return (mean, {**common_kwargs(m, path), "name": f"{name}: mean intensity",
-                   "colormap": "gray", "contrast_limits": robust_limits(mean)}, "image")
+    """(layer data, steps): the mean-intensity image at once, and the rest of
+    :func:`mapkit.core.overview.mean_image_steps` (None when the first image is exact)."""
+    from mapkit.core.overview import mean_image_steps
+
+    # a large lazy cube: an estimate from a sample of its tiles first, exact band by band
+    steps = mean_image_steps(m)
+    first = next(steps)
+    mean = first.image
+    meta = {**common_kwargs(m, path), "name": f"{name}: mean intensity",
+            "colormap": "gray", "contrast_limits": robust_limits(mean)}
+    meta["metadata"] = {**meta["metadata"], "mapkit_mean": "exact" if first.exact
+                        else f"estimate:{id(steps)}"}
+    return (mean, meta, "image"), (None if first.exact else (steps, first.total))
 
 
 def result_layers(results, common, *, visible: bool = False):

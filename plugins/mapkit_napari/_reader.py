@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from ._layers import common_kwargs, mean_image_layer, result_layers
+from ._layers import common_kwargs, mean_image_layer, result_layers, robust_limits
 
 _HDF5 = (".h5", ".hdf5", ".nxs", ".nx5")
 _TEXT = (".csv", ".tsv", ".txt", ".dat")
@@ -51,7 +51,8 @@ def read_layers(path):
         results = read_result_objects(path) if is_nexus_map(path) else []
     except MapkitError:
         return []
-    layers = [mean_image_layer(m, path, Path(path).stem)]
+    mean, refine = mean_image_layer(m, path, Path(path).stem)
+    layers = [mean]
     layers += result_layers(results, common_kwargs(m, path))
     placed = None
     if is_nexus_map(path):
@@ -65,4 +66,24 @@ def read_layers(path):
         for _, kw, _kind in layers:
             kw.setdefault("opacity", 0.6)
         layers.insert(0, optical_layer(placed, path))
+    if refine is not None:   # a large cube: the first image is an estimate, refined in the background
+        k = next(i for i, lyr in enumerate(layers) if lyr is mean)
+        layers[k] = _refine(mean, *refine, desc=f"mean image of {Path(path).name}")
     return layers
+
+
+def _refine(mean, steps, total, desc):
+    """The layer to add: the estimate, refined by a worker; with no event loop to show the
+    steps in, the exact image at once (as before)."""
+    from qtpy.QtWidgets import QApplication
+
+    from ._refine import finish_now, refine_in_background
+
+    data, kw, kind = mean
+    if QApplication.instance() is None:
+        last = finish_now(steps)
+        kw["contrast_limits"] = robust_limits(last.image)
+        kw["metadata"]["mapkit_mean"] = "exact"
+        return (last.image, kw, kind)
+    refine_in_background(kw["metadata"]["mapkit_mean"], steps, total, desc)
+    return mean
