@@ -58,7 +58,14 @@ def atomic_path(path, *, overwrite: bool = False):
         with tx.stage(path, overwrite=overwrite) as tmp:
             yield tmp
         return
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
+    with _temporary(path.name, path.parent, path) as tmp:
+        yield tmp
+
+
+@contextlib.contextmanager
+def _temporary(name, folder, dest):
+    """Yield a new hidden ``.part`` file in ``folder``; rename it to ``dest`` on success."""
+    fd, tmp = tempfile.mkstemp(prefix=f".{name}.", suffix=".part", dir=folder)
     os.close(fd)
     umask = os.umask(0)
     os.umask(umask)
@@ -66,7 +73,7 @@ def atomic_path(path, *, overwrite: bool = False):
     tmp = Path(tmp)
     try:
         yield tmp
-        os.replace(tmp, path)
+        os.replace(tmp, dest)
     finally:
         if tmp.exists():
             tmp.unlink()
@@ -104,21 +111,11 @@ class _Transaction:
         if folder is None:
             folder = Path(tempfile.mkdtemp(prefix=STAGING_PREFIX, dir=key.parent))
             self.stages[key.parent] = folder
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=folder)
-        os.close(fd)
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)
-        tmp = Path(tmp)
-        try:
+        staged = folder / key.name   # the target's own name: readable as what it is
+        with _temporary(path.name, folder, staged) as tmp:
             yield tmp
-            staged = folder / key.name   # the target's own name: readable as what it is
-            os.replace(tmp, staged)
-            self.pending.pop(key, None)
-            self.pending[key] = staged
-        finally:
-            if tmp.exists():
-                tmp.unlink()
+        self.pending.pop(key, None)
+        self.pending[key] = staged
 
     def commit(self):
         try:
