@@ -18,7 +18,6 @@ from .cli_common import (_add_read_options, _band, _check_outputs, _formats, _ma
                          _open_kwargs, _positive_int, _print_notes, _range_arg,
                          add_response_options)
 from .errors import MapkitError
-from .export.atomic import output_transaction
 
 def _add_analysis_options(p, default_out="mapkit-output"):
     p.add_argument("--out", default=default_out,
@@ -312,12 +311,16 @@ def cmd_demo(a):
     print("demo: invented tablet cross-section (synthetic data, see sample_maps/README.md)")
     bands = a.band or [("acetaminophen_858", 845.0, 872.0), ("calcite_1086", 1080.0, 1092.0),
                        ("anatase_144", 125.0, 165.0)]
+    from .export.atomic import output_transaction
+
     with output_transaction(a.out):
         return _run_analysis(a, here / "tablet_map.h5", here / "library",
                              here / "calibration_standards.csv", bands)
 
 
 def cmd_analyse(a):
+    from .export.atomic import output_transaction
+
     # outputs replace the previous ones only once the run has finished them all
     with output_transaction(a.out):
         return _run_analysis(a, a.map, a.library, a.standards, a.band)
