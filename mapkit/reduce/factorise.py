@@ -441,3 +441,82 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
                              long_name="MCR-ALS spectrum (unit maximum)")},
             {"lack_of_fit_pct": self.lack_of_fit_, "baseline_order": self.baseline_order_,
              "n_iter": self.n_iter_})
+
+
+#: Singular value ÷ noise edge above which a component counts as above the noise.
+GUIDANCE_MARGIN = 1.1
+
+
+def component_number_guidance(m: RamanMap, max_components: int = 12, *, baseline_order: int = 10,
+                              margin: float = GUIDANCE_MARGIN, n_iter: int = 200) -> dict:
+    """How many components of a map in counts stand above the shot noise.
+
+    The despiked counts (background kept) are biwhitened: rows and columns are scaled so
+    that the Poisson variance estimate (the counts themselves, at least 1) has unit mean in
+    every pixel and every channel (Sinkhorn scaling; Landa, Zhang & Kluger 2022, SIAM J.
+    Math. Data Sci. 4:1420, "Biwhitening reveals the rank of a count matrix"). After the
+    polynomial background terms (orthonormal, per pixel, on the scaled axis) are projected
+    out, pure noise has singular values no larger than √m + √n (m pixels, n channels less
+    the background terms: the edge of the Marchenko-Pastur law, Marchenko & Pastur 1967,
+    Math. USSR Sb. 1:457); each singular value above ``margin`` times that edge is a
+    component the data can resolve. Diagonal scaling keeps the rank of the signal, so the
+    count is that of the Raman components plus any background the polynomials miss
+    (too low a ``baseline_order`` shows up as extra components).
+
+    A component confined to a few pixels may carry less energy than the noise edge: it is
+    then not counted, and a factorisation with that many components cannot resolve it
+    either (measured on the scene family's low-count cell: benchmarks/RESULTS.md).
+
+    Parameters
+    ----------
+    m : RamanMap
+        Despiked map in counts, with its background (e.g. ``Recipe.minimal()``).
+    max_components : int
+        Singular values reported.
+    baseline_order : int
+        Polynomial order of the background projected out.
+    margin : float
+        Ratio to the noise edge a component must exceed.
+
+    Returns
+    -------
+    dict with ``ratios`` (the leading singular values ÷ the noise edge, descending) and
+    ``n_components`` (how many exceed ``margin``).
+
+    Examples
+    --------
+    >>> s = np.linspace(0, 1, 200)
+    >>> S = np.stack([np.exp(-0.5 * ((s - c) / 0.01) ** 2) for c in (0.3, 0.5, 0.7)]) * 40
+    >>> rng = np.random.default_rng(0)
+    >>> C = rng.dirichlet([1, 1, 1], 400)
+    >>> X = rng.poisson(C @ S + 100 + 50 * s).astype(float)
+    >>> m = RamanMap(X.reshape(20, 20, 200), raman_shift=s * 1000, x=np.arange(20.),
+    ...              y=np.arange(20.))
+    >>> component_number_guidance(m, baseline_order=2)["n_components"]
+    3
+    """
+    from .unmix import check_baseline_order, polynomial_basis
+
+    order = check_baseline_order(baseline_order)
+    if not isinstance(order, int):
+        raise MapkitError(f"the guidance needs a whole baseline order, not {baseline_order!r}",
+                          field="baseline_order", fix="give an order such as 10")
+    X, _ = good_spectra(m, what="component guidance")
+    n_terms = order + 1
+    if X.shape[1] <= n_terms + 1 or X.shape[0] < 2:
+        raise MapkitError(f"{X.shape[0]} spectra of {X.shape[1]} channels are too few for "
+                          f"{n_terms} background terms", file=m.source, field="baseline_order",
+                          fix="use a lower baseline order")
+    V = np.maximum(X, 1.0)                      # Poisson variance estimate
+    row, col = np.ones(V.shape[0]), np.ones(V.shape[1])
+    for _ in range(n_iter):                     # Sinkhorn: unit mean variance per row, column
+        row = V.shape[1] / (V @ col)
+        col = V.shape[0] / (V.T @ row)
+    Y = np.sqrt(row)[:, None] * X * np.sqrt(col)[None]
+    Q = np.linalg.qr(np.sqrt(col)[:, None] * polynomial_basis(m.raman_shift, order))[0]
+    Y -= (Y @ Q) @ Q.T
+    sv = np.linalg.svd(Y, compute_uv=False)
+    edge = np.sqrt(Y.shape[0]) + np.sqrt(Y.shape[1] - n_terms)
+    ratios = sv[:max_components] / edge
+    return {"ratios": [float(r) for r in ratios], "n_components": int(np.sum(ratios > margin)),
+            "baseline_order": order, "margin": float(margin)}
