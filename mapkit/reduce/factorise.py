@@ -10,7 +10,7 @@ from ..core.result import Axis, Field, Result
 from ..errors import MapkitError
 from ._common import check_components, good_spectra, image_axes, shift_axis, to_images
 from .endmembers import vca
-from .unmix import nnls_batch, unmix_spectra
+from .unmix import nnls_batch, unmix_spectra, unmix_spectra_poisson
 
 
 def _component_axis(n, prefix="component"):
@@ -292,6 +292,12 @@ class MCRALS(TransformerMixin, BaseEstimator):
              "converged": self.n_iter_ < self.max_iter})
 
 
+#: Background order the automatic choice of :class:`BackgroundMCR` resolves spectra with
+#: (chosen on the scene family: 10 against the images' own order and 14,
+#: benchmarks/RESULTS.md).
+SPECTRA_ORDER = 10
+
+
 def least_area_lift(S, Q):
     """Add to each row of ``S`` the combination of the columns of ``Q`` that makes it
     non-negative with the least area (a linear programme per row, HiGHS via scipy).
@@ -333,8 +339,15 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
     ----------
     n_components : int
     baseline_order : int or "auto"
-        Polynomial order of the background; "auto" chooses it on the map
-        (:func:`~mapkit.reduce.unmix.choose_baseline_order` against provisional spectra).
+        Polynomial order of the background. "auto": the spectra are resolved with a rich
+        background (order ``SPECTRA_ORDER``, fewer on short axes), since every pixel
+        informs them and background left in the data biases them more than extra terms
+        cost; the images are then fitted per pixel with the order the data support
+        against those spectra (:func:`~mapkit.reduce.unmix.choose_baseline_order`) and
+        weighted for shot noise (:func:`~mapkit.reduce.unmix.unmix_spectra_poisson`),
+        where every extra term costs precision. On the scene family this raised the worst
+        cosine on 16 of 18 maps over the order chosen for the images alone
+        (benchmarks/RESULTS.md). A whole number is used for both.
     max_iter : int
         Alternating least-squares sweeps after the start. More sweeps improve the spectra
         of maps without pure pixels but let abundances drift on maps with them; 25 was the
@@ -347,6 +360,9 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
     components_ : array (n_components, n_shift), unit maximum
     fit_images_ : array (n_components, ny, nx)
     baseline_order_ : int
+        Order of the background terms of the images (and of :meth:`transform`).
+    spectra_baseline_order_ : int
+        Order of the background terms the spectra were resolved with.
     start_pixels_ : array of int
         Flat indices (among the good pixels) of the starting pure pixels.
     lack_of_fit_ : float
@@ -394,10 +410,9 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
         if order is None:
             raise MapkitError("background MCR needs background terms", field="baseline_order",
                               fix="give an order (0 for a constant) or auto; for none use MCRALS")
-        if order == "auto":
-            # provisional spectra from a moderate background, then the order they support
-            S, _ = self._start(X, polynomial_basis(m.raman_shift, 6))
-            order = choose_baseline_order(S, X, m.raman_shift, random_state=self.random_state)
+        auto = order == "auto"
+        if auto:   # keep at least four channels per fitted term, as the order choice does
+            order = int(max(0, min(SPECTRA_ORDER, X.shape[1] // 4 - self.n_components - 1)))
         Q = polynomial_basis(m.raman_shift, int(order))
         S, idx = self._start(X, Q)
         Xp = X - (X @ Q) @ Q.T
@@ -407,10 +422,15 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
             S = least_area_lift(nnls_batch(C, X - background @ Q.T, tol=1e-6), Q)
             scale = S.max(axis=1, keepdims=True)
             S = S / np.where(scale > 0, scale, 1.0)
+        self.spectra_baseline_order_ = int(order)
+        if auto:   # the images: the order these spectra support, shot-noise weights
+            order = choose_baseline_order(S, X, m.raman_shift, random_state=self.random_state)
+            Q = polynomial_basis(m.raman_shift, order)
+            Xp = X - (X @ Q) @ Q.T
         Sp = S - (S @ Q) @ Q.T
-        C = nnls_batch(Sp.T, Xp.T).T
         self.components_ = S
         self.baseline_order_ = int(order)
+        C = self._images(X, m.raman_shift).T
         self.start_pixels_ = idx
         self.lack_of_fit_ = float(100 * np.linalg.norm(Xp - C @ Sp) / (np.linalg.norm(Xp) or 1))
         self.raman_shift_ = m.raman_shift.copy()
@@ -428,8 +448,13 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
             raise MapkitError("the map's shift axis differs from the one the model was fitted on",
                               file=m.source, field="raman_shift", fix="fit on this map")
         X, good = good_spectra(m, what="MCR-ALS")
-        A, _ = unmix_spectra(self.components_, X, m.raman_shift, self.baseline_order_)
-        return to_images(m, A.T, good)
+        return to_images(m, self._images(X, m.raman_shift).T, good)
+
+    def _images(self, X, shift):
+        """Concentrations (k, m): with the automatic order weighted for shot noise."""
+        if self.baseline_order == "auto":
+            return unmix_spectra_poisson(self.components_, X, shift, self.baseline_order_)[0]
+        return unmix_spectra(self.components_, X, shift, self.baseline_order_)[0]
 
     def result(self, m: RamanMap, images=None, name: str = "mcr") -> Result:
         comp = _component_axis(self.n_components)
@@ -440,7 +465,7 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
             "spectra": Field("spectrum", self.components_, (comp, shift_axis(m)), "a.u.",
                              long_name="MCR-ALS spectrum (unit maximum)")},
             {"lack_of_fit_pct": self.lack_of_fit_, "baseline_order": self.baseline_order_,
-             "n_iter": self.n_iter_})
+             "spectra_baseline_order": self.spectra_baseline_order_, "n_iter": self.n_iter_})
 
 
 #: Singular value ÷ noise edge above which a component counts as above the noise.
