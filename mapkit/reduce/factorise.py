@@ -346,7 +346,7 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
         against those spectra (:func:`~mapkit.reduce.unmix.choose_baseline_order`) and
         weighted for shot noise (:func:`~mapkit.reduce.unmix.unmix_spectra_poisson`),
         where every extra term costs precision. On the scene family this raised the worst
-        cosine on 16 of 18 maps over the order chosen for the images alone
+        cosine on 14 of 18 maps (lower on 1) over one order chosen for both
         (benchmarks/RESULTS.md). A whole number is used for both.
     max_iter : int
         Alternating least-squares sweeps after the start. More sweeps improve the spectra
