@@ -29,6 +29,15 @@ def cmd_components(a):
                           "from the purest pixels)", field="--init",
                           fix="drop them, or choose --method mcr")
     m, library = _prepare(a, background=method in FITS_BACKGROUND)
+    guide = []
+    if a.guide:   # on the despiked counts with their background, whatever the method
+        from .reduce import component_number_guidance
+
+        g = component_number_guidance(m if method in FITS_BACKGROUND
+                                      else _prepare(a, background=True)[0])
+        guide = ["singular value / noise edge: " + ", ".join(f"{i + 1}: {r:.2f}" for i, r in
+                                                              enumerate(g["ratios"])),
+                 f"components above the noise (ratio > {g['margin']:g}): {g['n_components']}"]
     res = run_method(m, method, n=a.n, seed=a.seed, library=library, init=a.init,
                      closure=a.closure, min_score=a.min_score)[0]
     s = res.summary
@@ -44,7 +53,7 @@ def cmd_components(a):
         lines = [f"MCR-ALS: {a.n} components, lack of fit {s['lack_of_fit_pct']:.2f} %, "
                  f"explained variance {s['explained_variance_pct']:.2f} %, {s['n_iter']} "
                  "iterations"]
-    return _write(a, m, [res], lines + _identified(res))
+    return _write(a, m, [res], guide + lines + _identified(res))
 
 
 def cmd_classes(a):
@@ -179,6 +188,9 @@ def add_parsers(sub, add_read_options, band_type, positive_int):
                    help="starting point (NMF: nndsvda or vca; MCR: vca or nmf)")
     c.add_argument("--closure", action="store_true", help="MCR: concentrations sum to one")
     c.add_argument("--library", help="folder of reference spectra to identify components")
+    c.add_argument("--guide", action="store_true",
+                   help="also print how many components stand above the shot noise "
+                        "(singular values of the biwhitened counts; spectra in counts)")
     c.add_argument("--min-score", type=float, default=0.9,
                    help="lowest hit-quality index (0-1, after removing offset and slope on "
                         "both sides) that counts as a match (default 0.9)")

@@ -10,7 +10,7 @@ from ..core.result import Axis, Field, Result
 from ..errors import MapkitError
 from ._common import check_components, good_spectra, image_axes, shift_axis, to_images
 from .endmembers import vca
-from .unmix import nnls_batch, unmix_spectra
+from .unmix import nnls_batch, unmix_spectra, unmix_spectra_poisson
 
 
 def _component_axis(n, prefix="component"):
@@ -292,6 +292,12 @@ class MCRALS(TransformerMixin, BaseEstimator):
              "converged": self.n_iter_ < self.max_iter})
 
 
+#: Background order the automatic choice of :class:`BackgroundMCR` resolves spectra with
+#: (chosen on the scene family: 10 against the images' own order and 14,
+#: benchmarks/RESULTS.md).
+SPECTRA_ORDER = 10
+
+
 def least_area_lift(S, Q):
     """Add to each row of ``S`` the combination of the columns of ``Q`` that makes it
     non-negative with the least area (a linear programme per row, HiGHS via scipy).
@@ -333,8 +339,15 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
     ----------
     n_components : int
     baseline_order : int or "auto"
-        Polynomial order of the background; "auto" chooses it on the map
-        (:func:`~mapkit.reduce.unmix.choose_baseline_order` against provisional spectra).
+        Polynomial order of the background. "auto": the spectra are resolved with a rich
+        background (order ``SPECTRA_ORDER``, fewer on short axes), since every pixel
+        informs them and background left in the data biases them more than extra terms
+        cost; the images are then fitted per pixel with the order the data support
+        against those spectra (:func:`~mapkit.reduce.unmix.choose_baseline_order`) and
+        weighted for shot noise (:func:`~mapkit.reduce.unmix.unmix_spectra_poisson`),
+        where every extra term costs precision. On the scene family this raised the worst
+        cosine on 14 of 18 maps (lower on 1) over one order chosen for both
+        (benchmarks/RESULTS.md). A whole number is used for both.
     max_iter : int
         Alternating least-squares sweeps after the start. More sweeps improve the spectra
         of maps without pure pixels but let abundances drift on maps with them; 25 was the
@@ -347,6 +360,9 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
     components_ : array (n_components, n_shift), unit maximum
     fit_images_ : array (n_components, ny, nx)
     baseline_order_ : int
+        Order of the background terms of the images (and of :meth:`transform`).
+    spectra_baseline_order_ : int
+        Order of the background terms the spectra were resolved with.
     start_pixels_ : array of int
         Flat indices (among the good pixels) of the starting pure pixels.
     lack_of_fit_ : float
@@ -394,10 +410,9 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
         if order is None:
             raise MapkitError("background MCR needs background terms", field="baseline_order",
                               fix="give an order (0 for a constant) or auto; for none use MCRALS")
-        if order == "auto":
-            # provisional spectra from a moderate background, then the order they support
-            S, _ = self._start(X, polynomial_basis(m.raman_shift, 6))
-            order = choose_baseline_order(S, X, m.raman_shift, random_state=self.random_state)
+        auto = order == "auto"
+        if auto:   # keep at least four channels per fitted term, as the order choice does
+            order = int(max(0, min(SPECTRA_ORDER, X.shape[1] // 4 - self.n_components - 1)))
         Q = polynomial_basis(m.raman_shift, int(order))
         S, idx = self._start(X, Q)
         Xp = X - (X @ Q) @ Q.T
@@ -407,10 +422,15 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
             S = least_area_lift(nnls_batch(C, X - background @ Q.T, tol=1e-6), Q)
             scale = S.max(axis=1, keepdims=True)
             S = S / np.where(scale > 0, scale, 1.0)
+        self.spectra_baseline_order_ = int(order)
+        if auto:   # the images: the order these spectra support, shot-noise weights
+            order = choose_baseline_order(S, X, m.raman_shift, random_state=self.random_state)
+            Q = polynomial_basis(m.raman_shift, order)
+            Xp = X - (X @ Q) @ Q.T
         Sp = S - (S @ Q) @ Q.T
-        C = nnls_batch(Sp.T, Xp.T).T
         self.components_ = S
         self.baseline_order_ = int(order)
+        C = self._images(X, m.raman_shift).T
         self.start_pixels_ = idx
         self.lack_of_fit_ = float(100 * np.linalg.norm(Xp - C @ Sp) / (np.linalg.norm(Xp) or 1))
         self.raman_shift_ = m.raman_shift.copy()
@@ -428,8 +448,13 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
             raise MapkitError("the map's shift axis differs from the one the model was fitted on",
                               file=m.source, field="raman_shift", fix="fit on this map")
         X, good = good_spectra(m, what="MCR-ALS")
-        A, _ = unmix_spectra(self.components_, X, m.raman_shift, self.baseline_order_)
-        return to_images(m, A.T, good)
+        return to_images(m, self._images(X, m.raman_shift).T, good)
+
+    def _images(self, X, shift):
+        """Concentrations (k, m): with the automatic order weighted for shot noise."""
+        if self.baseline_order == "auto":
+            return unmix_spectra_poisson(self.components_, X, shift, self.baseline_order_)[0]
+        return unmix_spectra(self.components_, X, shift, self.baseline_order_)[0]
 
     def result(self, m: RamanMap, images=None, name: str = "mcr") -> Result:
         comp = _component_axis(self.n_components)
@@ -440,4 +465,83 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
             "spectra": Field("spectrum", self.components_, (comp, shift_axis(m)), "a.u.",
                              long_name="MCR-ALS spectrum (unit maximum)")},
             {"lack_of_fit_pct": self.lack_of_fit_, "baseline_order": self.baseline_order_,
-             "n_iter": self.n_iter_})
+             "spectra_baseline_order": self.spectra_baseline_order_, "n_iter": self.n_iter_})
+
+
+#: Singular value ÷ noise edge above which a component counts as above the noise.
+GUIDANCE_MARGIN = 1.1
+
+
+def component_number_guidance(m: RamanMap, max_components: int = 12, *, baseline_order: int = 10,
+                              margin: float = GUIDANCE_MARGIN, n_iter: int = 200) -> dict:
+    """How many components of a map in counts stand above the shot noise.
+
+    The despiked counts (background kept) are biwhitened: rows and columns are scaled so
+    that the Poisson variance estimate (the counts themselves, at least 1) has unit mean in
+    every pixel and every channel (Sinkhorn scaling; Landa, Zhang & Kluger 2022, SIAM J.
+    Math. Data Sci. 4:1420, "Biwhitening reveals the rank of a count matrix"). After the
+    polynomial background terms (orthonormal, per pixel, on the scaled axis) are projected
+    out, pure noise has singular values no larger than √m + √n (m pixels, n channels less
+    the background terms: the edge of the Marchenko-Pastur law, Marchenko & Pastur 1967,
+    Math. USSR Sb. 1:457); each singular value above ``margin`` times that edge is a
+    component the data can resolve. Diagonal scaling keeps the rank of the signal, so the
+    count is that of the Raman components plus any background the polynomials miss
+    (too low a ``baseline_order`` shows up as extra components).
+
+    A component confined to a few pixels may carry less energy than the noise edge: it is
+    then not counted, and a factorisation with that many components cannot resolve it
+    either (measured on the scene family's low-count cell: benchmarks/RESULTS.md).
+
+    Parameters
+    ----------
+    m : RamanMap
+        Despiked map in counts, with its background (e.g. ``Recipe.minimal()``).
+    max_components : int
+        Singular values reported.
+    baseline_order : int
+        Polynomial order of the background projected out.
+    margin : float
+        Ratio to the noise edge a component must exceed.
+
+    Returns
+    -------
+    dict with ``ratios`` (the leading singular values ÷ the noise edge, descending) and
+    ``n_components`` (how many exceed ``margin``).
+
+    Examples
+    --------
+    >>> s = np.linspace(0, 1, 200)
+    >>> S = np.stack([np.exp(-0.5 * ((s - c) / 0.01) ** 2) for c in (0.3, 0.5, 0.7)]) * 40
+    >>> rng = np.random.default_rng(0)
+    >>> C = rng.dirichlet([1, 1, 1], 400)
+    >>> X = rng.poisson(C @ S + 100 + 50 * s).astype(float)
+    >>> m = RamanMap(X.reshape(20, 20, 200), raman_shift=s * 1000, x=np.arange(20.),
+    ...              y=np.arange(20.))
+    >>> component_number_guidance(m, baseline_order=2)["n_components"]
+    3
+    """
+    from .unmix import check_baseline_order, polynomial_basis
+
+    order = check_baseline_order(baseline_order)
+    if not isinstance(order, int):
+        raise MapkitError(f"the guidance needs a whole baseline order, not {baseline_order!r}",
+                          field="baseline_order", fix="give an order such as 10")
+    X, _ = good_spectra(m, what="component guidance")
+    n_terms = order + 1
+    if X.shape[1] <= n_terms + 1 or X.shape[0] < 2:
+        raise MapkitError(f"{X.shape[0]} spectra of {X.shape[1]} channels are too few for "
+                          f"{n_terms} background terms", file=m.source, field="baseline_order",
+                          fix="use a lower baseline order")
+    V = np.maximum(X, 1.0)                      # Poisson variance estimate
+    row, col = np.ones(V.shape[0]), np.ones(V.shape[1])
+    for _ in range(n_iter):                     # Sinkhorn: unit mean variance per row, column
+        row = V.shape[1] / (V @ col)
+        col = V.shape[0] / (V.T @ row)
+    Y = np.sqrt(row)[:, None] * X * np.sqrt(col)[None]
+    Q = np.linalg.qr(np.sqrt(col)[:, None] * polynomial_basis(m.raman_shift, order))[0]
+    Y -= (Y @ Q) @ Q.T
+    sv = np.linalg.svd(Y, compute_uv=False)
+    edge = np.sqrt(Y.shape[0]) + np.sqrt(Y.shape[1] - n_terms)
+    ratios = sv[:max_components] / edge
+    return {"ratios": [float(r) for r in ratios], "n_components": int(np.sum(ratios > margin)),
+            "baseline_order": order, "margin": float(margin)}
