@@ -531,6 +531,12 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
     >>> bool(np.sort(est.components_ @ S.T / np.linalg.norm(est.components_, axis=1)[:, None]
     ...              / np.linalg.norm(S, axis=1), axis=None)[-2] > 0.99)
     True
+
+    The same spectra as rows, on the same axis, give the same concentrations:
+
+    >>> rows = BackgroundMCR(n_components=2, baseline_order=1).fit(X, raman_shift=s)
+    >>> bool(np.allclose(rows.transform(X), est.transform(m).reshape(2, -1).T))
+    True
     """
 
     def __init__(self, n_components: int = 4, baseline_order="auto", max_iter: int = 25,

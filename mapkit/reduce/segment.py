@@ -314,6 +314,12 @@ class DominantClasses(_ClassMap):
     >>> images = np.stack([a[..., 0], a[..., 1] / 3])
     >>> DominantClasses(n_classes=2).fit(m, images).labels_.tolist()
     [[0, 0, 1], [0, 0, 1]]
+
+    On spectra as rows, with one row of weights per spectrum:
+
+    >>> X, W = a.reshape(6, 4), images.reshape(2, 6).T
+    >>> DominantClasses(n_classes=2).fit(X, W).labels_.tolist()
+    [0, 0, 1, 0, 0, 1]
     """
 
     method = "dominant"
