@@ -165,6 +165,27 @@ def test_array_input_gives_the_map_numbers_and_blocks_give_the_whole(make):
     assert_allclose(blocks, _as_rows(images, good), rtol=BLOCK_RTOL, atol=1e-9)
 
 
+def _slabs(m, rows=4):
+    """The map cut into slabs of whole image rows, each a RamanMap of its own."""
+    from dataclasses import replace
+
+    return [replace(m, intensity=np.asarray(m.intensity)[i:i + rows], y=m.y[i:i + rows],
+                    mask=m.mask[i:i + rows]) for i in range(0, m.shape[0], rows)]
+
+
+@pytest.mark.parametrize("make", TRANSFORMERS[:2] + TRANSFORMERS[3:4],
+                         ids=["pca", "nmf", "mcr"])
+def test_maps_in_slabs_give_the_whole_map(make):
+    # a large map is read in slabs of image rows: their images stack to the whole map's
+    m, _, _ = _mixture()
+    est = make().fit(m)
+    whole = est.transform(m)
+    parts = np.concatenate([est.transform(sl) for sl in _slabs(m)], axis=1)
+    assert_allclose(parts, whole, rtol=BLOCK_RTOL, atol=1e-9, equal_nan=True)
+    km = KMeansClasses(n_classes=3).fit(m)
+    assert_array_equal(np.concatenate([km.predict(sl) for sl in _slabs(m)]), km.labels_)
+
+
 def test_channel_index_is_the_default_axis_for_rows():
     # an evenly spaced axis and the channel index give the same Legendre terms
     m, _, _ = _mixture()
