@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 from sklearn.base import BaseEstimator, RegressorMixin
-from sklearn.utils.validation import _num_samples, check_is_fitted, validate_data
+from sklearn.utils.validation import check_is_fitted, validate_data
 
 from ..errors import DataError, MapkitError
 
@@ -58,8 +58,9 @@ class PLSCalibration(RegressorMixin, BaseEstimator):
         if y is None:
             raise DataError("PLSCalibration requires y to be passed, but the target y is None",
                             field="standards", fix="give one concentration per spectrum")
-        if _num_samples(X) != _num_samples(y):
-            raise DataError(f"{_num_samples(X)} spectra but {_num_samples(y)} concentrations",
+        n_x, n_y = (v.shape[0] if hasattr(v, "shape") else len(v) for v in (X, y))
+        if n_x != n_y:
+            raise DataError(f"{n_x} spectra but {n_y} concentrations",
                             field="standards", fix="give one concentration per spectrum")
         X, y = validate_data(self, X, y, dtype=np.float64, y_numeric=True)
         groups = np.arange(y.size) if groups is None else np.asarray(groups)
