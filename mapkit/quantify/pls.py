@@ -58,7 +58,8 @@ class PLSCalibration(RegressorMixin, BaseEstimator):
         if y is None:
             raise DataError("PLSCalibration requires y to be passed, but the target y is None",
                             field="standards", fix="give one concentration per spectrum")
-        n_x, n_y = (v.shape[0] if hasattr(v, "shape") else len(v) for v in (X, y))
+        n_x, n_y = (v.shape[0] if hasattr(v, "shape") else np.asarray(v).shape[0]
+                    for v in (X, y))
         if n_x != n_y:
             raise DataError(f"{n_x} spectra but {n_y} concentrations",
                             field="standards", fix="give one concentration per spectrum")
