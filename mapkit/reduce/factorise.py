@@ -10,8 +10,8 @@ from sklearn.utils.validation import check_is_fitted
 from ..core.ramanmap import RamanMap
 from ..core.result import Axis, Field, Result
 from ..errors import MapkitError
-from ._common import (axis_of, check_baseline_room, check_components, float64_tags, image_axes, rows_out,
-                      shift_axis, spectra_in)
+from ._common import (axis_of, check_baseline_room, check_components, float64_tags,
+                      image_axes, rows_out, shift_axis, spectra_in)
 from .endmembers import vca
 from .unmix import nnls_batch, unmix_spectra
 
