@@ -45,3 +45,18 @@ class MapkitError(Exception):
             text += f"; {self.fix}"
         # One line, always: the CLI prints this verbatim.
         return " ".join(text.split())
+
+
+class DataError(MapkitError, ValueError):
+    """A :class:`MapkitError` about the data given to an estimator (too few spectra or
+    standards, too few channels, a parameter the data cannot support).
+
+    It is also a ``ValueError``, the type scikit-learn's tools (pipelines, search,
+    ``check_estimator``) expect for data an estimator cannot use; the command line
+    treats it as any other :class:`MapkitError` (one line, exit 2).
+
+    Examples
+    --------
+    >>> isinstance(DataError("too few spectra", field="X"), (MapkitError, ValueError))
+    True
+    """

@@ -11,8 +11,9 @@ from __future__ import annotations
 import numpy as np
 from scipy import stats
 from sklearn.base import BaseEstimator, RegressorMixin
+from sklearn.utils.validation import check_is_fitted, column_or_1d, validate_data
 
-from ..errors import MapkitError
+from ..errors import DataError, MapkitError
 
 WEIGHTINGS = ("none", "replicates")
 
@@ -59,6 +60,23 @@ class PolynomialCalibration(RegressorMixin, BaseEstimator):
         ``df_lof``, ``df_pe``, ``p`` and ``suggestion`` (set when p < 0.05: the quadratic
         model for a straight line, a narrower range for a quadratic). None without
         replicates.
+    n_features_in_ : int
+        Always 1: one content per standard.
+
+    Notes
+    -----
+    In scikit-learn's terms the content is the one feature and the response the target:
+    ``fit(x, y)`` and ``predict(x)`` take the contents as a 1-D sequence (the usual
+    form) or as one column of a 2-D array (pipelines, cross-validation); ``inverse``
+    reads contents back from responses. A 1-D ``x`` is contents, not one spectrum (the
+    one place where mapkit departs from scikit-learn's rule that X is 2-D).
+
+    Examples
+    --------
+    >>> x = np.array([0, 1, 2, 3, 4, 5.])
+    >>> cal = PolynomialCalibration().fit(x.reshape(-1, 1), 2.0 + 0.5 * x)
+    >>> cal.predict([[2.0], [4.0]]).round(6).tolist()
+    [3.0, 4.0]
     """
 
     def __init__(self, degree: int = 1, weighting: str = "none", analyte: str = "analyte",
@@ -92,9 +110,28 @@ class PolynomialCalibration(RegressorMixin, BaseEstimator):
             return np.ones_like(np.asarray(x, float))
         return np.maximum(np.polyval(self.var_coef_, np.asarray(x, float)), self.var_floor_)
 
+    def _contents(self, x, *, reset: bool) -> np.ndarray:
+        """Contents as a 1-D float array, from a 1-D sequence or a one-column 2-D array."""
+        ndim = x.ndim if hasattr(x, "ndim") else np.asarray(x).ndim
+        if ndim != 2:
+            if reset:
+                self.n_features_in_ = 1
+            return np.asarray(x, float).ravel() if reset else np.asarray(x, float)
+        X = validate_data(self, x, reset=reset, dtype=np.float64)
+        if X.shape[1] != 1:
+            raise DataError(f"a calibration has one content per standard, but X has "
+                            f"{X.shape[1]} feature(s) (columns)", field="standards",
+                            fix="pass the contents as a 1-D list or one column")
+        return X[:, 0]
+
     def fit(self, x, y):
-        x = np.asarray(x, float).ravel()
-        y = np.asarray(y, float).ravel()
+        """Fit the response ``y`` against the contents ``x`` of the standards."""
+        if y is None:
+            raise DataError(f"{type(self).__name__} requires y to be passed, but the target y "
+                            "is None", field="standards", fix="give one response per standard")
+        x = self._contents(x, reset=True)
+        y = column_or_1d(y, dtype=np.float64, warn=True) if np.ndim(y) == 2 else \
+            np.asarray(y, float).ravel()
         if self.degree not in (1, 2):
             raise MapkitError(f"degree {self.degree} is not 1 (linear) or 2 (quadratic)",
                               field="model", fix="use linear or quadratic")
@@ -102,16 +139,16 @@ class PolynomialCalibration(RegressorMixin, BaseEstimator):
             raise MapkitError(f"unknown weighting {self.weighting!r}", field="weighting",
                               fix=f"use one of {', '.join(WEIGHTINGS)}")
         if x.size != y.size:
-            raise MapkitError(f"{x.size} concentrations but {y.size} responses",
-                              field="standards", fix="give one response per standard")
+            raise DataError(f"{x.size} concentrations but {y.size} responses",
+                            field="standards", fix="give one response per standard")
         if not (np.all(np.isfinite(x)) and np.all(np.isfinite(y))):
-            raise MapkitError("a concentration or response is missing or not finite",
-                              field="standards", fix="remove or repeat that standard")
+            raise DataError("a concentration or response is missing or not finite",
+                            field="standards", fix="remove or repeat that standard")
         n_levels = np.unique(x).size
         if n_levels < 3 or n_levels < self.degree + 2:
-            raise MapkitError(f"only {n_levels} distinct concentration levels for a degree-"
-                              f"{self.degree} model", field="standards",
-                              fix="measure at least three levels (ICH Q2(R2) asks for five)")
+            raise DataError(f"only {n_levels} distinct concentration levels for a degree-"
+                            f"{self.degree} model ({x.size} sample(s))", field="standards",
+                            fix="measure at least three levels (ICH Q2(R2) asks for five)")
         p = self.degree + 1
         n = x.size
         w = self._variance_function(x, y)
@@ -121,8 +158,8 @@ class PolynomialCalibration(RegressorMixin, BaseEstimator):
         try:
             beta = np.linalg.solve(XtWX, XtW @ y)
         except np.linalg.LinAlgError:
-            raise MapkitError("the calibration design is singular", field="standards",
-                              fix="use standards at distinct concentrations") from None
+            raise DataError("the calibration design is singular", field="standards",
+                            fix="use standards at distinct concentrations") from None
         resid = y - X @ beta
         s2 = float(np.sum(w * resid ** 2) / (n - p))
         self.coef_ = beta
@@ -138,9 +175,9 @@ class PolynomialCalibration(RegressorMixin, BaseEstimator):
         # a response that barely changes over the calibrated range is no calibration
         change = abs(self.predict(x.max()) - self.predict(x.min()))
         if not np.isfinite(change) or change < 2 * np.sqrt(s2 / w.mean()) or change == 0:
-            raise MapkitError(f"the response does not change with concentration (slope "
-                              f"{beta[1]:.3g})", field="standards",
-                              fix="check that the response band belongs to the analyte")
+            raise DataError(f"the response does not change with concentration (slope "
+                            f"{beta[1]:.3g})", field="standards",
+                            fix="check that the response band belongs to the analyte")
         ss_tot = float(np.sum(w * (y - np.average(y, weights=w)) ** 2))
         self.r2_ = 1 - float(np.sum(w * resid ** 2)) / ss_tot if ss_tot > 0 else 1.0
         # r is the (weighted, when weights are used) correlation of the fit: for a line,
@@ -162,8 +199,9 @@ class PolynomialCalibration(RegressorMixin, BaseEstimator):
 
     # -- using ----------------------------------------------------------------------------
     def predict(self, x):
-        """Expected response at content ``x``."""
-        return np.polynomial.polynomial.polyval(np.asarray(x, float), self.coef_)
+        """Expected response at content ``x`` (a number, a sequence, or one column: (n,))."""
+        check_is_fitted(self, "coef_")
+        return np.polynomial.polynomial.polyval(self._contents(x, reset=False), self.coef_)
 
     def derivative(self, x):
         return np.polynomial.polynomial.polyval(np.asarray(x, float),

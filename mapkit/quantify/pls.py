@@ -4,8 +4,9 @@ from __future__ import annotations
 
 import numpy as np
 from sklearn.base import BaseEstimator, RegressorMixin
+from sklearn.utils.validation import check_is_fitted, validate_data
 
-from ..errors import MapkitError
+from ..errors import DataError, MapkitError
 
 
 class PLSCalibration(RegressorMixin, BaseEstimator):
@@ -24,6 +25,23 @@ class PLSCalibration(RegressorMixin, BaseEstimator):
         RMSECV for 1 … max_components latent variables.
     rmsec_, r2_ : float
         Fit on all standards with the chosen number.
+    n_features_in_ : int
+        Channels of the standards' spectra.
+
+    Notes
+    -----
+    ``fit(X, y, groups=None)`` takes the standards' spectra as rows (n_standards,
+    n_shift) and their contents; ``predict`` takes spectra as rows, for instance a map's
+    spectra block by block (row by row, so blocks give the same contents as at once).
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(0)
+    >>> c = np.repeat(np.arange(6.), 2)
+    >>> X = np.outer(c, np.hanning(40)) + 1.0 + rng.normal(0, 0.01, (12, 40))
+    >>> pls = PLSCalibration(max_components=3).fit(X, c, groups=c)
+    >>> bool(np.abs(pls.predict(X) - c).max() < 0.05)
+    True
     """
 
     def __init__(self, max_components: int = 8, analyte: str = "analyte", unit: str = "% w/w",
@@ -37,19 +55,23 @@ class PLSCalibration(RegressorMixin, BaseEstimator):
         from sklearn.cross_decomposition import PLSRegression
         from sklearn.model_selection import GroupKFold, cross_val_predict
 
-        X = np.asarray(X, float)
-        y = np.asarray(y, float).ravel()
-        if X.shape[0] != y.size:
-            raise MapkitError(f"{X.shape[0]} spectra but {y.size} concentrations",
-                              field="standards", fix="give one concentration per spectrum")
+        if y is None:
+            raise DataError("PLSCalibration requires y to be passed, but the target y is None",
+                            field="standards", fix="give one concentration per spectrum")
+        n_x, n_y = (v.shape[0] if hasattr(v, "shape") else np.asarray(v).shape[0]
+                    for v in (X, y))
+        if n_x != n_y:
+            raise DataError(f"{n_x} spectra but {n_y} concentrations",
+                            field="standards", fix="give one concentration per spectrum")
+        X, y = validate_data(self, X, y, dtype=np.float64, y_numeric=True)
         groups = np.arange(y.size) if groups is None else np.asarray(groups)
         n_groups = np.unique(groups).size
         if n_groups < 3:
-            raise MapkitError(f"only {n_groups} standards", field="standards",
-                              fix="measure at least three (ICH Q2(R2) asks for five levels)")
+            raise DataError(f"only {n_groups} standards ({y.size} sample(s))", field="standards",
+                            fix="measure at least three (ICH Q2(R2) asks for five levels)")
         if np.ptp(y) == 0:
-            raise MapkitError("every standard has the same concentration", field="standards",
-                              fix="span the working range")
+            raise DataError("every standard has the same concentration", field="standards",
+                            fix="span the working range")
         kmax = int(min(self.max_components, n_groups - 1, X.shape[1]))
         folds = GroupKFold(n_splits=min(self.n_splits, n_groups))
         rmsecv = []
@@ -73,7 +95,9 @@ class PLSCalibration(RegressorMixin, BaseEstimator):
         return self
 
     def predict(self, X):
-        return self.model_.predict(np.asarray(X, float)).ravel()
+        """Content of each spectrum (row of ``X``)."""
+        check_is_fitted(self)
+        return self.model_.predict(validate_data(self, X, reset=False, dtype=np.float64)).ravel()
 
     def inverse(self, X, m: int = 1):
         """Content and its (approximate) standard uncertainty for each spectrum (row of X)."""

@@ -4,11 +4,14 @@ from __future__ import annotations
 
 import numpy as np
 from sklearn.base import BaseEstimator, TransformerMixin
+from sklearn.utils.metaestimators import available_if
+from sklearn.utils.validation import check_is_fitted
 
 from ..core.ramanmap import RamanMap
 from ..core.result import Axis, Field, Result
 from ..errors import MapkitError
-from ._common import check_components, good_spectra, image_axes, shift_axis, to_images
+from ._common import (axis_of, check_baseline_room, check_components, float64_tags,
+                      good_spectra, image_axes, rows_out, shift_axis, spectra_in)
 from .endmembers import vca
 from .unmix import nnls_batch, unmix_spectra, unmix_spectra_poisson
 
@@ -21,6 +24,14 @@ class PCAScores(TransformerMixin, BaseEstimator):
     """Principal component analysis of the map's spectra (mean-centred).
 
     Use the explained variance to choose how many components or classes a map holds.
+    Every method takes a :class:`RamanMap` (unmasked pixels; scores come back as images)
+    or an array of spectra (n_spectra, n_shift), one per row (scores come back as rows).
+
+    Parameters
+    ----------
+    n_components : int
+    random_state : int
+        Passed to scikit-learn (the exact solvers used do not draw random numbers).
 
     Attributes
     ----------
@@ -28,17 +39,42 @@ class PCAScores(TransformerMixin, BaseEstimator):
         Loadings on the shift axis.
     explained_variance_ratio_ : array (n_components,)
     mean_ : array (n_shift,)
+    n_features_in_ : int
+        Channels of the spectra fitted on.
+
+    Notes
+    -----
+    ``fit`` is the exact PCA of the spectra given. ``partial_fit`` refines an
+    incremental PCA (scikit-learn's ``IncrementalPCA``, Ross et al. 2008, Int. J. Comput.
+    Vis. 77:125) block by block, for maps that do not fit in memory; its leading
+    components approach those of ``fit`` on all blocks but are not identical unless the
+    spectra span at most ``n_components`` directions. ``transform`` is row by row, so
+    blocks give the same scores as the whole map.
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(0)
+    >>> X = rng.normal(size=(50, 2)) @ rng.normal(size=(2, 30))
+    >>> pca = PCAScores(n_components=2).fit(X)
+    >>> pca.transform(X).shape
+    (50, 2)
+    >>> round(float(pca.explained_variance_ratio_.sum()), 6)
+    1.0
     """
 
     def __init__(self, n_components: int = 10, random_state: int = 0):
         self.n_components = n_components
         self.random_state = random_state
 
-    def fit(self, m: RamanMap, y=None):
+    def __sklearn_tags__(self):
+        return float64_tags(super().__sklearn_tags__())
+
+    def fit(self, m, y=None):
+        """Fit on a map's unmasked spectra or on an array (n_spectra, n_shift)."""
         from sklearn.decomposition import PCA
 
-        X, good = good_spectra(m, what="PCA")
-        check_components(self.n_components, m, X.shape[0])
+        X, good, mp = spectra_in(self, m, what="PCA", reset=True)
+        check_components(self.n_components, X.shape[1] if mp is None else mp, X.shape[0])
         # exact eigendecomposition of the channel covariance: fast when pixels outnumber
         # channels (the usual map), and no randomised approximation
         solver = "covariance_eigh" if X.shape[0] >= X.shape[1] else "full"
@@ -49,9 +85,31 @@ class PCAScores(TransformerMixin, BaseEstimator):
         self.mean_ = self.model_.mean_
         return self
 
-    def transform(self, m: RamanMap) -> np.ndarray:
-        X, good = good_spectra(m, what="PCA")
-        return to_images(m, self.model_.transform(X), good)
+    def partial_fit(self, m, y=None):
+        """Refine an incremental PCA with one block (a map or an array of spectra).
+
+        The first call (or the first after ``fit``) starts a new model; each block needs
+        at least ``n_components`` spectra.
+        """
+        from sklearn.decomposition import IncrementalPCA
+
+        first = not isinstance(getattr(self, "model_", None), IncrementalPCA)
+        X, good, mp = spectra_in(self, m, what="PCA", reset=first)
+        check_components(self.n_components, X.shape[1] if mp is None else mp, X.shape[0])
+        if first:
+            self.model_ = IncrementalPCA(n_components=self.n_components)
+        self.model_.partial_fit(X)
+        self.components_ = self.model_.components_
+        self.explained_variance_ratio_ = self.model_.explained_variance_ratio_
+        self.mean_ = self.model_.mean_
+        return self
+
+    def transform(self, m) -> np.ndarray:
+        """Scores: images (n_components, ny, nx) of a map (NaN where masked) or rows
+        (n_spectra, n_components) of an array."""
+        check_is_fitted(self)
+        X, good, mp = spectra_in(self, m, what="PCA", reset=False)
+        return rows_out(self.model_.transform(X), good, mp)
 
     def result(self, m: RamanMap, name: str = "pca") -> Result:
         comp = _component_axis(self.n_components, "PC")
@@ -76,29 +134,50 @@ class NMFComponents(TransformerMixin, BaseEstimator):
     the component spectra with a constant offset term: clipping biases NMF's own weights
     upward in weak pixels (measured on the sample map: abundance RMSE 0.024 against 0.030).
 
+    Every method takes a :class:`RamanMap` (unmasked pixels; images come back on its
+    grid) or an array of spectra (n_spectra, n_shift), one per row (weights come back as
+    rows (n_spectra, n_components)). ``transform`` works spectrum by spectrum, so a map
+    transformed block by block gives the same weights as the whole map.
+
     Parameters
     ----------
     n_components : int
     init : {"nndsvda", "vca"}
         NNDSVD-a (scikit-learn) or the purest pixels found by VCA.
     batch_size : int, optional
-        Use MiniBatchNMF with this many spectra per batch (large maps).
+        Use MiniBatchNMF with this many spectra per batch (large maps); also enables
+        ``partial_fit``, which refines the component spectra one block at a time.
     max_iter, random_state
         Passed to scikit-learn; the seed is fixed so runs repeat exactly.
     image_baseline_order : int or None
         Polynomial order of the baseline terms when computing images (None: no terms).
+        For array input above order 0 the terms are polynomials of the shift axis
+        passed as ``fit(X, raman_shift=...)`` (default: the channel index, the same
+        terms as any evenly spaced axis).
 
     Attributes
     ----------
     components_ : array (n_components, n_shift)
         Component spectra, each scaled to unit maximum.
-    fit_images_ : array (n_components, ny, nx)
-        Component images of the fitted map (NaN where masked).
+    fit_images_ : array (n_components, ny, nx) or (n_spectra, n_components)
+        Component images of the fitted map (NaN where masked), or weights of the fitted
+        rows for array input (not set by ``partial_fit``).
     reconstruction_err_ : float
         Frobenius norm of X − WH on the fitted pixels.
+    raman_shift_ : array (n_shift,)
+        The shift axis fitted on (the channel index for an array without one).
 
     Examples
     --------
+    On spectra as rows:
+
+    >>> rng = np.random.default_rng(0)
+    >>> X = np.abs(rng.normal(size=(20, 2))) @ np.abs(rng.normal(size=(2, 30)))
+    >>> NMFComponents(n_components=2).fit_transform(X).shape
+    (20, 2)
+
+    On a map:
+
     >>> rng = np.random.default_rng(0)
     >>> H = np.abs(rng.normal(size=(2, 30)))
     >>> W = np.abs(rng.normal(size=(4 * 5, 2)))
@@ -118,14 +197,17 @@ class NMFComponents(TransformerMixin, BaseEstimator):
         self.random_state = random_state
         self.image_baseline_order = image_baseline_order
 
-    def fit(self, m: RamanMap, y=None):
+    def __sklearn_tags__(self):
+        return float64_tags(super().__sklearn_tags__())
+
+    def fit(self, m, y=None, raman_shift=None):
+        """Fit on a map or on spectra as rows (``raman_shift``: their axis, arrays only)."""
         from sklearn.decomposition import NMF, MiniBatchNMF
 
-        X, good = good_spectra(m, what="NMF")
-        check_components(self.n_components, m, X.shape[0])
-        if self.init not in ("nndsvda", "vca"):
-            raise MapkitError(f"unknown NMF start {self.init!r}", field="init",
-                              fix="use nndsvda or vca")
+        X, good, mp = spectra_in(self, m, what="NMF", reset=True)
+        check_components(self.n_components, X.shape[1] if mp is None else mp, X.shape[0])
+        self._check_init()
+        self._check_room(X.shape[1])
         Xc = np.clip(X, 0, None)
         kw = dict(n_components=self.n_components, max_iter=self.max_iter,
                   random_state=self.random_state, tol=1e-6)
@@ -140,26 +222,80 @@ class NMFComponents(TransformerMixin, BaseEstimator):
             model.fit_transform(Xc, W=W0, H=H0)
         else:
             model.fit_transform(Xc)
+        self._keep(model, axis_of(mp, X.shape[1], raman_shift))
+        self.fit_images_ = self.transform(m)
+        return self
+
+    def _check_room(self, n_shift):
+        from .unmix import baseline_terms
+
+        check_baseline_room(baseline_terms(self.image_baseline_order), n_shift,
+                            "image_baseline_order")
+
+    def _check_init(self):
+        if self.init not in ("nndsvda", "vca"):
+            raise MapkitError(f"unknown NMF start {self.init!r}", field="init",
+                              fix="use nndsvda or vca")
+
+    def _keep(self, model, shift):
+        """Learned state from scikit-learn's model: spectra scaled to unit maximum."""
         H = model.components_
         scale = H.max(axis=1, keepdims=True)
         scale[scale == 0] = 1.0
         self.model_ = model
         self.components_ = H / scale
-        self.raman_shift_ = m.raman_shift.copy()
+        self.raman_shift_ = np.array(shift, dtype=float)
         self.reconstruction_err_ = float(getattr(model, "reconstruction_err_", np.nan))
-        self.n_iter_ = int(model.n_iter_)
-        self.fit_images_ = self.transform(m)
+        self.n_iter_ = int(getattr(model, "n_iter_", getattr(model, "n_steps_", 0)))
+
+    @available_if(lambda self: bool(self.batch_size))
+    def partial_fit(self, m, y=None, raman_shift=None):
+        """Refine the component spectra with one block (MiniBatchNMF; needs ``batch_size``).
+
+        The block is a map or spectra as rows; the first call starts the model (from
+        NNDSVD-a or VCA on that block). ``fit_images_`` is not set: get weights with
+        ``transform``, block by block.
+        """
+        from sklearn.decomposition import MiniBatchNMF
+
+        model = getattr(self, "model_", None)
+        first = not isinstance(model, MiniBatchNMF)
+        X, good, mp = spectra_in(self, m, what="NMF", reset=first)
+        Xc = np.clip(X, 0, None)
+        if first:
+            check_components(self.n_components, X.shape[1] if mp is None else mp, X.shape[0])
+            self._check_init()
+            self._check_room(X.shape[1])
+            model = MiniBatchNMF(n_components=self.n_components, batch_size=self.batch_size,
+                                 max_iter=self.max_iter, random_state=self.random_state,
+                                 tol=1e-6, init="nndsvda" if self.init == "nndsvda"
+                                 else "custom")
+            if self.init == "vca":
+                H0 = Xc[vca(Xc, self.n_components, random_state=self.random_state)] + 1e-9
+                W0 = np.clip(nnls_batch(H0.T, Xc.T).T, 1e-9, None)
+                model.partial_fit(Xc, W=W0, H=H0)
+            else:
+                model.partial_fit(Xc)
+            shift = axis_of(mp, X.shape[1], raman_shift)
+        else:
+            model.partial_fit(Xc)
+            shift = self.raman_shift_
+        self._keep(model, shift)
         return self
 
-    def fit_transform(self, m: RamanMap, y=None) -> np.ndarray:
-        """Fit and return the fitted map's component images (n_components, ny, nx)."""
-        return self.fit(m).fit_images_
+    def fit_transform(self, m, y=None, raman_shift=None) -> np.ndarray:
+        """Fit and return the fitted map's component images (n_components, ny, nx), or
+        the rows' weights (n_spectra, n_components) for array input."""
+        return self.fit(m, raman_shift=raman_shift).fit_images_
 
-    def transform(self, m: RamanMap) -> np.ndarray:
-        """Component images (n_components, ny, nx) of any map on the same axis; masked NaN."""
-        X, good = good_spectra(m, what="NMF")
-        A, _ = unmix_spectra(self.components_, X, m.raman_shift, self.image_baseline_order)
-        return to_images(m, A.T, good)
+    def transform(self, m) -> np.ndarray:
+        """Component images (n_components, ny, nx) of any map on the same axis (masked
+        NaN), or weights (n_spectra, n_components) of spectra as rows."""
+        check_is_fitted(self)
+        X, good, mp = spectra_in(self, m, what="NMF", reset=False)
+        shift = self.raman_shift_ if mp is None else mp.raman_shift
+        A, _ = unmix_spectra(self.components_, X, shift, self.image_baseline_order)
+        return rows_out(A.T, good, mp)
 
     def result(self, m: RamanMap, images=None, name: str = "nmf") -> Result:
         """Component images and spectra as a :class:`Result` for export."""
@@ -196,11 +332,27 @@ class MCRALS(TransformerMixin, BaseEstimator):
     Attributes
     ----------
     components_ : array (n_components, n_shift), each with unit maximum
+    fit_images_ : array (n_components, ny, nx) or (n_spectra, n_components)
+        Concentrations of the fitted map (images, NaN where masked) or rows.
     lack_of_fit_ : float
         100·‖D − C Sᵀ‖ / ‖D‖ in %.
     explained_variance_ : float
         100·(1 − ‖D − C Sᵀ‖² / ‖D‖²) in %.
     n_iter_ : int
+
+    Notes
+    -----
+    Takes a :class:`RamanMap` or an array of spectra (n_spectra, n_shift), one per row.
+    Every sweep uses all spectra at once, so there is no ``partial_fit``; fit on a sample
+    of spectra and ``transform`` (pixel by pixel, the same by blocks as at once) the rest.
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(0)
+    >>> S = np.abs(rng.normal(size=(2, 40)))
+    >>> C = rng.dirichlet([1, 1], 30); C[:2] = np.eye(2)
+    >>> MCRALS(n_components=2).fit(C @ S).transform(C @ S).shape
+    (30, 2)
     """
 
     def __init__(self, n_components: int = 4, init="vca", fixed=None, closure: bool = False,
@@ -232,9 +384,13 @@ class MCRALS(TransformerMixin, BaseEstimator):
                               fix="give one spectrum per component on the map's axis")
         return S.copy()
 
-    def fit(self, m: RamanMap, y=None):
-        X, good = good_spectra(m, what="MCR-ALS")
-        check_components(self.n_components, m, X.shape[0])
+    def __sklearn_tags__(self):
+        return float64_tags(super().__sklearn_tags__())
+
+    def fit(self, m, y=None):
+        """Fit on a map's unmasked spectra or on an array (n_spectra, n_shift)."""
+        X, good, mp = spectra_in(self, m, what="MCR-ALS", reset=True)
+        check_components(self.n_components, X.shape[1] if mp is None else mp, X.shape[0])
         S = self._start(X)
         fixed = dict(self.fixed or {})
         for k, spec in fixed.items():
@@ -260,8 +416,8 @@ class MCRALS(TransformerMixin, BaseEstimator):
         self.n_iter_ = it
         self.lack_of_fit_ = float(lof)
         self.explained_variance_ = float(100 * (1 - (resid / norm_d) ** 2))
-        self.raman_shift_ = m.raman_shift.copy()
-        self.fit_images_ = to_images(m, C, good)
+        self.raman_shift_ = axis_of(mp, X.shape[1]).copy()
+        self.fit_images_ = rows_out(C, good, mp)
         return self
 
     def _concentrations(self, S, X):
@@ -272,9 +428,12 @@ class MCRALS(TransformerMixin, BaseEstimator):
             C = np.divide(C, total, out=np.zeros_like(C), where=total > 0)
         return C
 
-    def transform(self, m: RamanMap) -> np.ndarray:
-        X, good = good_spectra(m, what="MCR-ALS")
-        return to_images(m, self._concentrations(self.components_, X), good)
+    def transform(self, m) -> np.ndarray:
+        """Concentration images (n_components, ny, nx) of a map (NaN where masked), or
+        rows (n_spectra, n_components) of an array."""
+        check_is_fitted(self)
+        X, good, mp = spectra_in(self, m, what="MCR-ALS", reset=False)
+        return rows_out(self._concentrations(self.components_, X), good, mp)
 
     def result(self, m: RamanMap, images=None, name: str = "mcr") -> Result:
         comp = _component_axis(self.n_components)
@@ -355,10 +514,18 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
     random_state : int
         Seed of the pixel sample the background order is chosen on.
 
+    Notes
+    -----
+    Takes a :class:`RamanMap` or an array of spectra (n_spectra, n_shift), one per row;
+    for arrays the background polynomials live on the axis given as
+    ``fit(X, raman_shift=...)`` (default: the channel index, the same polynomials as any
+    evenly spaced axis). The sweeps use all spectra at once (no ``partial_fit``);
+    ``transform`` is pixel by pixel, the same by blocks as at once.
+
     Attributes
     ----------
     components_ : array (n_components, n_shift), unit maximum
-    fit_images_ : array (n_components, ny, nx)
+    fit_images_ : array (n_components, ny, nx) or (n_spectra, n_components)
     baseline_order_ : int
         Order of the background terms of the images (and of :meth:`transform`).
     spectra_baseline_order_ : int
@@ -379,6 +546,12 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
     >>> est = BackgroundMCR(n_components=2, baseline_order=1).fit(m)
     >>> bool(np.sort(est.components_ @ S.T / np.linalg.norm(est.components_, axis=1)[:, None]
     ...              / np.linalg.norm(S, axis=1), axis=None)[-2] > 0.99)
+    True
+
+    The same spectra as rows, on the same axis, give the same concentrations:
+
+    >>> rows = BackgroundMCR(n_components=2, baseline_order=1).fit(X, raman_shift=s)
+    >>> bool(np.allclose(rows.transform(X), est.transform(m).reshape(2, -1).T))
     True
     """
 
@@ -401,19 +574,26 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
         idx = successive_projections(scores, self.n_components)
         return least_area_lift(scores[idx] @ V, Q), idx
 
-    def fit(self, m: RamanMap, y=None):
-        from .unmix import check_baseline_order, choose_baseline_order, polynomial_basis
+    def __sklearn_tags__(self):
+        return float64_tags(super().__sklearn_tags__())
 
-        X, good = good_spectra(m, what="MCR-ALS")
-        check_components(self.n_components, m, X.shape[0])
+    def fit(self, m, y=None, raman_shift=None):
+        """Fit on a map or on spectra as rows (``raman_shift``: their axis, arrays only)."""
+        from .unmix import (baseline_terms, check_baseline_order, choose_baseline_order,
+                            polynomial_basis)
+
+        X, good, mp = spectra_in(self, m, what="MCR-ALS", reset=True)
+        check_components(self.n_components, X.shape[1] if mp is None else mp, X.shape[0])
+        shift = axis_of(mp, X.shape[1], raman_shift)
         order = check_baseline_order(self.baseline_order)
         if order is None:
             raise MapkitError("background MCR needs background terms", field="baseline_order",
                               fix="give an order (0 for a constant) or auto; for none use MCRALS")
+        check_baseline_room(baseline_terms(order), X.shape[1], "baseline_order")
         auto = order == "auto"
         if auto:   # keep at least four channels per fitted term, as the order choice does
             order = int(max(0, min(SPECTRA_ORDER, X.shape[1] // 4 - self.n_components - 1)))
-        Q = polynomial_basis(m.raman_shift, int(order))
+        Q = polynomial_basis(shift, int(order))
         S, idx = self._start(X, Q)
         Xp = X - (X @ Q) @ Q.T
         for _ in range(self.max_iter):
@@ -424,31 +604,35 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
             S = S / np.where(scale > 0, scale, 1.0)
         self.spectra_baseline_order_ = int(order)
         if auto:   # the images: the order these spectra support, shot-noise weights
-            order = choose_baseline_order(S, X, m.raman_shift, random_state=self.random_state)
-            Q = polynomial_basis(m.raman_shift, order)
+            order = choose_baseline_order(S, X, shift, random_state=self.random_state)
+            check_baseline_room(baseline_terms(order), X.shape[1], "baseline_order")
+            Q = polynomial_basis(shift, order)
             Xp = X - (X @ Q) @ Q.T
         Sp = S - (S @ Q) @ Q.T
         self.components_ = S
         self.baseline_order_ = int(order)
-        C = self._images(X, m.raman_shift).T
+        C = self._images(X, shift).T
         self.start_pixels_ = idx
         self.lack_of_fit_ = float(100 * np.linalg.norm(Xp - C @ Sp) / (np.linalg.norm(Xp) or 1))
-        self.raman_shift_ = m.raman_shift.copy()
+        self.raman_shift_ = np.array(shift, dtype=float)
         self.n_iter_ = self.max_iter
-        self.fit_images_ = to_images(m, C, good)
+        self.fit_images_ = rows_out(C, good, mp)
         return self
 
-    def fit_transform(self, m: RamanMap, y=None) -> np.ndarray:
-        return self.fit(m).fit_images_
+    def fit_transform(self, m, y=None, raman_shift=None) -> np.ndarray:
+        return self.fit(m, raman_shift=raman_shift).fit_images_
 
-    def transform(self, m: RamanMap) -> np.ndarray:
-        """Concentration images (n_components, ny, nx) of a map on the same axis."""
-        if m.shape[2] != self.raman_shift_.size or not np.allclose(m.raman_shift,
-                                                                    self.raman_shift_):
+    def transform(self, m) -> np.ndarray:
+        """Concentration images (n_components, ny, nx) of a map on the same axis, or rows
+        (n_spectra, n_components) of spectra on the fitted axis."""
+        check_is_fitted(self)
+        if isinstance(m, RamanMap) and (m.shape[2] != self.raman_shift_.size or not
+                                        np.allclose(m.raman_shift, self.raman_shift_)):
             raise MapkitError("the map's shift axis differs from the one the model was fitted on",
                               file=m.source, field="raman_shift", fix="fit on this map")
-        X, good = good_spectra(m, what="MCR-ALS")
-        return to_images(m, self._images(X, m.raman_shift).T, good)
+        X, good, mp = spectra_in(self, m, what="MCR-ALS", reset=False)
+        shift = self.raman_shift_ if mp is None else mp.raman_shift
+        return rows_out(self._images(X, shift).T, good, mp)
 
     def _images(self, X, shift):
         """Concentrations (k, m): with the automatic order weighted for shot noise."""

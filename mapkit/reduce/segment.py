@@ -4,11 +4,14 @@ from __future__ import annotations
 
 import numpy as np
 from sklearn.base import BaseEstimator, ClusterMixin
+from sklearn.utils.metaestimators import available_if
+from sklearn.utils.validation import check_is_fitted
 
 from ..core.ramanmap import RamanMap
 from ..core.result import Axis, Field, Result
-from ..errors import MapkitError
-from ._common import check_components, good_spectra, image_axes, shift_axis, to_images
+from ..errors import DataError, MapkitError
+from ._common import (check_components, good_spectra, image_axes, rows_out, shift_axis,
+                      spectra_in, to_images)
 
 METHODS = ("kmeans", "minibatch", "ward")
 #: Ward clustering needs O(n²) memory; above this many pixels it is fitted on a random
@@ -16,49 +19,72 @@ METHODS = ("kmeans", "minibatch", "ward")
 WARD_MAX_PIXELS = 15000
 
 
-def _scores(m: RamanMap, n_pca: int, smooth: float, random_state: int):
-    """PCA scores of the good pixels, optionally smoothed spatially (Gaussian, σ in pixels)."""
-    from scipy.ndimage import gaussian_filter
+def _scores(m: RamanMap, n_pca: int, smooth: float, random_state: int, *, spectra=None):
+    """PCA scores of the good pixels, optionally smoothed spatially (Gaussian, σ in pixels).
+
+    ``spectra`` = (X, good, map or None) from :func:`spectra_in` replaces reading ``m``;
+    returns (X, good, scores, the fitted PCA)."""
     from sklearn.decomposition import PCA
 
-    X, good = good_spectra(m, what="classification")
+    X, good = good_spectra(m, what="classification") if spectra is None else spectra[:2]
+    if spectra is not None:
+        m = spectra[2]
     n_pca = max(1, min(n_pca, X.shape[0], X.shape[1]))
     pca = PCA(n_components=n_pca, random_state=random_state).fit(X)
-    S = pca.transform(X)
+    return X, good, _smoothed(m, pca.transform(X), good, smooth), pca
+
+
+def _smoothed(m: RamanMap | None, S, good, smooth: float):
+    """Scores smoothed over the map's grid (Gaussian, σ in pixels; masked pixels carry no
+    weight); unchanged when ``smooth`` is 0."""
+    from scipy.ndimage import gaussian_filter
+
     if smooth > 0:
+        if m is None:
+            raise DataError("spatial smoothing needs the map's grid, not spectra as rows",
+                            field="smooth", fix="pass the RamanMap or use smooth=0")
         ny, nx, _ = m.shape
         weight = (~m.mask).astype(float)
         wsm = gaussian_filter(weight, smooth, mode="nearest")
         imgs = to_images(m, S, good, fill=0.0)
         S = np.stack([(gaussian_filter(img, smooth, mode="nearest") /
                        np.maximum(wsm, 1e-12)).ravel()[good] for img in imgs], axis=1)
-    return X, good, S
+    return S
 
 
-def _cluster(S, n, method, random_state, n_init):
+def _cluster(S, n, method, random_state, n_init, *, model=False):
+    """Cluster labels of the score rows ``S``; with ``model`` also the fitted k-means
+    (None for Ward) and the class centres in score space."""
     from sklearn.cluster import AgglomerativeClustering, KMeans, MiniBatchKMeans
 
-    if method == "kmeans":
-        return KMeans(n_clusters=n, n_init=n_init, random_state=random_state).fit_predict(S)
-    if method == "minibatch":
-        return MiniBatchKMeans(n_clusters=n, n_init=n_init, random_state=random_state,
-                               batch_size=2048).fit_predict(S)
+    if method in ("kmeans", "minibatch"):
+        km = (KMeans(n_clusters=n, n_init=n_init, random_state=random_state)
+              if method == "kmeans" else
+              MiniBatchKMeans(n_clusters=n, n_init=n_init, random_state=random_state,
+                              batch_size=2048)).fit(S)
+        return (km.labels_, km, km.cluster_centers_) if model else km.labels_
     rng = np.random.default_rng(random_state)
     sample = (np.sort(rng.choice(S.shape[0], WARD_MAX_PIXELS, replace=False))
               if S.shape[0] > WARD_MAX_PIXELS else np.arange(S.shape[0]))
     lab = AgglomerativeClustering(n_clusters=n, linkage="ward").fit_predict(S[sample])
-    if sample.size == S.shape[0]:
-        return lab
     centres = np.stack([S[sample][lab == k].mean(axis=0) for k in range(n)])
+    if sample.size < S.shape[0]:
+        lab = _nearest(S, centres)
+    return (lab, None, centres) if model else lab
+
+
+def _nearest(S, centres):
+    """Index of the nearest centre (Euclidean) for each row of ``S``."""
     return np.argmin(((S[:, None, :] - centres[None]) ** 2).sum(axis=-1), axis=1)
 
 
 class _ClassMap(ClusterMixin, BaseEstimator):
     """What every class map shares: labels, class spectra, areas, domains, the result."""
 
-    def _store(self, m: RamanMap, X, good, lab):
+    def _store(self, m: RamanMap | None, X, good, lab):
         n = self.n_classes
-        self.labels_ = to_images(m, lab[:, None], good, fill=-1)[0].astype(np.int16)
+        self.labels_ = (np.asarray(lab, dtype=np.intp) if m is None else
+                        to_images(m, lab[:, None], good, fill=-1)[0].astype(np.int16))
         # a class no pixel falls into keeps NaN spectra and a zero area (not an error)
         self.class_mean_ = np.full((n, X.shape[1]), np.nan)
         self.class_sd_ = np.full((n, X.shape[1]), np.nan)
@@ -67,11 +93,13 @@ class _ClassMap(ClusterMixin, BaseEstimator):
                 self.class_mean_[k] = X[lab == k].mean(axis=0)
                 self.class_sd_[k] = X[lab == k].std(axis=0)
         self.area_fraction_ = np.bincount(lab, minlength=n)[:n] / lab.size
-        self.pixel_size_ = m.pixel_size
+        self.pixel_size_ = None if m is None else m.pixel_size
         return self
 
-    def fit_predict(self, m: RamanMap, y=None):
-        return self.fit(m).labels_
+    def fit_predict(self, m, y=None, **kwargs):
+        """Fit and return ``labels_``: an image (ny, nx), -1 where masked, or one label
+        per row for spectra as rows."""
+        return self.fit(m, y, **kwargs).labels_
 
     def result(self, m: RamanMap, name: str | None = None) -> Result:
         dy, dx = m.pixel_size
@@ -111,20 +139,46 @@ class KMeansClasses(_ClassMap):
     n_pca : int
         Principal components kept before clustering (noise reduction).
     smooth : float
-        Spatial Gaussian smoothing of the scores before clustering, σ in pixels (0: none).
+        Spatial Gaussian smoothing of the scores before clustering, σ in pixels (0: none;
+        needs a map, not spectra as rows).
     random_state, n_init
 
     Attributes
     ----------
-    labels_ : int array (ny, nx)
-        Class of each pixel, -1 where masked; classes are numbered by size, largest first.
+    labels_ : int array (ny, nx) or (n_spectra,)
+        Class of each pixel, -1 where masked (int16 image for a map; one label per row
+        for spectra as rows); classes are numbered by size, largest first.
+    pca_ : sklearn.decomposition.PCA
+        The principal components the spectra are clustered on.
+    centres_ : array (n_classes, n_pca)
+        Class centres in the PCA scores (class k is row k).
     class_mean_, class_sd_ : arrays (n_classes, n_shift)
         Mean ± sd spectrum of each class.
     area_fraction_ : array (n_classes,)
         Share of the good pixels in each class.
 
+    Notes
+    -----
+    Takes a :class:`RamanMap` or spectra as rows (n_spectra, n_shift). ``predict`` puts
+    new spectra in the class of the nearest centre in the fitted PCA scores (the
+    k-means rule): row by row, so a map predicted block by block gets the same labels as
+    at once (without ``smooth``, which looks at neighbouring pixels). On the fitted
+    spectra it returns ``labels_`` for k-means and mini-batch k-means; for Ward, whose
+    classes come from the merge tree, the nearest centre may differ at class borders.
+    ``partial_fit`` (``method="minibatch"`` only) refines the centres block by block
+    (scikit-learn's ``MiniBatchKMeans.partial_fit``) on the PCA fitted on the first
+    block; classes are then numbered as the centres were found, not by size.
+
     Examples
     --------
+    On spectra as rows:
+
+    >>> X = np.eye(3)[[2, 0, 0, 2, 0, 0, 2, 0]] + 0.01 * np.arange(8)[:, None]
+    >>> KMeansClasses(n_classes=2, n_pca=2).fit_predict(X).tolist()   # largest class is 0
+    [1, 0, 0, 1, 0, 0, 1, 0]
+
+    On a map:
+
     >>> a = np.zeros((4, 6, 3)); a[:, 3:, 0] = 1; a[:, :3, 2] = 1
     >>> m = RamanMap(a, raman_shift=[1., 2., 3.], x=np.arange(6.), y=np.arange(4.))
     >>> KMeansClasses(n_classes=2, n_pca=2).fit(m).area_fraction_.tolist()
@@ -140,18 +194,78 @@ class KMeansClasses(_ClassMap):
         self.random_state = random_state
         self.n_init = n_init
 
-    def fit(self, m: RamanMap, y=None):
+    def _check_method(self):
         if self.method not in METHODS:
             raise MapkitError(f"unknown classification method {self.method!r}", field="method",
                               fix=f"use one of {', '.join(METHODS)}")
-        X, good, S = _scores(m, self.n_pca, self.smooth, self.random_state)
-        check_components(self.n_classes, m, X.shape[0], name="n_classes")
-        raw = _cluster(S, self.n_classes, self.method, self.random_state, self.n_init)
+
+    def fit(self, m, y=None):
+        """Fit on a map's unmasked spectra or on spectra as rows (n_spectra, n_shift)."""
+        self._check_method()
+        spectra = spectra_in(self, m, what="classification", reset=True)
+        X, good, S, pca = _scores(None, self.n_pca, self.smooth, self.random_state,
+                                  spectra=spectra)
+        mp = spectra[2]
+        check_components(self.n_classes, X.shape[1] if mp is None else mp, X.shape[0],
+                         name="n_classes")
+        raw, model, centres = _cluster(S, self.n_classes, self.method, self.random_state,
+                                       self.n_init, model=True)
         # number classes by size (largest first) so labels are stable and readable
         order = np.argsort(-np.bincount(raw, minlength=self.n_classes), kind="stable")
         relabel = np.empty_like(order)
         relabel[order] = np.arange(self.n_classes)
-        return self._store(m, X, good, relabel[raw])
+        self.pca_, self.model_, self._relabel = pca, model, relabel
+        self.centres_ = centres[order]
+        return self._store(mp, X, good, relabel[raw])
+
+    @available_if(lambda self: self.method == "minibatch")
+    def partial_fit(self, m, y=None):
+        """Refine mini-batch k-means centres with one block (``method="minibatch"``).
+
+        The first call fits the PCA on its block and starts the centres; ``labels_``,
+        class spectra and areas describe the latest block.
+        """
+        from sklearn.cluster import MiniBatchKMeans
+
+        self._check_method()
+        if self.method != "minibatch":
+            raise MapkitError(f"partial_fit needs method='minibatch', not {self.method!r}",
+                              field="method", fix="use minibatch, or fit on a sample")
+        first = not isinstance(getattr(self, "model_", None), MiniBatchKMeans)
+        spectra = spectra_in(self, m, what="classification", reset=first)
+        X, good, mp = spectra
+        if first:
+            check_components(self.n_classes, X.shape[1] if mp is None else mp, X.shape[0],
+                             name="n_classes")
+            _, _, S, self.pca_ = _scores(None, self.n_pca, 0.0, self.random_state,
+                                         spectra=spectra)
+            self.model_ = MiniBatchKMeans(n_clusters=self.n_classes, n_init=self.n_init,
+                                          random_state=self.random_state, batch_size=2048)
+            self._relabel = np.arange(self.n_classes)
+        else:
+            S = self.pca_.transform(X)
+        S = _smoothed(mp, S, good, self.smooth) if self.smooth > 0 else S
+        self.model_.partial_fit(S)
+        inverse = np.argsort(self._relabel)
+        self.centres_ = self.model_.cluster_centers_[inverse]
+        return self._store(mp, X, good, self._relabel[self.model_.predict(S)])
+
+    def predict(self, m) -> np.ndarray:
+        """Class of each spectrum: the nearest class centre in the fitted PCA scores.
+
+        Returns an int16 image (ny, nx) with -1 where masked for a map, or one label per
+        row (n_spectra,) for spectra as rows.
+        """
+        check_is_fitted(self, "centres_")
+        X, good, mp = spectra_in(self, m, what="classification", reset=False)
+        S = _smoothed(mp, self.pca_.transform(X), good, self.smooth)
+        if self.model_ is not None:
+            lab = self._relabel[self.model_.predict(S)]
+        else:
+            lab = _nearest(S, self.centres_)
+        if mp is None:
+            return lab.astype(np.intp)
+        return to_images(mp, lab[:, None], good, fill=-1)[0].astype(np.int16)
 
 
 class DominantClasses(_ClassMap):
@@ -179,13 +293,19 @@ class DominantClasses(_ClassMap):
 
     Attributes
     ----------
-    labels_ : int array (ny, nx)
+    labels_ : int array (ny, nx) or (n_spectra,)
         Class of each pixel (the index of its dominant component), -1 where masked.
     class_mean_, class_sd_ : arrays (n_classes, n_shift)
         Mean ± sd spectrum of each class (NaN for a class no pixel falls into).
     area_fraction_ : array (n_classes,)
-    shares_ : array (n_classes, ny, nx)
+    shares_ : array (n_classes, ny, nx) or (n_spectra, n_classes)
         The normalised abundances the classes were taken from.
+
+    Notes
+    -----
+    Not a scikit-learn clusterer in the usual sense: the classes come from component
+    weights passed to ``fit``, not from the spectra alone, so it is left out of
+    scikit-learn's estimator checks (tests/test_estimator_checks.py).
 
     Examples
     --------
@@ -194,6 +314,12 @@ class DominantClasses(_ClassMap):
     >>> images = np.stack([a[..., 0], a[..., 1] / 3])
     >>> DominantClasses(n_classes=2).fit(m, images).labels_.tolist()
     [[0, 0, 1], [0, 0, 1]]
+
+    On spectra as rows, with one row of weights per spectrum:
+
+    >>> X, W = a.reshape(6, 4), images.reshape(2, 6).T
+    >>> DominantClasses(n_classes=2).fit(X, W).labels_.tolist()
+    [0, 0, 1, 0, 0, 1]
     """
 
     method = "dominant"
@@ -202,22 +328,32 @@ class DominantClasses(_ClassMap):
         self.n_classes = n_classes
         self.n_purest = n_purest
 
-    def fit(self, m: RamanMap, images=None):
+    def fit(self, m, images=None):
+        """Classes of a map from its component images (n_classes, ny, nx), or of spectra
+        as rows (n_spectra, n_shift) from their weights (n_spectra, n_classes), the
+        layout the estimators' ``transform`` returns for rows."""
         if images is None:
             raise MapkitError("dominant-component classes need component images",
                               field="images", fix="pass the images of a factorisation or "
                                                   "unmixing of this map")
         images = np.asarray(images, float)
-        if images.shape != (self.n_classes, *m.shape[:2]):
-            raise MapkitError(f"component images have shape {images.shape}, expected "
-                              f"{(self.n_classes, *m.shape[:2])}", field="images",
-                              fix="give one image per class on the map's grid")
-        X, good = good_spectra(m, what="classification")
-        A = np.nan_to_num(images.reshape(self.n_classes, -1)[:, good])
+        X, good, mp = spectra_in(self, m, what="classification", reset=True)
+        if mp is None:
+            if images.shape != (X.shape[0], self.n_classes):
+                raise DataError(f"component weights have shape {images.shape}, expected "
+                                f"{(X.shape[0], self.n_classes)}", field="images",
+                                fix="give one row of weights per spectrum, one column per class")
+            A = np.nan_to_num(images.T)
+        else:
+            if images.shape != (self.n_classes, *mp.shape[:2]):
+                raise MapkitError(f"component images have shape {images.shape}, expected "
+                                  f"{(self.n_classes, *mp.shape[:2])}", field="images",
+                                  fix="give one image per class on the map's grid")
+            A = np.nan_to_num(images.reshape(self.n_classes, -1)[:, good])
         level = np.sort(A, axis=1)[:, -min(max(1, self.n_purest), A.shape[1])]
         shares = A / np.where(level > 0, level, 1.0)[:, None]
-        self.shares_ = to_images(m, shares.T, good)
-        return self._store(m, X, good, np.argmax(shares, axis=0))
+        self.shares_ = rows_out(shares.T, good, mp)
+        return self._store(mp, X, good, np.argmax(shares, axis=0))
 
 
 def class_domains(labels, pixel_size, *, connectivity: int = 1, n_classes: int | None = None):
@@ -268,7 +404,7 @@ def class_number_guidance(m: RamanMap, k_values=range(2, 9), *, n_pca: int = 8,
     from sklearn.cluster import KMeans
     from sklearn.metrics import davies_bouldin_score, silhouette_score
 
-    X, good, S = _scores(m, n_pca, 0.0, random_state)
+    X, good, S, _ = _scores(m, n_pca, 0.0, random_state)
     rng = np.random.default_rng(random_state)
     idx = rng.choice(S.shape[0], min(sample, S.shape[0]), replace=False)
     rows = []

@@ -6,11 +6,13 @@ import warnings
 
 import numpy as np
 from sklearn.base import BaseEstimator, TransformerMixin
+from sklearn.utils.validation import check_is_fitted
 
 from ..core.ramanmap import RamanMap
 from ..core.result import Axis, Field, Result
-from ..errors import MapkitError
-from ._common import good_spectra, image_axes, shift_axis, to_images
+from ..errors import DataError, MapkitError
+from ._common import float64_tags, good_spectra, image_axes, rows_out, shift_axis, spectra_in, \
+    to_images
 
 
 def nnls_batch(A, Y, *, max_sweeps: int = 2000, tol: float = 1e-10,
@@ -59,8 +61,8 @@ def nnls_gram(G, H, *, max_sweeps: int = 2000, tol: float = 1e-10,
     k, m = H.shape
     diag = np.einsum("mkk->km", G) if per_column else np.diag(G)[:, None]
     if np.any(diag <= 0):
-        raise MapkitError("a reference spectrum is zero over the map's range", field="references",
-                          fix="check that every reference covers the map's shift axis")
+        raise DataError("a reference spectrum is zero over the map's range", field="references",
+                        fix="check that every reference covers the map's shift axis")
     X = np.zeros((k, m))
     scale = np.maximum(np.abs(H).max(axis=0), 1e-300)
     converged = np.zeros(m, bool)
@@ -332,6 +334,13 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
     References that are (nearly) collinear after the baseline projection cannot be told
     apart: ``fit`` warns with each pair whose correlation exceeds ``COLLINEAR_R`` (0.98).
 
+    ``fit`` and ``transform`` take a :class:`RamanMap` or spectra as rows
+    (n_spectra, n_shift). For rows the shift axis is ``fit(X, raman_shift=...)``, by
+    default the references' own axis when they all share one with as many values as
+    ``X`` has columns; ``transform`` then returns the abundances (n_spectra, k) alone
+    (a map gets the abundance images and the residual RMS image). Every spectrum is
+    unmixed on its own, so a map unmixed block by block gives the same numbers as at once.
+
     Parameters
     ----------
     references : list of mapkit.read.Spectrum
@@ -357,6 +366,17 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
         True when the references were interpolated onto the map's axis.
     collinear_ : list of (str, str, float)
         Reference pairs with |r| > ``COLLINEAR_R`` after the baseline projection.
+
+    Examples
+    --------
+    >>> from mapkit.read import Spectrum
+    >>> s = np.linspace(400, 1600, 200)
+    >>> refs = [Spectrum(n, s, np.exp(-0.5 * ((s - c) / 15) ** 2))
+    ...         for c, n in ((800, "a"), (1200, "b"))]
+    >>> X = np.array([[1, 0], [0.3, 0.7]]) @ np.stack([r.intensity for r in refs]) + 5.0
+    >>> un = ReferenceUnmixing(refs, baseline_order=0, weights="none").fit(X)
+    >>> un.transform(X).round(6).tolist()
+    [[1.0, 0.0], [0.3, 0.7]]
     """
 
     def __init__(self, references=(), baseline_order: int | str | None = "auto",
@@ -366,7 +386,27 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
         self.method = method
         self.weights = weights
 
-    def fit(self, m: RamanMap, y=None):
+    def __sklearn_tags__(self):
+        return float64_tags(super().__sklearn_tags__())
+
+    def _axis(self, refs, mp, n_shift, raman_shift):
+        """The spectra's shift axis: the map's, the one given, or the references' own."""
+        if mp is not None:
+            return mp.raman_shift
+        if raman_shift is not None:
+            from ._common import axis_of
+
+            return axis_of(None, n_shift, raman_shift)
+        own = refs[0].raman_shift
+        if own.size == n_shift and all(r.raman_shift.shape == own.shape and
+                                       np.allclose(r.raman_shift, own) for r in refs):
+            return np.asarray(own, float)
+        raise DataError(f"spectra as rows with {n_shift} channels and references on other "
+                        "axes: the shift axis is unknown", field="raman_shift",
+                        fix="pass fit(X, raman_shift=...) or unmix a RamanMap")
+
+    def fit(self, m, y=None, raman_shift=None):
+        """Put the references on the axis of a map, or of spectra as rows (``raman_shift``)."""
         if self.method not in ("nnls", "fcls"):
             raise MapkitError(f"unknown unmixing method {self.method!r}", field="method",
                               fix="use nnls or fcls")
@@ -382,26 +422,35 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
             raise MapkitError("two references share a name", field="references",
                               fix="give every reference a unique name")
         order = check_baseline_order(self.baseline_order)
-        if len(refs) + baseline_terms(order) >= m.shape[2]:
-            raise MapkitError(f"{len(refs)} references and the baseline terms need more channels "
-                              f"than the map's {m.shape[2]}", file=m.source, field="references",
-                              fix="use fewer references or a lower baseline order")
-        R = np.stack([r.on_axis(m.raman_shift) for r in refs])
-        self.resampled_ = any(r.raman_shift.shape != m.raman_shift.shape
-                              or not np.allclose(r.raman_shift, m.raman_shift) for r in refs)
+        if isinstance(m, RamanMap):   # the spectra are read only if the order is chosen
+            X, mp, n_shift = None, m, m.shape[2]
+            self.n_features_in_ = n_shift
+        else:
+            X, _, mp = spectra_in(self, m, what="unmixing", reset=True)
+            n_shift = X.shape[1]
+        shift = self._axis(refs, mp, n_shift, raman_shift)
+        if len(refs) + baseline_terms(order) >= n_shift:
+            raise DataError(f"{len(refs)} references and the baseline terms need more channels "
+                            f"than the map's {n_shift}", file=getattr(mp, "source", None),
+                            field="references", fix="use fewer references or a lower "
+                                                    "baseline order")
+        R = np.stack([r.on_axis(shift) for r in refs])
+        self.resampled_ = any(r.raman_shift.shape != shift.shape
+                              or not np.allclose(r.raman_shift, shift) for r in refs)
         if self.resampled_:
             warnings.warn("reference spectra were interpolated onto the map's shift axis",
                           stacklevel=2)
         if order == "auto":
-            X, _ = good_spectra(m, what="unmixing")
-            order = choose_baseline_order(R, X, m.raman_shift)
+            if X is None:
+                X, _ = good_spectra(m, what="unmixing")
+            order = choose_baseline_order(R, X, shift)
             if order >= MAX_AUTO_ORDER:
                 warnings.warn(f"the chosen baseline order reached the largest considered "
                               f"({MAX_AUTO_ORDER}): the background may need a cleaning "
                               "baseline step or a narrower shift range", stacklevel=2)
         self.baseline_order_ = order
         self.collinear_ = [(names[i], names[j], r) for i, j, r in
-                           collinear_pairs(R, m.raman_shift, self.baseline_order_)]
+                           collinear_pairs(R, shift, self.baseline_order_)]
         for a, b, r in self.collinear_:
             warnings.warn(f"references {a!r} and {b!r} are nearly collinear (r = {r:.4f} after "
                           "the baseline terms): their abundances cannot be told apart; drop "
@@ -411,38 +460,46 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
                           "total (counts per unit reference) is the 'scale' image", stacklevel=2)
         self.names_ = names
         self.references_ = R
-        self.raman_shift_ = m.raman_shift.copy()
+        self.raman_shift_ = np.array(shift, dtype=float)
         return self
 
-    def transform(self, m: RamanMap):
-        """Abundance images (k, ny, nx) and the residual RMS image (ny, nx); masked pixels NaN.
+    def transform(self, m):
+        """Abundance images (k, ny, nx) and the residual RMS image (ny, nx) of a map
+        (masked pixels NaN), or the abundances (n_spectra, k) of spectra as rows.
 
         For ``method="fcls"`` the abundances are shares (sum 1 per pixel; NaN where nothing
         of any reference is found) and the result's ``scale`` field holds the fitted totals.
         """
         abundance, rms, _, _ = self._unmix(m)
-        return abundance, rms
+        return abundance if not isinstance(m, RamanMap) else (abundance, rms)
 
-    def _unmix(self, m: RamanMap):
-        if m.shape[2] != self.raman_shift_.size or not np.allclose(m.raman_shift, self.raman_shift_):
+    def _unmix(self, m):
+        check_is_fitted(self)
+        if isinstance(m, RamanMap) and (m.shape[2] != self.raman_shift_.size or
+                                        not np.allclose(m.raman_shift, self.raman_shift_)):
             raise MapkitError("the map's shift axis differs from the one the model was fitted on",
                               file=m.source, field="raman_shift", fix="fit on this map")
-        X, good = good_spectra(m, what="unmixing")
+        X, good, mp = spectra_in(self, m, what="unmixing", reset=False)
+        shift = self.raman_shift_ if mp is None else mp.raman_shift
         # fcls with a free scale: the NNLS optimum z gives shares z / sum(z) exactly
         if self.weights == "poisson":
-            A, rms, converged = unmix_spectra_poisson(self.references_, X, m.raman_shift,
+            A, rms, converged = unmix_spectra_poisson(self.references_, X, shift,
                                                       self.baseline_order_)
         else:
-            A, rms, converged = unmix_spectra(self.references_, X, m.raman_shift,
+            A, rms, converged = unmix_spectra(self.references_, X, shift,
                                               self.baseline_order_, return_converged=True)
-        converged = to_images(m, converged[:, None], good, fill=True)[0].astype(bool)
+        if mp is None:
+            converged = np.asarray(converged, bool)
+        else:
+            converged = to_images(mp, converged[:, None], good, fill=True)[0].astype(bool)
         scale = None
         if self.method == "fcls":
             total = A.sum(axis=0)
             with np.errstate(invalid="ignore", divide="ignore"):
                 A = np.where(total > 0, A / total, np.nan)
-            scale = to_images(m, total[:, None], good)[0]
-        return to_images(m, A.T, good), to_images(m, rms[:, None], good)[0], scale, converged
+            scale = total if mp is None else to_images(mp, total[:, None], good)[0]
+        rms = rms if mp is None else to_images(mp, rms[:, None], good)[0]
+        return rows_out(A.T, good, mp), rms, scale, converged
 
     def result(self, m: RamanMap, name: str = "unmixing") -> Result:
         abundance, rms, scale, converged = self._unmix(m)
