@@ -223,8 +223,7 @@ def fit_peaks(block, shift, lo: float, hi: float, *, shape: str = "lorentzian", 
         A, g = _normal_equations(J[a], W[a], y[a] - mu[a])
         diag = np.einsum("pkk->pk", A)
         A_damped = A + (lam[a][:, None] * np.maximum(diag, 1e-12))[:, :, None] * np.eye(K)
-        if shape == "pseudo_voigt":
-            _hold_eta(A_damped, g, theta[a], n_peaks, per)
+        _hold_bounds(A_damped, g, theta[a], shape, n_peaks, s[0], s[-1], step)
         n_iter[a] += 1
         delta, solved = _cholesky_solve(A_damped, g)
         # a step whose damped system is not positive definite is a rejected step, as in
@@ -248,8 +247,7 @@ def fit_peaks(block, shift, lo: float, hi: float, *, shape: str = "lorentzian", 
         stalled[stop] = True
         active &= ~done
     A, g = _normal_equations(J, W, y - mu)
-    if shape == "pseudo_voigt":
-        _hold_eta(A, g, theta, n_peaks, per)
+    _hold_bounds(A, g, theta, shape, n_peaks, s[0], s[-1], step)
     # damping that ran away after rejected steps is convergence only where the remaining
     # Gauss-Newton (Fisher-scoring) step would not lower the objective measurably
     stalled &= ~_at_optimum(A, g, objective(y, mu), np.sum(W * y * y, axis=1), tol)
@@ -281,15 +279,23 @@ def _normal_equations(J, W, r):
     return JtW @ J, (JtW @ r[:, :, None])[..., 0]
 
 
-def _hold_eta(A, g, theta, n_peaks, per):
-    """η held at a bound it is pushing against stays there (in place on A and g)."""
+def _hold_bounds(A, g, theta, shape, n_peaks, s0, s1, step):
+    """A parameter at a bound of the clamp that the step pushes against stays there (in
+    place on A and g): η at 0 or 1, the FWHM at a quarter channel or four windows, the
+    centre half a window outside. Without it a fit of a pixel holding no band (noise
+    only) crept along the clamped width for tens of iterations."""
+    per = len(PEAK_PARAMS[shape])
+    span = s1 - s0
     for k in range(n_peaks):
-        e = k * per + 3
-        held = (((theta[:, e] >= 1) & (g[:, e] > 0)) | ((theta[:, e] <= 0) & (g[:, e] < 0)))
-        A[held, e, :] = 0.0
-        A[held, :, e] = 0.0
-        A[held, e, e] = 1.0
-        g[held, e] = 0.0
+        o = k * per
+        for e in range(o + 1, o + per):
+            lo, hi = ((s0 - 0.5 * span, s1 + 0.5 * span) if e == o + 1 else
+                      (0.25 * step, 4 * span) if e == o + 2 else (0.0, 1.0))
+            held = ((theta[:, e] >= hi) & (g[:, e] > 0)) | ((theta[:, e] <= lo) & (g[:, e] < 0))
+            A[held, e, :] = 0.0
+            A[held, :, e] = 0.0
+            A[held, e, e] = 1.0
+            g[held, e] = 0.0
 
 
 def _cholesky_solve(A, g):
@@ -349,9 +355,17 @@ def _finish(theta, cost, n_iter, status, A, y, ssr, s, shape, n_peaks, per, K,
     dof = N - K
     chi2 = cost / dof
     cov = np.full((P, K, K), np.nan)
-    ok = np.isfinite(A).all(axis=(1, 2))
-    ok[ok] = np.linalg.det(A[ok]) > 0          # the information matrix must be invertible
-    inv = np.linalg.inv(A[ok])
+    # the information matrix must be invertible to working precision: scaled to unit
+    # diagonal, its smallest eigenvalue above 1e-12 of the largest (a determinant's sign
+    # decided by rounding did not tell the engines' nearly singular fits apart alike)
+    d = np.sqrt(np.abs(np.einsum("pkk->pk", A)))
+    ok = np.isfinite(A).all(axis=(1, 2)) & (d > 0).all(axis=1)
+    scale = d[ok][:, :, None] * d[ok][:, None, :]
+    C = A[ok] / scale
+    ev = np.linalg.eigvalsh(C)
+    good = ev[:, 0] > 1e-12 * ev[:, -1]
+    ok[ok] = good
+    inv = np.linalg.inv(C[good]) / scale[good]
     if covariance == "sandwich":
         # least squares on data whose noise differs from channel to channel (shot noise
         # after a baseline was subtracted): the heteroscedasticity-consistent covariance
