@@ -283,3 +283,29 @@ def test_lazy_map_fits_like_in_memory(tmp_path):
     a = peak_fit_map(m, 490, 550).fields["centre"]
     b = peak_fit_map(lazy, 490, 550).fields["centre"]
     np.testing.assert_allclose(b.data, a.data, rtol=1e-9)
+
+
+def test_compiled_start_values_equal_numpy_start_values():
+    """Both engines start from the same values (the kernel's ``initial`` is the twin of
+    ``_initial``): one and two peaks, given and found centres, a missing channel."""
+    from mapkit.reduce._peakfit_kernel import HAVE_NUMBA
+
+    if not HAVE_NUMBA:
+        pytest.skip("no compiled kernel")
+    from mapkit.reduce._peakfit_kernel import SHAPE_CODES, initial
+    from mapkit.reduce.peakfit import PEAK_PARAMS, _initial, _start_step
+
+    y, _ = poisson_map(n=30, seed=7)
+    y[3, 40] = np.nan
+    s = S[(S >= 490) & (S <= 550)]
+    y = np.ascontiguousarray(y[:, (S >= 490) & (S <= 550)])
+    mid = 0.5 * (s[0] + s[-1])
+    for shape, n_peaks, centres in (("lorentzian", 1, None), ("gaussian", 1, [519.0]),
+                                    ("pseudo_voigt", 2, None), ("lorentzian", 2, [512.0, None])):
+        ref = _initial(s, y, shape, n_peaks, centres, mid)
+        given = [c is not None for c in (centres or [None] * n_peaks)]
+        got = np.zeros((y.shape[0], len(PEAK_PARAMS[shape]) * n_peaks + 2))
+        initial(s, y, SHAPE_CODES[shape], n_peaks,
+                np.array([c if g else 0.0 for c, g in zip(centres or [0.0] * n_peaks, given)]),
+                np.array(given), mid, _start_step(s), got)
+        np.testing.assert_array_equal(got, ref)

@@ -386,11 +386,104 @@ if HAVE_NUMBA:
                     status = 0
         return n_iter, status, chi2, ssr
 
+    @numba.njit(cache=True, nogil=True, error_model="numpy")
+    def _information_inverse(A, inv, L, Linv, d, rcond):  # pragma: no cover - compiled
+        # peakfit._information_inverse for one pixel: Cholesky of A scaled to unit
+        # diagonal, invertible where every pivot exceeds rcond; inv = D⁻¹ L⁻ᵀ L⁻¹ D⁻¹
+        K = d.size
+        for a in range(K):
+            if not np.isfinite(A[a, a]) or A[a, a] == 0.0:
+                return False
+            d[a] = np.sqrt(abs(A[a, a]))
+        for a in range(K):
+            for b in range(K):
+                if not np.isfinite(A[a, b]):
+                    return False
+        for i in range(K):
+            for j in range(i + 1):
+                v = A[i, j] / (d[i] * d[j])
+                for k in range(j):
+                    v -= L[i, k] * L[j, k]
+                if i == j:
+                    if not v > rcond:
+                        return False
+                    L[i, i] = np.sqrt(v)
+                else:
+                    L[i, j] = v / L[j, j]
+        for i in range(K):
+            Linv[i, i] = 1.0 / L[i, i]
+            for j in range(i):
+                v = 0.0
+                for k in range(j, i):
+                    v += L[i, k] * Linv[k, j]
+                Linv[i, j] = -v / L[i, i]
+            for j in range(i + 1, K):
+                Linv[i, j] = 0.0
+        for a in range(K):
+            for b in range(K):
+                v = 0.0
+                for k in range(K):
+                    v += Linv[k, a] * Linv[k, b]
+                inv[a, b] = v / (d[a] * d[b])
+        return True
+
+    @numba.njit(cache=True, nogil=True, error_model="numpy")
+    def initial(s, y, shape, n_peaks, centres, given, mid, step, theta):  # pragma: no cover
+        """peakfit._initial, pixel by pixel: the same operations, the same start values."""
+        P, N = y.shape
+        per = 4 if shape == 2 else 3
+        resid = np.empty(N)
+        for p in range(P):
+            slope = (y[p, N - 1] - y[p, 0]) / (s[N - 1] - s[0])
+            offset = 0.5 * (y[p, 0] + y[p, N - 1]) + slope * (mid - 0.5 * (s[0] + s[N - 1]))
+            for i in range(N):
+                resid[i] = y[p, i] - (offset + slope * (s[i] - mid))
+            for k in range(n_peaks):
+                o = k * per
+                if given[k]:
+                    c0 = centres[k]
+                    best = 0
+                    bd = np.inf
+                    for i in range(N):
+                        dd = abs(s[i] - c0)
+                        if dd < bd:          # argmin: the first of equal distances
+                            bd = dd
+                            best = i
+                else:
+                    best = 0
+                    for i in range(N):       # argmax: the first maximum, or the first NaN
+                        if np.isnan(resid[i]):
+                            best = i
+                            break
+                        if resid[i] > resid[best]:
+                            best = i
+                    c0 = s[best]
+                r = resid[best]
+                h0 = r if (r > 1e-6 or np.isnan(r)) else 1e-6
+                count = 0
+                for i in range(N):
+                    if resid[i] > 0.5 * h0:
+                        count += 1
+                w0 = max(count * step, 2 * step) / max(n_peaks, 1)
+                theta[p, o] = h0
+                theta[p, o + 1] = c0
+                theta[p, o + 2] = w0
+                if shape == 2:
+                    theta[p, o + 3] = 0.5
+                if not given[k] and n_peaks > 1:
+                    for i in range(N):
+                        u = 2 * (s[i] - c0) / w0
+                        resid[i] = resid[i] - h0 / (1 + u * u)
+            theta[p, per * n_peaks] = offset
+            theta[p, per * n_peaks + 1] = slope
+
     @numba.njit(parallel=True, cache=True, nogil=True, error_model="numpy")
     def lm_fit(y, s, theta0, shape, n_peaks, mid, poisson, max_iter, tol, step,
-               floor):  # pragma: no cover
+               floor, rcond):  # pragma: no cover
         """Returns theta, Pearson chi-square, iterations, status (0 converged, 1 iteration
-        limit, 2 stalled: the codes of peakfit.STATUS_NAMES), information matrix, SSR.
+        limit, 2 stalled: the codes of peakfit.STATUS_NAMES), information matrix, SSR,
+        and where the information matrix is invertible with its inverse
+        (peakfit._information_inverse).
 
         Pixels go to the threads in runs of 64, each run with its own scratch arrays
         (allocating them per pixel cost about as much as a 5-parameter iteration)."""
@@ -401,6 +494,8 @@ if HAVE_NUMBA:
         n_iter = np.zeros(P, np.int64)
         status = np.ones(P, np.int8)
         info = np.empty((P, K, K))
+        inv = np.full((P, K, K), np.nan)
+        ok = np.zeros(P, np.bool_)
         ssr = np.empty(P)
         run = 64
         for r in numba.prange((P + run - 1) // run):
@@ -414,6 +509,7 @@ if HAVE_NUMBA:
             trial = np.empty(K)
             jrow = np.empty(K)
             buf = np.empty((8, N))
+            Linv = np.empty((K, K))
             for p in range(r * run, min(P, (r + 1) * run)):
                 ni, st, chi2, v = _fit_one(y[p], s, theta[p], shape, n_peaks, mid, poisson,
                                            max_iter, tol, step, floor, info[p], At, Ad, g,
@@ -422,4 +518,5 @@ if HAVE_NUMBA:
                 status[p] = st
                 cost_out[p] = chi2          # Pearson chi-square at the optimum
                 ssr[p] = v
-        return theta, cost_out, n_iter, status, info, ssr
+                ok[p] = _information_inverse(info[p], inv[p], L, Linv, delta, rcond)
+        return theta, cost_out, n_iter, status, info, ssr, ok, inv

@@ -75,14 +75,21 @@ def peak_area(shape, h, w, eta=None):
     return eta * lor + (1 - eta) * gau
 
 
+def _start_step(s):
+    return float(np.median(np.abs(np.diff(s))))
+
+
 def _initial(s, y, shape, n_peaks, centres, mid):
+    """Start values (numpy twin of the kernel's ``initial``): a line through the end
+    channels, then per peak the tallest residual (or the given centre), its height and
+    the width of the channels above half of it."""
     P = y.shape[0]
     per = len(PEAK_PARAMS[shape])
     theta = np.zeros((P, per * n_peaks + 2))
     slope = (y[:, -1] - y[:, 0]) / (s[-1] - s[0])
     offset = 0.5 * (y[:, 0] + y[:, -1]) + slope * (mid - 0.5 * (s[0] + s[-1]))
     resid = y - (offset[:, None] + slope[:, None] * (s - mid)[None, :])
-    step = float(np.median(np.abs(np.diff(s))))
+    step = _start_step(s)
     if centres is None:
         centres = [None] * n_peaks
     for k in range(n_peaks):
@@ -159,6 +166,8 @@ def fit_peaks(block, shift, lo: float, hi: float, *, shape: str = "lorentzian", 
         raise MapkitError(f"unknown weighting {weights!r}", field="weights",
                           fix="use poisson, uniform or auto")
     idx = crop_indices(shift, lo, hi)
+    if idx[-1] - idx[0] + 1 == idx.size:        # a run of channels: a view, not a copy
+        idx = slice(int(idx[0]), int(idx[-1]) + 1)
     s = np.asarray(shift, float)[idx]
     y = np.atleast_2d(np.asarray(block, float))[:, idx]
     if s[0] > s[-1]:
@@ -172,18 +181,25 @@ def fit_peaks(block, shift, lo: float, hi: float, *, shape: str = "lorentzian", 
                           field="range", fix="widen the window or fit fewer peaks")
     mid = 0.5 * (s[0] + s[-1])
     step = float(np.median(np.diff(s)))
-    theta = _initial(s, y, shape, n_peaks, centres, mid)
     P = y.shape[0]
     from ._peakfit_kernel import HAVE_NUMBA, SHAPE_CODES
 
     if engine == "numba" or (engine == "auto" and HAVE_NUMBA):
-        from ._peakfit_kernel import lm_fit
+        from ._peakfit_kernel import initial, lm_fit
 
-        theta, cost, n_iter, status, A, ssr = lm_fit(
-            np.ascontiguousarray(y), np.ascontiguousarray(s), theta, SHAPE_CODES[shape],
-            n_peaks, mid, weights == "poisson", max_iter, tol, step, POISSON_FLOOR)
+        y, s = np.ascontiguousarray(y), np.ascontiguousarray(s)
+        given = [c is not None for c in (centres or [None] * n_peaks)]
+        theta = np.zeros((P, K))
+        initial(s, y, SHAPE_CODES[shape], n_peaks,
+                np.array([c if g else 0.0 for c, g in zip(centres or [0.0] * n_peaks, given)],
+                         float), np.array(given), mid, _start_step(s), theta)
+        theta, cost, n_iter, status, A, ssr, ok, inv = lm_fit(
+            y, s, theta, SHAPE_CODES[shape], n_peaks, mid, weights == "poisson", max_iter,
+            tol, step, POISSON_FLOOR, RCOND)
         return _finish(theta, cost, n_iter, status, A, y, ssr, s, shape, n_peaks, per, K,
-                       _covariance_kind(covariance, weights == "poisson"), mid)
+                       _covariance_kind(covariance, weights == "poisson"), mid,
+                       inverse=(ok, inv))
+    theta = _initial(s, y, shape, n_peaks, centres, mid)
 
     lam = np.full(P, 1e-3)
     active = np.ones(P, bool)
@@ -347,7 +363,11 @@ def _covariance_kind(covariance, poisson):
     return covariance
 
 
-def _information_inverse(A, rcond=1e-12):
+#: smallest pivot of the unit-diagonal information matrix that counts as invertible
+RCOND = 1e-12
+
+
+def _information_inverse(A, rcond=RCOND):
     """Inverse of every information matrix A (P, K, K) and where it exists (P,).
 
     A is scaled to unit diagonal and factorised by Cholesky; it counts as invertible
@@ -381,14 +401,15 @@ def _information_inverse(A, rcond=1e-12):
 
 
 def _finish(theta, cost, n_iter, status, A, y, ssr, s, shape, n_peaks, per, K,
-            covariance="model", mid=None):
-    """Standard errors, fit quality and fit states from the final state."""
+            covariance="model", mid=None, inverse=None):
+    """Standard errors, fit quality and fit states from the final state; ``inverse``:
+    (ok, inverse) of the information matrices when the kernel computed them."""
     P = theta.shape[0]
     N = s.size
     dof = N - K
     chi2 = cost / dof
     cov = np.full((P, K, K), np.nan)
-    ok, inv_all = _information_inverse(A)
+    ok, inv_all = _information_inverse(A) if inverse is None else inverse
     inv = inv_all[ok]
     if covariance == "sandwich":
         # least squares on data whose noise differs from channel to channel (shot noise
@@ -486,8 +507,9 @@ def peak_fit_map(m: RamanMap, lo: float, hi: float, *, shape: str = "lorentzian"
     if good.size == 0:
         raise MapkitError("every pixel is masked; nothing to fit", file=m.source, field="mask",
                           fix="check the map's bad-pixel mask")
-    parts = [fit_peaks(flat[good[i:i + block]].astype(np.float64), shift, lo, hi, shape=shape,
-                       n_peaks=n_peaks, centres=centres, weights=weights,
+    every = good.size == flat.shape[0]          # nothing masked: blocks are views
+    parts = [fit_peaks(flat[i:i + block] if every else flat[good[i:i + block]], shift, lo, hi,
+                       shape=shape, n_peaks=n_peaks, centres=centres, weights=weights,
                        covariance=covariance)
              for i in range(0, good.size, block)]
     fit = {k: (np.concatenate([p[k] for p in parts]) if k not in ("names", "covariance")
