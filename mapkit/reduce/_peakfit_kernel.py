@@ -458,6 +458,13 @@ if HAVE_NUMBA:
                         if resid[i] > resid[best]:
                             best = i
                     c0 = s[best]
+                    if 1 <= best <= N - 2:   # the parabola's vertex, as in _initial
+                        rm = resid[best - 1]
+                        rp = resid[best + 1]
+                        den = rm - 2.0 * resid[best] + rp
+                        if den < 0:
+                            frac = min(max(0.5 * (rm - rp) / den, -0.5), 0.5)
+                            c0 = c0 + frac * (0.5 * (s[best + 1] - s[best - 1]))
                 r = resid[best]
                 h0 = r if (r > 1e-6 or np.isnan(r)) else 1e-6
                 count = 0
