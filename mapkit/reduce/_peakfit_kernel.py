@@ -186,58 +186,80 @@ if HAVE_NUMBA:
         g[4] = g4
         return cost, chi2, ssr, wyy
 
-    @numba.njit(cache=True, nogil=True, error_model="numpy", inline="always")
-    def _pass(y, s, t, shape, n_peaks, mid, poisson, floor, A, g, jrow):  # pragma: no cover
-        # any shape and number of peaks: as _pass1, the Jacobian row in scratch memory
+    @numba.njit(cache=True, nogil=True, error_model="numpy", fastmath={"reassoc"})
+    def _pass(y, s, t, shape, n_peaks, mid, poisson, floor, A, g, buf,
+              jb):  # pragma: no cover - compiled
+        # any shape and number of peaks: as _pass1, with the Jacobian in rows jb (K, N)
+        # and the normal equations as K(K+3)/2 dot products over the channels
         per = 4 if shape == 2 else 3
         K = t.size
-        A[:, :] = 0.0
-        g[:] = 0.0
+        N = s.size
+        wb, mb, qb, rb, lb, ib, eb = buf[0], buf[1], buf[2], buf[3], buf[5], buf[6], buf[7]
+        for i in range(N):
+            x = s[i] - mid
+            mb[i] = t[K - 2] + t[K - 1] * x
+            jb[K - 2, i] = 1.0
+            jb[K - 1, i] = x
+        for k in range(n_peaks):
+            o = k * per
+            h = t[o]
+            c = t[o + 1]
+            w = t[o + 2]
+            if shape == 0:
+                for i in range(N):
+                    u = 2.0 * (s[i] - c) / w
+                    f = 1.0 / (1.0 + u * u)
+                    dfdu = -2.0 * u * f * f
+                    mb[i] += h * f
+                    jb[o, i] = f
+                    jb[o + 1, i] = h * dfdu * (-2.0 / w)
+                    jb[o + 2, i] = h * dfdu * (-u / w)
+            elif shape == 1:
+                for i in range(N):
+                    u = 2.0 * (s[i] - c) / w
+                    f = np.exp(-LN2 * u * u)
+                    dfdu = -2.0 * LN2 * u * f
+                    mb[i] += h * f
+                    jb[o, i] = f
+                    jb[o + 1, i] = h * dfdu * (-2.0 / w)
+                    jb[o + 2, i] = h * dfdu * (-u / w)
+            else:
+                eta = t[o + 3]
+                for i in range(N):
+                    u = 2.0 * (s[i] - c) / w
+                    lor = 1.0 / (1.0 + u * u)
+                    dl = -2.0 * u * lor * lor
+                    gau = np.exp(-LN2 * u * u)
+                    dg = -2.0 * LN2 * u * gau
+                    f = eta * lor + (1 - eta) * gau
+                    dfdu = eta * dl + (1 - eta) * dg
+                    jb[o + 3, i] = h * (lor - gau)
+                    mb[i] += h * f
+                    jb[o, i] = f
+                    jb[o + 1, i] = h * dfdu * (-2.0 / w)
+                    jb[o + 2, i] = h * dfdu * (-u / w)
+        tiny = 0
+        for i in range(N):
+            q = y[i] / max(mb[i], floor)
+            qb[i] = q
+            tiny += 1 if (y[i] > 0 and q < 2.3e-308) else 0
+        if poisson:
+            _log_rows(qb, lb, ib, eb)
+            if tiny:
+                for i in range(N):
+                    if y[i] > 0 and qb[i] < 2.3e-308:
+                        lb[i] = np.log(qb[i])
         cost = 0.0
         chi2 = 0.0
         ssr = 0.0
         wyy = 0.0
-        for i in range(s.size):
-            x = s[i] - mid
-            mu = t[K - 2] + t[K - 1] * x
-            jrow[K - 2] = 1.0
-            jrow[K - 1] = x
-            for k in range(n_peaks):
-                o = k * per
-                h = t[o]
-                c = t[o + 1]
-                w = t[o + 2]
-                u = 2.0 * (s[i] - c) / w
-                lor = 0.0
-                gau = 0.0
-                dl = 0.0
-                dg = 0.0
-                if shape != 1:
-                    lor = 1.0 / (1.0 + u * u)
-                    dl = -2.0 * u * lor * lor
-                if shape != 0:
-                    gau = np.exp(-LN2 * u * u)
-                    dg = -2.0 * LN2 * u * gau
-                if shape == 0:
-                    f, dfdu = lor, dl
-                elif shape == 1:
-                    f, dfdu = gau, dg
-                else:
-                    eta = t[o + 3]
-                    f = eta * lor + (1 - eta) * gau
-                    dfdu = eta * dl + (1 - eta) * dg
-                    jrow[o + 3] = h * (lor - gau)
-                mu += h * f
-                jrow[o] = f
-                jrow[o + 1] = h * dfdu * (-2.0 / w)
-                jrow[o + 2] = h * dfdu * (-u / w)
+        for i in range(N):
             yi = y[i]
+            mu = mb[i]
             if poisson:
                 m = max(mu, floor)
                 wi = 1.0 / m
-                cost += 2.0 * (m - yi)
-                if yi > 0:
-                    cost += 2.0 * yi * np.log(yi / m)
+                cost += 2.0 * (m - yi) + (2.0 * yi * lb[i] if yi > 0 else 0.0)
             else:
                 wi = 1.0
                 cost += (yi - mu) * (yi - mu)
@@ -245,15 +267,19 @@ if HAVE_NUMBA:
             ssr += r0 * r0
             chi2 += wi * r0 * r0
             wyy += wi * yi * yi
-            r = wi * r0
-            for a in range(K):
-                wa = wi * jrow[a]
-                g[a] += jrow[a] * r
-                for b in range(a, K):
-                    A[a, b] += wa * jrow[b]
+            wb[i] = wi
+            rb[i] = wi * r0
         for a in range(K):
-            for b in range(a):
-                A[a, b] = A[b, a]
+            v = 0.0
+            for i in range(N):
+                v += jb[a, i] * rb[i]
+            g[a] = v
+            for b in range(a, K):
+                v = 0.0
+                for i in range(N):
+                    v += (wb[i] * jb[a, i]) * jb[b, i]
+                A[a, b] = v
+                A[b, a] = v
         return cost, chi2, ssr, wyy
 
     @numba.njit(cache=True, nogil=True, error_model="numpy")
@@ -261,7 +287,7 @@ if HAVE_NUMBA:
                   buf):  # pragma: no cover - compiled
         if n_peaks == 1 and shape != 2:
             return _pass1(y, s, t, shape, mid, poisson, floor, A, g, buf)
-        return _pass(y, s, t, shape, n_peaks, mid, poisson, floor, A, g, jrow)
+        return _pass(y, s, t, shape, n_peaks, mid, poisson, floor, A, g, buf, jrow)
 
     @numba.njit(cache=True, nogil=True, error_model="numpy")
     def _clamp(t, shape, n_peaks, s0, s1, step):  # pragma: no cover - compiled
@@ -514,7 +540,7 @@ if HAVE_NUMBA:
             gd = np.empty(K)
             delta = np.empty(K)
             trial = np.empty(K)
-            jrow = np.empty(K)
+            jrow = np.empty((K, N))
             buf = np.empty((8, N))
             Linv = np.empty((K, K))
             for p in range(r * run, min(P, (r + 1) * run)):
