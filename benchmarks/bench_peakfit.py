@@ -12,7 +12,8 @@ and scaled to the map.
 Both sides run interleaved in one process, on 1 thread each (numba, BLAS, Dask
 synchronous; the loop in this process) and on 2 threads each (numba and Dask 2 threads;
 the loop split over 2 worker processes started before timing): medians of ``--repeats``
-runs, so a load from other work on the machine falls on both alike. Accuracy: the
+runs, so a load from other work on the machine falls on both alike; the 1-thread runs'
+CPU time is printed as well (what they cost a quiet core). Accuracy: the
 centre's scatter about the truth over the pixels, divided by the RMS of the reported
 standard errors and by the Cramér–Rao bound (inverse Fisher information of Poisson counts
 at the true parameters). Run: python benchmarks/bench_peakfit.py [--repeats 7]
@@ -129,9 +130,12 @@ def main(argv=None):
             return curve_fit_loop(window, s)
         return np.concatenate(list(pool.map(curve_fit_loop, halves, [s, s])))
 
+    cpu = {"mapkit": [], "curve_fit": []}    # this process's CPU time, 1-thread runs
+
     def timed(fn, *args):
-        t0 = time.perf_counter()
+        t0, c0 = time.perf_counter(), time.process_time()
         out = fn(*args)
+        timed.cpu = time.process_time() - c0
         return time.perf_counter() - t0, out
 
     max_threads = numba.config.NUMBA_NUM_THREADS
@@ -146,9 +150,13 @@ def main(argv=None):
                 dt, results["mapkit", t] = timed(ours)
                 if rep:
                     times["mapkit", t].append(dt)
+                    if t == 1:
+                        cpu["mapkit"].append(timed.cpu)
                 dt, results["curve_fit", t] = timed(theirs, t)
                 if rep:
                     times["curve_fit", t].append(dt * NY * NX / sub.size)
+                    if t == 1:
+                        cpu["curve_fit"].append(timed.cpu * NY * NX / sub.size)
     pool.shutdown()
 
     fields, summary = results["mapkit", 1]
@@ -178,6 +186,9 @@ def main(argv=None):
         print(f"{f'{t} vs {t} thread' + ('s' if t > 1 else ''):>16} {ours_t / n * 1e3:13.4f} "
               f"{theirs_t / n * 1e3:16.4f} {theirs_t / ours_t:6.1f}x   "
               f"({min(times['mapkit', t]) * 1e3:.0f}-{max(times['mapkit', t]) * 1e3:.0f})")
+    c_ours, c_theirs = statistics.median(cpu["mapkit"]), statistics.median(cpu["curve_fit"])
+    print(f"{'1 vs 1, CPU time':>16} {c_ours / n * 1e3:13.4f} {c_theirs / n * 1e3:16.4f} "
+          f"{c_theirs / c_ours:6.1f}x   (process CPU seconds: what the runs cost a quiet core)")
     print("centre accuracy (scatter about the truth):")
     for side, (rmse, se, kept, total) in acc.items():
         print(f"  {side:>9}: scatter / reported SE {rmse / se:.3f}, scatter / CRLB "

@@ -1,12 +1,17 @@
 """Compiled Levenberg–Marquardt for peak-fit maps: one small fit per pixel, pixels in parallel.
 
 The numpy version in :mod:`mapkit.reduce.peakfit` runs the same algorithm vectorised
-across pixels; this kernel avoids its array traffic (every iteration copies the
-Jacobians of all active pixels). Measured 30x faster than a per-pixel
-``scipy.optimize.curve_fit`` loop, one thread against one, on 2026-12-02 on a 2-core VM
-(benchmarks/bench_peakfit.py, benchmarks/RESULTS.md). Parameters agree with the numpy
-path within 1e-8 relative, and fit states and iteration counts are identical
-(tests/test_peakfit.py).
+across pixels; this kernel avoids its array traffic. Each trial step is one pass over the
+channels that gives the objective and the normal equations together (no stored
+Jacobian); the passes are written as loops the compiler turns into vector code (the
+numpy error model, so a division carries no zero-division branch; a vectorised
+logarithm; sums it may reorder). Start values and the inverse information matrices are
+computed here too, each the twin of a numpy function in :mod:`mapkit.reduce.peakfit`.
+Parameters agree with the numpy path within 1e-8 relative, and fit states and iteration
+counts are identical (tests/test_peakfit.py). Measured as a user meets it (open, fit,
+images; 4800 pixels, 160 channels) 47x a per-pixel ``scipy.optimize.curve_fit`` loop in
+CPU time, one thread against one, on 2026-12-02 on a 2-core VM
+(benchmarks/bench_peakfit.py, benchmarks/RESULTS.md).
 """
 
 from __future__ import annotations
