@@ -75,21 +75,38 @@ def peak_area(shape, h, w, eta=None):
     return eta * lor + (1 - eta) * gau
 
 
+def _start_step(s):
+    return float(np.median(np.abs(np.diff(s))))
+
+
 def _initial(s, y, shape, n_peaks, centres, mid):
+    """Start values (numpy twin of the kernel's ``initial``): a line through the end
+    channels, then per peak the tallest residual (or the given centre), its height and
+    the width of the channels above half of it; a found centre is refined to the vertex of
+    the parabola through its channel and the two neighbours."""
     P = y.shape[0]
     per = len(PEAK_PARAMS[shape])
     theta = np.zeros((P, per * n_peaks + 2))
     slope = (y[:, -1] - y[:, 0]) / (s[-1] - s[0])
     offset = 0.5 * (y[:, 0] + y[:, -1]) + slope * (mid - 0.5 * (s[0] + s[-1]))
     resid = y - (offset[:, None] + slope[:, None] * (s - mid)[None, :])
-    step = float(np.median(np.abs(np.diff(s))))
+    step = _start_step(s)
     if centres is None:
         centres = [None] * n_peaks
     for k in range(n_peaks):
         o = k * per
         if centres[k] is None:
             i = np.argmax(resid, axis=1)
-            c0 = s[i]
+            # the vertex of the parabola through the tallest residual and its neighbours
+            # (within half a channel): about 0.3 fewer iterations per pixel
+            j = np.clip(i, 1, s.size - 2)
+            rows = np.arange(P)
+            rm, r0, rp = resid[rows, j - 1], resid[rows, j], resid[rows, j + 1]
+            den = rm - 2.0 * r0 + rp
+            inner = (i == j) & (den < 0)
+            frac = np.where(inner, np.clip(0.5 * (rm - rp) / np.where(inner, den, -1.0),
+                                           -0.5, 0.5), 0.0)
+            c0 = s[i] + frac * (0.5 * (s[j + 1] - s[j - 1]))
         else:
             c0 = np.full(P, float(centres[k]))
             i = np.abs(s[None, :] - c0[:, None]).argmin(axis=1)
@@ -159,6 +176,8 @@ def fit_peaks(block, shift, lo: float, hi: float, *, shape: str = "lorentzian", 
         raise MapkitError(f"unknown weighting {weights!r}", field="weights",
                           fix="use poisson, uniform or auto")
     idx = crop_indices(shift, lo, hi)
+    if idx[-1] - idx[0] + 1 == idx.size:        # a run of channels: a view, not a copy
+        idx = slice(int(idx[0]), int(idx[-1]) + 1)
     s = np.asarray(shift, float)[idx]
     y = np.atleast_2d(np.asarray(block, float))[:, idx]
     if s[0] > s[-1]:
@@ -172,18 +191,25 @@ def fit_peaks(block, shift, lo: float, hi: float, *, shape: str = "lorentzian", 
                           field="range", fix="widen the window or fit fewer peaks")
     mid = 0.5 * (s[0] + s[-1])
     step = float(np.median(np.diff(s)))
-    theta = _initial(s, y, shape, n_peaks, centres, mid)
     P = y.shape[0]
     from ._peakfit_kernel import HAVE_NUMBA, SHAPE_CODES
 
     if engine == "numba" or (engine == "auto" and HAVE_NUMBA):
-        from ._peakfit_kernel import lm_fit
+        from ._peakfit_kernel import initial, lm_fit
 
-        theta, cost, n_iter, status, A, ssr = lm_fit(
-            np.ascontiguousarray(y), np.ascontiguousarray(s), theta, SHAPE_CODES[shape],
-            n_peaks, mid, weights == "poisson", max_iter, tol, step, POISSON_FLOOR)
+        y, s = np.ascontiguousarray(y), np.ascontiguousarray(s)
+        given = [c is not None for c in (centres or [None] * n_peaks)]
+        theta = np.zeros((P, K))
+        initial(s, y, SHAPE_CODES[shape], n_peaks,
+                np.array([c if g else 0.0 for c, g in zip(centres or [0.0] * n_peaks, given)],
+                         float), np.array(given), mid, _start_step(s), theta)
+        theta, cost, n_iter, status, A, ssr, ok, inv = lm_fit(
+            y, s, theta, SHAPE_CODES[shape], n_peaks, mid, weights == "poisson", max_iter,
+            tol, step, POISSON_FLOOR, RCOND)
         return _finish(theta, cost, n_iter, status, A, y, ssr, s, shape, n_peaks, per, K,
-                       _covariance_kind(covariance, weights == "poisson"), mid)
+                       _covariance_kind(covariance, weights == "poisson"), mid,
+                       inverse=(ok, inv))
+    theta = _initial(s, y, shape, n_peaks, centres, mid)
 
     lam = np.full(P, 1e-3)
     active = np.ones(P, bool)
@@ -223,8 +249,7 @@ def fit_peaks(block, shift, lo: float, hi: float, *, shape: str = "lorentzian", 
         A, g = _normal_equations(J[a], W[a], y[a] - mu[a])
         diag = np.einsum("pkk->pk", A)
         A_damped = A + (lam[a][:, None] * np.maximum(diag, 1e-12))[:, :, None] * np.eye(K)
-        if shape == "pseudo_voigt":
-            _hold_eta(A_damped, g, theta[a], n_peaks, per)
+        _hold_bounds(A_damped, g, theta[a], shape, n_peaks, s[0], s[-1], step)
         n_iter[a] += 1
         delta, solved = _cholesky_solve(A_damped, g)
         # a step whose damped system is not positive definite is a rejected step, as in
@@ -248,8 +273,7 @@ def fit_peaks(block, shift, lo: float, hi: float, *, shape: str = "lorentzian", 
         stalled[stop] = True
         active &= ~done
     A, g = _normal_equations(J, W, y - mu)
-    if shape == "pseudo_voigt":
-        _hold_eta(A, g, theta, n_peaks, per)
+    _hold_bounds(A, g, theta, shape, n_peaks, s[0], s[-1], step)
     # damping that ran away after rejected steps is convergence only where the remaining
     # Gauss-Newton (Fisher-scoring) step would not lower the objective measurably
     stalled &= ~_at_optimum(A, g, objective(y, mu), np.sum(W * y * y, axis=1), tol)
@@ -281,15 +305,23 @@ def _normal_equations(J, W, r):
     return JtW @ J, (JtW @ r[:, :, None])[..., 0]
 
 
-def _hold_eta(A, g, theta, n_peaks, per):
-    """η held at a bound it is pushing against stays there (in place on A and g)."""
+def _hold_bounds(A, g, theta, shape, n_peaks, s0, s1, step):
+    """A parameter at a bound of the clamp that the step pushes against stays there (in
+    place on A and g): η at 0 or 1, the FWHM at a quarter channel or four windows, the
+    centre half a window outside. Without it a fit of a pixel holding no band (noise
+    only) crept along the clamped width for tens of iterations."""
+    per = len(PEAK_PARAMS[shape])
+    span = s1 - s0
     for k in range(n_peaks):
-        e = k * per + 3
-        held = (((theta[:, e] >= 1) & (g[:, e] > 0)) | ((theta[:, e] <= 0) & (g[:, e] < 0)))
-        A[held, e, :] = 0.0
-        A[held, :, e] = 0.0
-        A[held, e, e] = 1.0
-        g[held, e] = 0.0
+        o = k * per
+        for e in range(o + 1, o + per):
+            lo, hi = ((s0 - 0.5 * span, s1 + 0.5 * span) if e == o + 1 else
+                      (0.25 * step, 4 * span) if e == o + 2 else (0.0, 1.0))
+            held = ((theta[:, e] >= hi) & (g[:, e] > 0)) | ((theta[:, e] <= lo) & (g[:, e] < 0))
+            A[held, e, :] = 0.0
+            A[held, :, e] = 0.0
+            A[held, e, e] = 1.0
+            g[held, e] = 0.0
 
 
 def _cholesky_solve(A, g):
@@ -341,17 +373,54 @@ def _covariance_kind(covariance, poisson):
     return covariance
 
 
+#: smallest pivot of the unit-diagonal information matrix that counts as invertible
+RCOND = 1e-12
+
+
+def _information_inverse(A, rcond=RCOND):
+    """Inverse of every information matrix A (P, K, K) and where it exists (P,).
+
+    A is scaled to unit diagonal and factorised by Cholesky; it counts as invertible
+    where every pivot of the scaled matrix exceeds ``rcond`` (a nearly singular matrix
+    has pivots at rounding level, of either sign, which no threshold on a determinant
+    tells apart alike in the two engines). The inverse comes from the factor (about 15
+    vectorised operations per entry, in place of ``numpy.linalg`` calls on P small
+    matrices).
+    """
+    P, K, _ = A.shape
+    d = np.sqrt(np.abs(np.einsum("pkk->pk", A)))
+    ok = np.isfinite(A).all(axis=(1, 2)) & (d > 0).all(axis=1)
+    d = np.where(ok[:, None], d, 1.0)
+    C = np.where(ok[:, None, None], A, np.eye(K)) / (d[:, :, None] * d[:, None, :])
+    L = np.zeros((P, K, K))
+    for i in range(K):
+        for j in range(i + 1):
+            v = C[:, i, j] - np.einsum("pk,pk->p", L[:, i, :j], L[:, j, :j])
+            if i == j:
+                ok &= v > rcond
+                L[:, i, i] = np.sqrt(np.where(v > rcond, v, 1.0))
+            else:
+                L[:, i, j] = v / L[:, j, j]
+    Linv = np.zeros((P, K, K))
+    for i in range(K):
+        Linv[:, i, i] = 1.0 / L[:, i, i]
+        for j in range(i):
+            Linv[:, i, j] = -np.einsum("pk,pk->p", L[:, i, j:i], Linv[:, j:i, j]) / L[:, i, i]
+    inv = np.einsum("pki,pkj->pij", Linv, Linv) / (d[:, :, None] * d[:, None, :])
+    return ok, inv
+
+
 def _finish(theta, cost, n_iter, status, A, y, ssr, s, shape, n_peaks, per, K,
-            covariance="model", mid=None):
-    """Standard errors, fit quality and fit states from the final state."""
+            covariance="model", mid=None, inverse=None):
+    """Standard errors, fit quality and fit states from the final state; ``inverse``:
+    (ok, inverse) of the information matrices when the kernel computed them."""
     P = theta.shape[0]
     N = s.size
     dof = N - K
     chi2 = cost / dof
     cov = np.full((P, K, K), np.nan)
-    ok = np.isfinite(A).all(axis=(1, 2))
-    ok[ok] = np.linalg.det(A[ok]) > 0          # the information matrix must be invertible
-    inv = np.linalg.inv(A[ok])
+    ok, inv_all = _information_inverse(A) if inverse is None else inverse
+    inv = inv_all[ok]
     if covariance == "sandwich":
         # least squares on data whose noise differs from channel to channel (shot noise
         # after a baseline was subtracted): the heteroscedasticity-consistent covariance
@@ -448,8 +517,9 @@ def peak_fit_map(m: RamanMap, lo: float, hi: float, *, shape: str = "lorentzian"
     if good.size == 0:
         raise MapkitError("every pixel is masked; nothing to fit", file=m.source, field="mask",
                           fix="check the map's bad-pixel mask")
-    parts = [fit_peaks(flat[good[i:i + block]].astype(np.float64), shift, lo, hi, shape=shape,
-                       n_peaks=n_peaks, centres=centres, weights=weights,
+    every = good.size == flat.shape[0]          # nothing masked: blocks are views
+    parts = [fit_peaks(flat[i:i + block] if every else flat[good[i:i + block]], shift, lo, hi,
+                       shape=shape, n_peaks=n_peaks, centres=centres, weights=weights,
                        covariance=covariance)
              for i in range(0, good.size, block)]
     fit = {k: (np.concatenate([p[k] for p in parts]) if k not in ("names", "covariance")
