@@ -259,10 +259,21 @@ def _baseline_step(m, method, **params):
     func = _baseline.METHODS[method]
     shift = m.raman_shift
     if m.is_lazy:
-        def sub(block):
-            return block - func(block, shift, **params)
+        import dask.array as da
 
-        return _spectral(m, "baseline", {"method": method, **params}, sub), {}
+        ns = m.shape[2]
+
+        def sub(block):   # one more channel carries the converged flag: one run gives both
+            info = {}
+            out = np.empty((block.shape[0], ns + 1))
+            out[:, :ns] = block - func(block, shift, info=info, **params)
+            out[:, ns] = info["converged"]
+            return out
+
+        both = map_spectra(m, sub, ns + 1)
+        mask = da.from_array(m.mask, chunks=both.chunks[:2])
+        return (m.derive(both[..., :ns], Step("baseline", {"method": method, **params})),
+                {"converged": (both[..., ns] > 0.5) | mask})
     # in memory: also record which spectra hit max_iter before converging (a quality mask)
     ny, nx, ns = m.shape
     converged = np.ones(ny * nx, bool)

@@ -16,8 +16,9 @@ METHODS = ("kmeans", "minibatch", "ward")
 WARD_MAX_PIXELS = 15000
 
 
-def _scores(m: RamanMap, n_pca: int, smooth: float, random_state: int):
-    """PCA scores of the good pixels, optionally smoothed spatially (Gaussian, σ in pixels)."""
+def _scores(m: RamanMap, n_pca: int, smooth: float, random_state: int, *, keep_pca=None):
+    """PCA scores of the good pixels, optionally smoothed spatially (Gaussian, σ in pixels);
+    ``keep_pca`` (a dict) receives the fitted PCA."""
     from scipy.ndimage import gaussian_filter
     from sklearn.decomposition import PCA
 
@@ -25,6 +26,8 @@ def _scores(m: RamanMap, n_pca: int, smooth: float, random_state: int):
     n_pca = max(1, min(n_pca, X.shape[0], X.shape[1]))
     pca = PCA(n_components=n_pca, random_state=random_state).fit(X)
     S = pca.transform(X)
+    if keep_pca is not None:
+        keep_pca["pca"] = pca
     if smooth > 0:
         ny, nx, _ = m.shape
         weight = (~m.mask).astype(float)
@@ -144,14 +147,32 @@ class KMeansClasses(_ClassMap):
         if self.method not in METHODS:
             raise MapkitError(f"unknown classification method {self.method!r}", field="method",
                               fix=f"use one of {', '.join(METHODS)}")
-        X, good, S = _scores(m, self.n_pca, self.smooth, self.random_state)
+        kept = {}
+        X, good, S = _scores(m, self.n_pca, self.smooth, self.random_state, keep_pca=kept)
         check_components(self.n_classes, m, X.shape[0], name="n_classes")
         raw = _cluster(S, self.n_classes, self.method, self.random_state, self.n_init)
         # number classes by size (largest first) so labels are stable and readable
         order = np.argsort(-np.bincount(raw, minlength=self.n_classes), kind="stable")
         relabel = np.empty_like(order)
         relabel[order] = np.arange(self.n_classes)
-        return self._store(m, X, good, relabel[raw])
+        lab = relabel[raw]
+        self.pca_ = kept["pca"]
+        # the centre of each class in the scores (k-means: its centroid), for predict
+        self.centres_ = np.stack([S[lab == k].mean(axis=0) if np.any(lab == k)
+                                  else np.full(S.shape[1], np.inf) for k in range(self.n_classes)])
+        return self._store(m, X, good, lab)
+
+    def predict(self, m: RamanMap) -> np.ndarray:
+        """Class of each pixel of a map on the fitted axis (the nearest class centre in the
+        fitted PCA scores); -1 where masked. For k-means on the fitted map these are its
+        labels; it lets a model fitted on a sample of spectra label a map block by block."""
+        if self.smooth > 0:
+            raise MapkitError("classes with spatial smoothing need the whole map",
+                              field="smooth", fix="use smooth = 0 to label a map by blocks")
+        X, good = good_spectra(m, what="classification")
+        S = self.pca_.transform(X)
+        d = ((S[:, None, :] - self.centres_[None]) ** 2).sum(axis=-1)
+        return to_images(m, np.argmin(d, axis=1)[:, None], good, fill=-1)[0].astype(np.int16)
 
 
 class DominantClasses(_ClassMap):
@@ -213,11 +234,16 @@ class DominantClasses(_ClassMap):
                               f"{(self.n_classes, *m.shape[:2])}", field="images",
                               fix="give one image per class on the map's grid")
         X, good = good_spectra(m, what="classification")
-        A = np.nan_to_num(images.reshape(self.n_classes, -1)[:, good])
-        level = np.sort(A, axis=1)[:, -min(max(1, self.n_purest), A.shape[1])]
-        shares = A / np.where(level > 0, level, 1.0)[:, None]
+        shares = self.shares_of(images, good)
         self.shares_ = to_images(m, shares.T, good)
         return self._store(m, X, good, np.argmax(shares, axis=0))
+
+    def shares_of(self, images, good):
+        """Each component image over its pure level, at the ``good`` pixels (flat mask):
+        (n_classes, n_good); the class of a pixel is its largest share."""
+        A = np.nan_to_num(np.asarray(images, float).reshape(self.n_classes, -1)[:, good])
+        level = np.sort(A, axis=1)[:, -min(max(1, self.n_purest), A.shape[1])]
+        return A / np.where(level > 0, level, 1.0)[:, None]
 
 
 def class_domains(labels, pixel_size, *, connectivity: int = 1, n_classes: int | None = None):
