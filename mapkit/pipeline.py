@@ -204,9 +204,9 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
                               notices=list(optical_notices) + axis_notes)
     summary, results, written = out
     provenance = summary.pop("_provenance")
-    summary["seconds"] = time.perf_counter() - t0
-    written.append(write_summary(outdir, summary))
     from .export.report import write_report
+
+    t1 = time.perf_counter()
 
     inputs = _inputs(map_path, standards, optical, placed)
     written.append(write_report(
@@ -215,6 +215,9 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
         inputs={role: {"path": Path(p).name, "sha256": _sha(p)} for role, p in inputs.items()}))
     if model is not None:
         written.append(model.save(outdir / "quant_model.json", overwrite=True))
+    summary["timings_s"]["report"] = time.perf_counter() - t1
+    summary["seconds"] = time.perf_counter() - t0
+    written.append(write_summary(outdir, summary))
     return {"written": [Path(p) for p in written], "summary": summary, "results": results,
             "calibration": model.calibration if model is not None else None, "model": model}
 
@@ -288,18 +291,25 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
     from .reduce import BackgroundMCR, DominantClasses, KMeansClasses, NMFComponents
     from .reduce import ReferenceUnmixing, band_image
 
-    bar = tqdm(total=3 * plan.n_blocks + 3, desc="mapkit", unit="step",
+    bar = tqdm(total=3 * plan.n_blocks + 2, desc="mapkit", unit="step",
                disable=not progress, leave=False)
+    timings = {}
+    clock = [time.perf_counter()]
 
     def stage(name):
         bar.set_postfix_str(name)
         bar.update()
 
+    def lap(name):   # seconds per stage, for the summary (where the time goes)
+        now = time.perf_counter()
+        timings[name] = timings.get(name, 0.0) + now - clock[0]
+        clock[0] = now
+
     # clean: in memory for one block, lazily (Dask) for several
     m = raw if plan.chunked and raw.is_lazy else raw.load()
     corrected, extras, keep = recipe.apply_keeping_background(m)
     same = keep is corrected
-    stage("recipe")
+    lap("recipe (lazy graph, bad-pixel mask)" if corrected.is_lazy else "recipe")
     bad_report = extras.get("mask_bad_pixels", {}).get("report",
                                                        {"nonfinite": 0, "dead": 0, "saturated": 0})
     spikes = extras.get("despike", {}).get("spikes")
@@ -402,6 +412,7 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                 fit_c = stream.sample_map(corrected, Sc)
                 fit_k = fit_c if same else stream.sample_map(keep, Sk)
                 del Sc, Sk
+            lap("clean, write cube, sample")
             names = [f"component {i + 1}" for i in range(s.n_components)]
             if s.component_method == "mcr":   # fits the background itself: the despiked map
                 comp = BackgroundMCR(n_components=s.n_components, random_state=s.seed).fit(fit_k)
@@ -421,6 +432,7 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                 notices += [str(w.message) for w in caught]
             del fit_c, fit_k
             stage("fit")
+            lap("fit")
             # pass 2: apply the fitted estimators block by block
             images = np.full((s.n_components, ny, nx), np.nan)
             labels = np.full((ny, nx), -1, np.int16)
@@ -445,6 +457,7 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                 if model is not None:
                     conc_parts.append(model.apply(bc, refs))
                 stage("images")
+            lap("apply by blocks")
             results = [stream.stitch(band_parts[name], corrected) for name, _, _ in s.bands]
             comp_result = comp.result(corrected, images)
             _identify(comp_result.summary, comp.components_, corrected.raman_shift, refs, names,
@@ -516,6 +529,7 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                 spike_result, spike_summary = record.result(corrected,
                                                             dict(recipe.steps)["despike"])
                 results.append(spike_result)
+            lap("classes, quality")
             for r in results:
                 _write_result(f, r)
         finally:
@@ -528,15 +542,17 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
         notices.append(f"the per-pixel table ({ny * nx} pixels) is not written above "
                        f"{stream.LONG_TABLE_MAX_PIXELS} pixels; every map is in results.h5 "
                        "and the TIFFs")
+    lap("write results file")
     written = [outdir / "results.h5"] + write_bundle(
         outdir, final, results, stem=safe_name(Path(map_path).stem), overwrite=overwrite,
         figures=figures, formats=formats, optical=placed, write_h5=False, csv=csv)
+    lap("TIFFs, table, figures")
     summary = {"map": str(map_path), "shape": list(raw.shape), "bad_pixels": bad_report,
                "spikes": spike_summary, "notices": notices, "recipe": recipe.text,
                "mode": "chunk-wise" if plan.chunked else "in memory",
                "plan": {"reason": plan.reason, "blocks": plan.n_blocks, "block_rows": plan.rows,
                         "sample_stride": stride, "sample_spectra": n_sample},
-               "scheduler": where,
+               "scheduler": where, "timings_s": timings,
                "results": {r.name: r.summary for r in results if r.summary},
                "settings": asdict(s), "versions": library_versions()}
     if placed is not None:
