@@ -127,13 +127,10 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     ``LocalCluster``) or ``address`` (an existing scheduler) run the lazy cleaning there.
     ``notify`` (a callable) receives a line saying which, before the work starts.
     """
-    from .preprocess.recipe import Recipe
-    from tqdm.auto import tqdm
-
-    from .export.bundle import safe_name, write_bundle, write_summary
-    from .quantify import class_regions, polygon_mask, region_statistics
-    from .read import open_map, read_library
     from . import stream
+    from .export.bundle import write_summary
+    from .preprocess.recipe import Recipe
+    from .read import open_map, read_library
 
     s = settings or Settings()
     if s.component_method not in COMPONENT_METHODS:

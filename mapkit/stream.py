@@ -119,8 +119,8 @@ class BlockPlan:
         text += "one block" if self.n_blocks == 1 else \
             f"{self.n_blocks} blocks of {self.rows} rows"
         if stride > 1:
-            text += (f"; estimators fitted on a sample of {n_sample} spectra (every "
-                     f"{stride}th good pixel), applied block by block")
+            text += (f"; estimators fitted on a sample of about {n_sample} spectra (one "
+                     f"good pixel in {stride}), applied block by block")
         return text
 
 
@@ -142,7 +142,9 @@ def plan_blocks(m, *, memory_fraction: float = 0.5, chunked: bool = False,
                   "comfortably in memory")
     else:
         return BlockPlan(ny, [0], False, "the map fits comfortably")
-    rows = band_rows(m, block_bytes or BAND_BYTES)
+    # a band is at most BAND_BYTES, less on a machine with little memory to spare
+    budget = max(1 << 20, int(memory_fraction * memory_available()) // 16)
+    rows = band_rows(m, block_bytes or min(BAND_BYTES, budget))
     return BlockPlan(rows, list(range(0, ny, rows)), True, reason)
 
 
