@@ -167,18 +167,15 @@ def _run_analysis(a, map_path, library, standards, bands):
     regions = dict(parse_region(r) for r in a.region or [])
     optical = _optical_request(a, getattr(a, "optical", None)) if hasattr(a, "transform") \
         else None
-    mode = _choose_mode(a, map_path)
-    if mode and optical is not None:
-        raise MapkitError("a micrograph is not drawn on the chunk-wise path yet",
-                          field="--optical", fix="add it afterwards with 'mapkit micrograph'")
-    if mode:
-        return _run_large(a, map_path, recipe, mode, library, standards, model)
-    print("mode      in memory (the map fits comfortably)")
     out = analyse(map_path, a.out, library=library, standards=standards, settings=s,
                   overwrite=a.overwrite, progress=not a.quiet, figures=not a.no_figures,
                   open_kwargs=_open_kwargs(a) if hasattr(a, "dataset") else None, recipe=recipe,
-                  model=model, regions=regions, formats=_formats(a), optical=optical)
+                  model=model, regions=regions, formats=_formats(a), optical=optical,
+                  chunked=getattr(a, "chunked", False), workers=getattr(a, "workers", None),
+                  address=getattr(a, "scheduler", None),
+                  notify=lambda line: print(f"mode      {line}"))
     summ = out["summary"]
+    print(f"scheduler {summ['scheduler']}, {summ['seconds']:.1f} s")
     print(f"map       {map_path}  ({summ['shape'][0]} x {summ['shape'][1]} pixels, "
           f"{summ['shape'][2]} channels)")
     bp = summ["bad_pixels"]
@@ -236,65 +233,6 @@ def _model_recipe(a, model, recipe):
                           fix="omit --recipe to clean with the recipe saved in the model, or "
                               "pass the recipe.toml 'mapkit calibrate' wrote beside it") from None
     return recipe
-
-
-def _choose_mode(a, map_path):
-    """None for the in-memory path, else the reason to go chunk-wise."""
-    from .read import open_map
-    from .stream import fits_in_memory
-
-    if getattr(a, "workers", None) or getattr(a, "scheduler", None):
-        return "a Dask cluster was asked for"
-    if getattr(a, "chunked", False):
-        return "--chunked"
-    m = open_map(map_path, **_open_kwargs(a)) if hasattr(a, "dataset") else open_map(map_path)
-    if not fits_in_memory(m):
-        return (f"the cube ({m.n_pixels * m.shape[2] * 4 / 2**30:.1f} GiB) would not fit "
-                "comfortably in memory")
-    return None
-
-
-def _run_large(a, map_path, recipe, reason, library, standards, model):
-    from .stream import analyse_large
-
-    from .pipeline import Settings, quantification_model
-    from .read import read_library
-
-    refs = read_library(library) if library else None
-    from .read import open_map
-
-    # the axis alone (lazy open): a crop too narrow or a short library fail before cleaning
-    notes = []
-    recipe.check_axis(open_map(map_path).raman_shift, need=a.components,
-                      why=f"NMF with {a.components} components", library=refs, notes=notes)
-    for note in notes:
-        print(f"notice    {note}")
-    if standards:
-        s = Settings(analyte=a.analyte, calibration_model=a.calibration_model,
-                     weighting=a.weighting, response_band=a.response_band,
-                     internal_standard=a.internal_standard)
-        model = quantification_model(standards, refs, recipe, s)
-    print(f"mode      chunk-wise ({reason})")
-    print("notice    chunk-wise, components are NMF of the baseline-corrected cube, classes "
-          "mini-batch k-means and unmixing uses 6 fixed baseline terms on that cube (the "
-          "in-memory defaults are not available chunk-wise yet)")
-    out = analyse_large(map_path, a.out, recipe=recipe, n_components=a.components,
-                        n_classes=a.classes or a.components, seed=a.seed, workers=a.workers,
-                        address=a.scheduler, overwrite=a.overwrite, figures=not a.no_figures,
-                        progress=not a.quiet, bands=a.band or (), library=refs, model=model)
-    if model is not None:
-        model.save(Path(a.out) / "quant_model.json", overwrite=True)
-    s = out["summary"]
-    print(f"scheduler {s['scheduler']}, bands of {s['band_rows']} rows, {s['seconds']:.1f} s")
-    areas = s["results"].get("kmeans", {}).get("areas", {})
-    if areas:
-        print("classes   " + ", ".join(f"{k} {v['fraction_pct']:.1f} %" for k, v in areas.items()))
-    conc = s["results"].get("concentration")
-    if conc and conc.get("mean") is not None:
-        print(f"content   mean {conc['mean']:.2f} {conc['unit']}; {conc['quantifiable']} of "
-              f"{conc['pixels']} pixels quantifiable")
-    print(f"wrote     {len(out['written'])} files to {Path(a.out)}/")
-    return out
 
 
 def cmd_demo(a):

@@ -7,6 +7,7 @@ and the viewer agree.
 
 from __future__ import annotations
 
+import time
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
@@ -101,7 +102,9 @@ def quantification_model(standards, library, recipe, settings):
 def analyse(map_path, outdir, *, library=None, standards=None, settings: Settings | None = None,
             overwrite: bool = False, progress: bool = True, figures: bool = True,
             open_kwargs: dict | None = None, recipe=None, model=None,
-            regions: dict | None = None, formats=("png",), optical: dict | None = None) -> dict:
+            regions: dict | None = None, formats=("png",), optical: dict | None = None,
+            chunked: bool = False, block_bytes: int | None = None, workers: int | None = None,
+            address: str | None = None, notify=None) -> dict:
     """Run the whole path on one map file and write every output into ``outdir``.
 
     ``recipe`` (a :class:`~mapkit.preprocess.recipe.Recipe`, default: mask bad pixels,
@@ -115,15 +118,19 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     ``optical`` places a micrograph under the maps: ``{"image": path, "pixel_size": µm or
     (dx, dy), "origin": (x0, y0), "control_points": CSV path, "transform": "similarity" or
     "affine"}`` (all but ``image`` optional); it is checked before anything is written.
-    """
-    from .preprocess.recipe import Recipe
-    from tqdm.auto import tqdm
 
-    from .export.bundle import safe_name, write_bundle, write_summary
-    from .preprocess.quality import snr
-    from .quantify import class_regions, polygon_mask, region_statistics
+    Every map size runs this same code: read → clean → fit → images → quantities → write.
+    The memory budget (``Settings.memory_fraction``) or ``block_bytes`` decides only how
+    many blocks of rows the map is processed in and whether the estimators are fitted on a
+    strided sample of the spectra (:func:`mapkit.stream.plan_blocks`); a map that fits is
+    one block, cleaned in memory. ``chunked`` forces blocks; ``workers`` (a Dask
+    ``LocalCluster``) or ``address`` (an existing scheduler) run the lazy cleaning there.
+    ``notify`` (a callable) receives a line saying which, before the work starts.
+    """
+    from . import stream
+    from .export.bundle import write_summary
+    from .preprocess.recipe import Recipe
     from .read import open_map, read_library
-    from .reduce import band_image
 
     s = settings or Settings()
     if s.component_method not in COMPONENT_METHODS:
@@ -143,16 +150,11 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
         raise MapkitError("the output file exists (from an earlier run)",
                           file=outdir / "results.h5", field="--out",
                           fix="choose another --out folder or pass --overwrite")
+    _check_table_size(map_path, s.memory_fraction)
     placed, optical_notices = (None, []) if optical is None else place_optical(
         optical, open_map_axes(map_path, open_kwargs))
     outdir.mkdir(parents=True, exist_ok=True)
     recipe = recipe or Recipe.default()
-    stages = ["read"] + [name for name, _ in recipe.steps] + [
-        "bands", "components", "classes", "unmixing", "concentration", "write"]
-    bar = tqdm(total=len(stages), desc="mapkit", unit="step", disable=not progress, leave=False)
-
-    def stage(name):
-        bar.set_postfix_str(name)
 
     # library, standards and model are read before the cube, so their errors come first
     refs = read_library(library) if library is not None else None
@@ -167,7 +169,6 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
             raise MapkitError(f"the model quantifies {model.analyte!r}, not {s.analyte!r}",
                               field="--analyte", fix="use a model made for that analyte")
 
-    stage("read")
     raw = open_map(map_path, **{"block_bytes": layout.READ_BYTES, **(open_kwargs or {})})
     # the axis alone, before the cube is read: a crop too narrow for NMF or unmixing, or a
     # library that does not cover what the recipe leaves, fails here with the recipe line
@@ -182,117 +183,54 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
                                                 "baseline terms"
     axis_notes = []
     recipe.check_axis(raw.raman_shift, need=need, why=why, library=refs, notes=axis_notes)
-    need = raw.n_pixels * raw.shape[2] * 8 * 4  # float64 working copies of the cube
-    if need > s.memory_fraction * _memory_available():
-        raise MapkitError(f"the map needs about {need / 2**30:.1f} GiB to process in memory",
-                          file=map_path, field="intensity",
-                          fix="crop or bin the map first; chunk-wise processing is not available yet")
-    m = raw.load()
-    bar.update()
+    plan = stream.plan_blocks(raw, memory_fraction=s.memory_fraction, chunked=chunked,
+                              block_bytes=block_bytes, cluster=bool(workers or address))
+    if plan.chunked and not raw.is_lazy and not stream.fits_in_memory(raw, s.memory_fraction):
+        raise MapkitError(f"the map needs about {raw.n_pixels * raw.shape[2] * 32 / 2**30:.1f} "
+                          "GiB to process in memory and only an HDF5 map can be processed "
+                          "chunk by chunk", file=map_path, field="intensity",
+                          fix=f"convert it first: mapkit convert {map_path} map.h5")
+    t0 = time.perf_counter()
+    with stream.dask_scheduler(workers, address) if plan.chunked else \
+            _nullcontext("this process") as where:
+        out = _analyse_blocks(map_path, outdir, raw, plan, where, s=s, refs=refs, model=model,
+                              recipe=recipe, regions=regions, overwrite=overwrite,
+                              progress=progress, figures=figures, formats=formats,
+                              placed=placed, optical=optical, library=library,
+                              standards=standards, notify=notify,
+                              notices=list(optical_notices) + axis_notes)
+    summary, results, written = out
+    provenance = summary.pop("_provenance")
+    from .export.report import write_report
 
-    def step_progress(name):
-        stage(name)
-        bar.update()
+    t1 = time.perf_counter()
 
-    # unmixing and background MCR fit the fluorescence themselves: the map before the baseline
-    corrected, extras, with_background = recipe.apply_keeping_background(
-        m, progress=step_progress)
-    bad_report = extras.get("mask_bad_pixels", {}).get("report",
-                                                       {"nonfinite": 0, "dead": 0, "saturated": 0})
-    spikes = extras.get("despike", {}).get("spikes")
-
-    results: list[Result] = []
-    stage("bands")
-    for name, lo, hi in s.bands:
-        try:
-            results.append(band_image(corrected, lo, hi, name=name))
-        except MapkitError as exc:
-            raise MapkitError(exc.problem, file=map_path, field=f"--band {name}:{lo:g}-{hi:g}",
-                              fix=exc.fix) from None
-    bar.update()
-    # the same calls as the reduction subcommands and the viewer make (one place for each)
-    stage("components")
-    if s.component_method == "mcr":   # fits the background itself: the despiked map
-        comp_result, = run_method(with_background, "mcr_background", n=s.n_components,
-                                 seed=s.seed, library=refs, min_score=s.min_score)
-    else:
-        comp_result, = run_method(corrected, "nmf", n=s.n_components, seed=s.seed,
-                                 library=refs, min_score=s.min_score)
-    results.append(comp_result)
-    bar.update()
-    stage("classes")
-    if s.class_method == "dominant":
-        km_result, = run_method(corrected, "dominant", n=s.n_components, library=refs,
-                                images=comp_result.fields["images"].data, name="classes",
-                                spectra=comp_result.fields["spectra"].data,
-                                min_score=s.min_score)
-    else:
-        km_result, = run_method(corrected, s.class_method, n=s.n_classes or s.n_components,
-                                seed=s.seed, library=refs, normalisation=s.normalisation,
-                                name="classes", min_score=s.min_score)
-    results.append(km_result)
-    bar.update()
-    stage("unmixing")
-    from .read.dispatch import read_notes
-
-    notices = list(optical_notices) + read_notes(raw) + axis_notes
-    calibration = None
-    if refs is not None:
-        unmix_result, = run_method(with_background, "unmix", library=refs,
-                                   baseline_order=s.unmix_baseline_order)
-        notices += unmix_result.summary.pop("notices", [])
-        results.append(unmix_result)
-    bar.update()
-    stage("concentration")
+    inputs = _inputs(map_path, standards, optical, placed)
+    written.append(write_report(
+        outdir / "report.html", map_name=Path(map_path).name, summary=summary, results=results,
+        model=model, recipe_text=recipe.text, provenance=provenance, optical=placed,
+        inputs={role: {"path": Path(p).name, "sha256": _sha(p)} for role, p in inputs.items()}))
     if model is not None:
-        conc = model.apply(corrected, refs)
-        calibration = model.calibration
-        region_masks = class_regions(km_result.fields["labels"].data,
-                                     list(km_result.summary["areas"]))
-        for name, verts in (regions or {}).items():
-            region_masks[name] = polygon_mask(corrected.x, corrected.y, verts)
-        conc.summary["regions"] = region_statistics(conc.fields["concentration"].data,
-                                                    conc.fields["flags"].data, region_masks)
-        results.append(conc)
-    bar.update()
+        written.append(model.save(outdir / "quant_model.json", overwrite=True))
+    summary["timings_s"]["report"] = time.perf_counter() - t1
+    summary["seconds"] = time.perf_counter() - t0
+    written.append(write_summary(outdir, summary))
+    return {"written": [Path(p) for p in written], "summary": summary, "results": results,
+            "calibration": model.calibration if model is not None else None, "model": model}
 
-    img_axes = (Axis("y", corrected.y, "um"), Axis("x", corrected.x, "um"))
-    ny, nx, ns = corrected.shape
-    snr_img = snr(np.asarray(corrected.intensity, float).reshape(-1, ns)).reshape(ny, nx)
-    snr_img[corrected.mask] = np.nan
-    quality = {
-        "snr": Field("snr", snr_img, img_axes, "", long_name="signal-to-noise ratio"),
-        "mask": Field("bad_pixel", corrected.mask.astype(np.uint8), img_axes, "",
-                      long_name="1 = masked (dead, saturated or non-finite)")}
-    quality_summary = {"snr_median": float(np.nanmedian(snr_img)),
-                       "masked": int(corrected.mask.sum())}
-    conv = extras.get("baseline", {}).get("converged")
-    if conv is not None and conv.shape == corrected.mask.shape:
-        # iterative baselines that stopped at max_iter are reported, not hidden
-        quality["baseline_converged"] = Field("baseline_converged", conv.astype(np.uint8),
-                                              img_axes, "", long_name="1 = baseline converged")
-        quality_summary["baseline_not_converged"] = int((~conv & ~corrected.mask).sum())
-    results.append(Result("quality", "quality", {}, quality, quality_summary))
-    spike_summary = {"channels_replaced": 0, "spectra_touched": 0}
-    if spikes is not None and spikes.shape[:2] == corrected.shape[:2]:
-        spikes = np.asarray(spikes)
-        spike_summary = {"channels_replaced": int(spikes.sum()),
-                         "spectra_touched": int(spikes.any(axis=-1).sum())}
-        spike_axes = img_axes + (Axis("raman_shift", m.raman_shift, "1/cm"),)
-        if spikes.shape[2] == m.raman_shift.size:
-            results.append(Result("spikes", "despike", dict(recipe.steps)["despike"],
-                                  {"replaced": Field("replaced", spikes.astype(np.uint8),
-                                                     spike_axes, "",
-                                                     long_name="1 where a cosmic-ray spike "
-                                                               "was replaced")},
-                                  spike_summary))
 
-    stage("write")
-    run_step = Step("analyse", {"settings": asdict(s), "library": str(library) if library else None,
-                                "standards": str(standards) if standards else None,
-                                "recipe": recipe.text,
-                                **({"optical": optical} if optical is not None else {})})
-    final = corrected.derive(corrected.intensity, run_step)
+class _nullcontext:
+    def __init__(self, value):
+        self.value = value
+
+    def __enter__(self):
+        return self.value
+
+    def __exit__(self, *exc):
+        return False
+
+
+def _inputs(map_path, standards, optical, placed):
     inputs = {"map": map_path}
     if standards is not None:
         inputs["standards"] = standards
@@ -300,30 +238,324 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
         inputs["optical"] = optical["image"]
         if optical.get("control_points"):
             inputs["control_points"] = optical["control_points"]
-    if model is not None:
-        written_model = model.save(outdir / "quant_model.json", overwrite=True)
-    written = write_bundle(outdir, final, results, stem=safe_name(Path(map_path).stem),
-                           overwrite=overwrite, figures=figures, inputs=inputs, formats=formats,
-                           optical=placed)
+    return inputs
+
+
+def _check_table_size(map_path, fraction):
+    """A text table too large to read into memory is refused before it is read: only
+    HDF5 maps can be processed chunk by chunk."""
+    import h5py
+
+    path = Path(map_path)
+    if not path.is_file() or h5py.is_hdf5(path):
+        return
+    from .stream import WORKING_COPIES, memory_available
+
+    # a table holds about 8 characters per value; processing takes WORKING_COPIES float64
+    # copies of every value
+    need = path.stat().st_size / 8 * 8 * WORKING_COPIES
+    if need > fraction * memory_available():
+        raise MapkitError(f"the table is too large to process in memory (about "
+                          f"{need / 2**30:.1f} GiB) and only an HDF5 map can be processed "
+                          "chunk by chunk", file=path, field="intensity",
+                          fix=f"convert it first: mapkit convert {path} {path.stem}.h5")
+
+
+def _identify(summary, spectra, shift, refs, names, min_score):
+    from .reduce import match_library
+
+    if refs:
+        summary["identification"] = match_library(spectra, shift, refs, names=names,
+                                                  min_score=min_score)
+
+
+def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recipe, regions,
+                    overwrite, progress, figures, formats, placed, optical, library,
+                    standards, notify, notices):
+    """The analysis proper, for any number of blocks (see :func:`analyse`)."""
+    import warnings
+
+    from tqdm.auto import tqdm
+
+    from . import stream
+    from .export.bundle import safe_name, write_bundle
+    from .export.nexus import _write_cube_from, _write_result, results_file
+    from .preprocess import normalise_map
+    from .preprocess.quality import snr
+    from .quantify import class_regions, polygon_mask, region_statistics
+    from .quantify.concentration import concentration_map
+    from .read.dispatch import read_notes
+    from .reduce import BackgroundMCR, DominantClasses, KMeansClasses, NMFComponents
+    from .reduce import ReferenceUnmixing, band_image
+
+    bar = tqdm(total=3 * plan.n_blocks + 2, desc="mapkit", unit="step",
+               disable=not progress, leave=False)
+    timings = {}
+    clock = [time.perf_counter()]
+
+    def stage(name):
+        bar.set_postfix_str(name)
+        bar.update()
+
+    def lap(name):   # seconds per stage, for the summary (where the time goes)
+        now = time.perf_counter()
+        timings[name] = timings.get(name, 0.0) + now - clock[0]
+        clock[0] = now
+
+    # clean: in memory for one block, lazily (Dask) for several
+    m = raw if plan.chunked and raw.is_lazy else raw.load()
+    corrected, extras, keep = recipe.apply_keeping_background(m)
+    same = keep is corrected
+    lap("recipe (lazy graph, bad-pixel mask)" if corrected.is_lazy else "recipe")
+    bad_report = extras.get("mask_bad_pixels", {}).get("report",
+                                                       {"nonfinite": 0, "dead": 0, "saturated": 0})
+    spikes = extras.get("despike", {}).get("spikes")
+    conv = extras.get("baseline", {}).get("converged")
+    ny, nx, ns = corrected.shape
+    if spikes is not None and tuple(spikes.shape) != (ny, nx, ns):
+        spikes = None          # a later step changed the grid or the axis
+    if conv is not None and tuple(conv.shape) != (ny, nx):
+        conv = None
+    mask = corrected.mask
+    n_good = int((~mask).sum())
+    stride = plan.sample_stride(n_good)
+    n_sample = len(range(0, n_good, stride)) if stride > 1 else n_good
+    if notify:
+        notify(plan.describe(stride, n_sample))
+
+    def fetch(y0):
+        """Blocks of rows y0:y0+rows of the cleaned cube, the cube before the baseline,
+        the spike flags and the baseline's convergence (computed together: shared work)."""
+        sl = slice(y0, y0 + plan.rows)
+        parts = [corrected.intensity[sl], None if same else keep.intensity[sl],
+                 None if spikes is None else spikes[sl], None if conv is None else conv[sl]]
+        if corrected.is_lazy:
+            import dask
+
+            lazy = [p for p in parts if p is not None and hasattr(p, "compute")]
+            done = iter(dask.compute(*lazy))
+            parts = [next(done) if p is not None and hasattr(p, "compute") else p for p in parts]
+        return [None if p is None else np.asarray(p) for p in parts]
+
+    run_step = Step("analyse", {"settings": asdict(s), "library": str(library) if library else None,
+                                "standards": str(standards) if standards else None,
+                                "recipe": recipe.text, "blocks": plan.n_blocks,
+                                "block_rows": plan.rows, "sample_stride": stride,
+                                "scheduler": where,
+                                **({"optical": optical} if optical is not None else {})})
+    final = corrected.derive(corrected.intensity, run_step)
+    inputs = _inputs(map_path, standards, optical, placed)
+    snr_img = np.full((ny, nx), np.nan)
+    conv_img = np.ones((ny, nx), bool)
+    record = stream.SpikeRecord(ny, nx)
+    rng = np.random.default_rng(s.seed)
+    sample_c, sample_k = [], []
+    scratch = outdir / f".{Path(map_path).stem}.background.part.h5"
+    import h5py
+
+    with results_file(outdir / "results.h5", final, overwrite=overwrite, inputs=inputs,
+                      optical=placed) as f, \
+            (h5py.File(scratch, "w") if plan.n_blocks > 1 and not same else _nullcontext(None)) \
+            as scratch_file:
+        try:
+            # pass 1: clean block by block; one writer stores the cube; keep a sample
+            def cleaned():
+                for y0 in plan.starts:
+                    c, k, sp, cv = fetch(y0)
+                    rows = c.shape[0]
+                    g = ~mask[y0:y0 + rows].ravel()
+                    yield y0, c.astype(np.float32, copy=False)
+                    flat = c.reshape(-1, ns)
+                    snr_blk = np.full(g.size, np.nan)
+                    snr_blk[g] = snr(flat[g])
+                    snr_img[y0:y0 + rows] = snr_blk.reshape(rows, nx)
+                    if cv is not None:
+                        conv_img[y0:y0 + rows] = cv
+                    if sp is not None:
+                        record.add(y0, sp & ~mask[y0:y0 + rows, :, None])
+                    store_c.put(y0, c)
+                    if not same:
+                        store_k.put(y0, k)
+                    if stride > 1:
+                        pick = np.flatnonzero(g)[int(rng.integers(stride))::stride]
+                        sample_c.append(flat[pick].copy())
+                        if not same:
+                            sample_k.append(k.reshape(-1, ns)[pick].copy())
+                    stage("cleaning")
+
+            one = plan.n_blocks == 1
+            store_c = stream.BlockStore(one, write=False)   # multi-block: the results cube
+            store_k = stream.BlockStore(one or same, None if one or same else
+                                        scratch_file.create_dataset(
+                                            "background", shape=(ny, nx, ns), dtype="float32",
+                                            chunks=layout.pixel_tile(ny, nx, ns)))
+            store_c.dataset = _write_cube_from(f, corrected, cleaned())
+            # fit: on the whole map (one block, no sample) or on the sample
+            if stride == 1 and plan.n_blocks == 1:
+                fit_c = stream.block_map(corrected, store_c.get(0, ny), 0)
+                fit_k = fit_c if same else stream.block_map(keep, store_k.get(0, ny), 0)
+            else:
+                if stride == 1:        # every good spectrum, in order: the same fit
+                    Sc = np.concatenate([store_c.get(y0, plan.rows).reshape(-1, ns)[
+                        ~mask[y0:y0 + plan.rows].ravel()] for y0 in plan.starts])
+                    Sk = Sc if same else np.concatenate(
+                        [store_k.get(y0, plan.rows).reshape(-1, ns)[
+                            ~mask[y0:y0 + plan.rows].ravel()] for y0 in plan.starts])
+                else:
+                    Sc = np.concatenate(sample_c)
+                    Sk = Sc if same else np.concatenate(sample_k)
+                sample_c.clear()
+                sample_k.clear()
+                fit_c = stream.sample_map(corrected, Sc)
+                fit_k = fit_c if same else stream.sample_map(keep, Sk)
+                del Sc, Sk
+            lap("clean, write cube, sample")
+            names = [f"component {i + 1}" for i in range(s.n_components)]
+            if s.component_method == "mcr":   # fits the background itself: the despiked map
+                comp = BackgroundMCR(n_components=s.n_components, random_state=s.seed).fit(fit_k)
+            else:
+                comp = NMFComponents(n_components=s.n_components, random_state=s.seed).fit(fit_c)
+            comp_on_k = s.component_method == "mcr"
+            if s.class_method != "dominant":
+                km = KMeansClasses(n_classes=s.n_classes or s.n_components, method=s.class_method,
+                                   random_state=s.seed).fit(
+                    normalise_map(fit_c, method=s.normalisation))
+            unmix = None
+            if refs is not None:
+                with warnings.catch_warnings(record=True) as caught:
+                    warnings.simplefilter("always")
+                    unmix = ReferenceUnmixing(refs, baseline_order=s.unmix_baseline_order,
+                                              weights="poisson").fit(fit_k)
+                notices += [str(w.message) for w in caught]
+            del fit_c, fit_k
+            stage("fit")
+            lap("fit")
+            # pass 2: apply the fitted estimators block by block
+            images = np.full((s.n_components, ny, nx), np.nan)
+            labels = np.full((ny, nx), -1, np.int16)
+            band_parts = {name: [] for name, _, _ in s.bands}
+            unmix_parts, conc_parts = [], []
+            for y0 in plan.starts:
+                bc = stream.block_map(corrected, store_c.get(y0, plan.rows), y0)
+                bk = bc if same else stream.block_map(keep, store_k.get(y0, plan.rows), y0)
+                rows = bc.shape[0]
+                for name, lo, hi in s.bands:
+                    try:
+                        band_parts[name].append(band_image(bc, lo, hi, name=name))
+                    except MapkitError as exc:
+                        raise MapkitError(exc.problem, file=map_path,
+                                          field=f"--band {name}:{lo:g}-{hi:g}",
+                                          fix=exc.fix) from None
+                images[:, y0:y0 + rows] = comp.transform(bk if comp_on_k else bc)
+                if s.class_method != "dominant":
+                    labels[y0:y0 + rows] = km.predict(normalise_map(bc, method=s.normalisation))
+                if unmix is not None:
+                    unmix_parts.append(unmix.result(bk))
+                if model is not None:
+                    conc_parts.append(model.apply(bc, refs))
+                stage("images")
+            lap("apply by blocks")
+            results = [stream.stitch(band_parts[name], corrected) for name, _, _ in s.bands]
+            comp_result = comp.result(corrected, images)
+            _identify(comp_result.summary, comp.components_, corrected.raman_shift, refs, names,
+                      s.min_score)
+            results.append(comp_result)
+            # classes: labels from the images (dominant) or the clustering; class spectra
+            # gathered block by block
+            n_cls = s.n_components if s.class_method == "dominant" else (s.n_classes or s.n_components)
+            good = ~mask.ravel()
+            if s.class_method == "dominant":
+                cls = DominantClasses(n_classes=s.n_components)
+                shares = cls.shares_of(images, good)
+                lab = np.full(ny * nx, -1, np.int16)
+                lab[good] = np.argmax(shares, axis=0)
+                labels = lab.reshape(ny, nx)
+                sh = np.full((s.n_components, ny * nx), np.nan)
+                sh[:, good] = shares
+                cls.shares_ = sh.reshape(s.n_components, ny, nx)
+            else:
+                cls = km
+            stats = stream.ClassStats(n_cls, ns)
+            for y0 in plan.starts:
+                bc = stream.block_map(corrected, store_c.get(y0, plan.rows), y0)
+                if s.class_method != "dominant":
+                    bc = normalise_map(bc, method=s.normalisation)
+                g = ~bc.mask.ravel()
+                lab = labels[y0:y0 + bc.shape[0]].ravel()[g]
+                stats.add(np.asarray(bc.intensity, float).reshape(-1, ns)[g], lab)
+                stage("classes")
+            stats.store(cls, labels, corrected)
+            km_result = cls.result(corrected, name="classes")
+            _identify(km_result.summary, comp.components_ if s.class_method == "dominant"
+                      else cls.class_mean_, corrected.raman_shift, refs,
+                      list(km_result.summary["areas"]), s.min_score)
+            results.append(km_result)
+            if unmix is not None:
+                results.append(stream.stitch(unmix_parts, corrected, sum_keys=("not_converged",)))
+            if model is not None:
+                x0 = np.concatenate([p.fields["concentration"].data for p in conc_parts])
+                sx0 = np.concatenate([p.fields["concentration"].errors for p in conc_parts])
+                conc = concentration_map(x0, sx0, model.calibration,
+                                         (Axis("y", corrected.y, "um"),
+                                          Axis("x", corrected.x, "um")), mask=mask)
+                conc.summary["response"] = model.response.to_dict()
+                region_masks = class_regions(labels, list(km_result.summary["areas"]))
+                for name, verts in (regions or {}).items():
+                    region_masks[name] = polygon_mask(corrected.x, corrected.y, verts)
+                conc.summary["regions"] = region_statistics(conc.fields["concentration"].data,
+                                                            conc.fields["flags"].data,
+                                                            region_masks)
+                results.append(conc)
+            img_axes = (Axis("y", corrected.y, "um"), Axis("x", corrected.x, "um"))
+            snr_img[mask] = np.nan
+            quality = {
+                "snr": Field("snr", snr_img, img_axes, "", long_name="signal-to-noise ratio"),
+                "mask": Field("bad_pixel", mask.astype(np.uint8), img_axes, "",
+                              long_name="1 = masked (dead, saturated or non-finite)")}
+            quality_summary = {"snr_median": float(np.nanmedian(snr_img)) if n_good else None,
+                               "masked": int(mask.sum())}
+            if conv is not None:
+                # iterative baselines that stopped at max_iter are reported, not hidden
+                quality["baseline_converged"] = Field(
+                    "baseline_converged", conv_img.astype(np.uint8), img_axes, "",
+                    long_name="1 = baseline converged")
+                quality_summary["baseline_not_converged"] = int((~conv_img & ~mask).sum())
+            results.append(Result("quality", "quality", {}, quality, quality_summary))
+            spike_summary = {"channels_replaced": 0, "spectra_touched": 0}
+            if spikes is not None:
+                spike_result, spike_summary = record.result(corrected,
+                                                            dict(recipe.steps)["despike"])
+                results.append(spike_result)
+            lap("classes, quality")
+            for r in results:
+                _write_result(f, r)
+        finally:
+            if scratch.exists():
+                scratch.unlink()
+    bar.close()
+    notices = notices + read_notes(raw)
+    csv = ny * nx <= stream.LONG_TABLE_MAX_PIXELS
+    if not csv:
+        notices.append(f"the per-pixel table ({ny * nx} pixels) is not written above "
+                       f"{stream.LONG_TABLE_MAX_PIXELS} pixels; every map is in results.h5 "
+                       "and the TIFFs")
+    lap("write results file")
+    written = [outdir / "results.h5"] + write_bundle(
+        outdir, final, results, stem=safe_name(Path(map_path).stem), overwrite=overwrite,
+        figures=figures, formats=formats, optical=placed, write_h5=False, csv=csv)
+    lap("TIFFs, table, figures")
     summary = {"map": str(map_path), "shape": list(raw.shape), "bad_pixels": bad_report,
                "spikes": spike_summary, "notices": notices, "recipe": recipe.text,
+               "mode": "chunk-wise" if plan.chunked else "in memory",
+               "plan": {"reason": plan.reason, "blocks": plan.n_blocks, "block_rows": plan.rows,
+                        "sample_stride": stride, "sample_spectra": n_sample},
+               "scheduler": where, "timings_s": timings,
                "results": {r.name: r.summary for r in results if r.summary},
                "settings": asdict(s), "versions": library_versions()}
     if placed is not None:
         summary["optical"] = optical_summary(placed)
-    written.append(write_summary(outdir, summary))
-    from .export.report import write_report
-
-    written.append(write_report(
-        outdir / "report.html", map_name=Path(map_path).name, summary=summary, results=results,
-        model=model, recipe_text=recipe.text, provenance=final.provenance, optical=placed,
-        inputs={role: {"path": Path(p).name, "sha256": _sha(p)} for role, p in inputs.items()}))
-    bar.update()
-    bar.close()
-    if model is not None:
-        written.append(written_model)
-    return {"written": [Path(p) for p in written], "summary": summary, "results": results,
-            "calibration": calibration, "model": model}
+    summary["_provenance"] = final.provenance
+    return summary, results, written
 
 
 def open_map_axes(map_path, open_kwargs=None):

@@ -377,3 +377,26 @@ def test_bad_micrograph_writes_nothing(tmp_path, capsys, case, build, expected, 
     before = sorted(p for p in tmp_path.rglob("*"))
     assert main(args) == 2
     assert sorted(p for p in tmp_path.rglob("*")) == before, "something was written"
+
+
+def test_text_table_too_large_for_memory_is_told_to_convert(tmp_path, capsys, monkeypatch):
+    """A table that would not fit in memory cannot be processed chunk by chunk (only HDF5
+    can): one line naming the file and the command that converts it, before it is read."""
+    import mapkit.read.table as table
+    import mapkit.stream as stream
+
+    path = _table(tmp_path / "big.csv", _wide(ncol=60))
+    monkeypatch.setattr(stream, "memory_available", lambda: 1000)   # a tiny machine
+
+    def never(*a, **k):
+        raise AssertionError("the table was read")
+
+    monkeypatch.setattr(table, "read_table", never)
+    before = _digest([path])
+    rc = main(analyse(path, "--out", str(tmp_path / "out")))
+    _, err = capsys.readouterr()
+    assert rc == 2 and _digest([path]) == before
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and "Traceback" not in err
+    assert "big.csv" in lines[0] and "mapkit convert" in lines[0], lines[0]
+    assert not (tmp_path / "out" / "results.h5").exists()

@@ -1,4 +1,7 @@
-"""Maps larger than memory: the chunk-wise path against the in-memory one, threads and cluster."""
+"""One analysis for every map size: in memory (one block) against chunk-wise (many blocks,
+optionally a fitting sample), threads and a cluster, the same outputs."""
+
+import json
 
 import h5py
 import numpy as np
@@ -23,111 +26,210 @@ def recipe(sample_dir):
     return Recipe.from_file(sample_dir / "tablet_recipe.toml")
 
 
-def test_chunkwise_cleaning_is_bit_identical(sample_map_path, sample_map, recipe, tmp_path):
-    from mapkit.stream import analyse_large
+def _run(sample_dir, out, recipe, settings=None, **kw):
+    from mapkit.pipeline import Settings, analyse
 
-    analyse_large(sample_map_path, tmp_path, recipe=recipe, band_bytes=1 << 20, progress=False,
-                  figures=False)
-    in_memory, _ = recipe.apply(sample_map)
+    s = settings or Settings()
+    s.bands = [("api", 845.0, 872.0)]
+    s.calibration_model = "quadratic"
+    return analyse(sample_dir / "blend_map.h5", out, library=sample_dir / "library",
+                   standards=sample_dir / "calibration_standards.csv", settings=s,
+                   recipe=recipe, progress=False, figures=False, **kw)
+
+
+def _datasets(path):
+    out = {}
+    with h5py.File(path) as f:
+        def visit(name, obj):
+            if isinstance(obj, h5py.Dataset) and obj.dtype.kind in "fiub":
+                out[name] = obj[...]
+        f.visititems(visit)
+    return out
+
+
+@pytest.fixture(scope="module")
+def default_runs(sample_dir, recipe, tmp_path_factory):
+    """The default methods (background MCR, dominant classes, unmixing, content) on the same
+    map in memory and in 1 MiB blocks (8 blocks of 4 rows): every spectrum enters the fit."""
+    tmp = tmp_path_factory.mktemp("runs")
+    mem = _run(sample_dir, tmp / "mem", recipe)
+    chunk = _run(sample_dir, tmp / "chunk", recipe, block_bytes=1 << 20)
+    return tmp, mem, chunk
+
+
+def test_chunkwise_gives_the_in_memory_numbers(default_runs):
+    """Same estimators, same fit (all spectra, in order), applied block by block: every
+    number in the results file agrees to float tolerance (the solvers' sums run over
+    other block shapes; measured 2026-12-02: at most 2e-9 of the field's largest value)."""
+    tmp, mem, chunk = default_runs
+    assert mem["summary"]["mode"] == "in memory" and mem["summary"]["plan"]["blocks"] == 1
+    assert chunk["summary"]["mode"] == "chunk-wise" and chunk["summary"]["plan"]["blocks"] > 1
+    assert chunk["summary"]["plan"]["sample_stride"] == 1
+    a, b = _datasets(tmp / "mem" / "results.h5"), _datasets(tmp / "chunk" / "results.h5")
+    assert set(a) == set(b)
+    compared = 0
+    for name, x in a.items():
+        y = b[name]
+        assert x.shape == y.shape, name
+        if x.dtype.kind in "iub":
+            np.testing.assert_array_equal(y, x, err_msg=name)
+        else:
+            scale = np.nanmax(np.abs(x)) if np.isfinite(x).any() else 1.0
+            np.testing.assert_allclose(y, x, rtol=0, atol=1e-7 * max(scale, 1e-12),
+                                       equal_nan=True, err_msg=name)
+        compared += 1
+    for group in ("mcr/images", "classes/labels", "unmixing/abundance", "api/image",
+                  "concentration/concentration", "quality/snr", "spikes/count",
+                  "spikes/replaced", "map/intensity"):
+        assert any(group in n for n in a), group
+    assert compared > 20
+
+
+def test_chunkwise_writes_the_same_files(default_runs):
+    tmp, mem, chunk = default_runs
+    names = {p.name for p in (tmp / "mem").iterdir()}
+    assert names == {p.name for p in (tmp / "chunk").iterdir()}
+    for expected in ("results.h5", "summary.json", "report.html", "quant_model.json",
+                     "blend_map_maps.csv", "blend_map_quality_snr.tif",
+                     "blend_map_quality_baseline_converged.tif", "blend_map_spikes_count.tif",
+                     "blend_map_mcr_images.tif", "blend_map_unmixing_abundance.tif",
+                     "blend_map_concentration.tif", "blend_map_classes_labels.tif"):
+        assert expected in names, expected
+    assert not [n for n in names if n.endswith(".part") or n.startswith(".")]
+    summary = json.loads((tmp / "chunk" / "summary.json").read_text())
+    assert set(summary["results"]) == set(mem["summary"]["results"])
+
+
+def test_chunkwise_cleaning_is_bit_identical(sample_map_path, sample_map, recipe, tmp_path):
+    from mapkit.pipeline import analyse
+
+    analyse(sample_map_path, tmp_path, recipe=recipe, block_bytes=1 << 20, progress=False,
+            figures=False)
+    in_memory, extras = recipe.apply(sample_map)
     with h5py.File(tmp_path / "results.h5") as f:
         np.testing.assert_array_equal(f["/entry/map/intensity"][...], in_memory.intensity)
         np.testing.assert_array_equal(f["/entry/map/mask"][...].astype(bool), in_memory.mask)
+        # the compact spike record holds exactly the flags of the in-memory despike
+        flags = extras["despike"]["spikes"] & ~in_memory.mask[..., None]
+        idx = f["/entry/results/spikes/replaced/replaced"][...]
+        np.testing.assert_array_equal(idx, np.argwhere(flags))
+        np.testing.assert_array_equal(f["/entry/results/spikes/count/count"][...],
+                                      flags.sum(axis=-1))
 
 
-def test_streamed_fits_match_the_in_memory_quality(sample_map_path, sample_map, recipe, truth,
-                                                   tmp_path, monkeypatch):
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_a_fitting_sample_stays_close_to_the_whole_map(sample_dir, recipe, tmp_path, seed,
+                                                       monkeypatch):
+    """Fitted on every 2nd spectrum (a strided sample, as on maps larger than memory) and
+    applied to all, against the fit on all spectra. Measured over seeds 0-2 on the blend
+    map (2026-12-02): unmixing and content maps agree to 1e-16 of their 99th percentile
+    (the sample only chooses the baseline order: the same one); the background MCR moves
+    more, since its start is the purest pixels and a sample of 640 spectra misses some:
+    component cosine >= 0.926, class ARI >= 0.496 against the full fit, component images
+    within 9.4 % RMS of their 99th percentile. Asserted with a margin: 1e-9, 0.90, 0.40,
+    0.15."""
     import mapkit.stream as stream
-    from mapkit.preprocess import normalise_map
-    from mapkit.reduce import KMeansClasses, NMFComponents
+    from mapkit.pipeline import Settings
 
-    monkeypatch.setattr(stream, "SAMPLE_PIXELS", 600)   # force the mini-batch refinement
-    out = stream.analyse_large(sample_map_path, tmp_path, recipe=recipe, band_bytes=1 << 20,
-                               progress=False, figures=False)
-    res = {r.name: r for r in out["results"]}
-    clean, _ = recipe.apply(sample_map)
-    nmf = NMFComponents(4).fit(clean)
-    km = KMeansClasses(4).fit(normalise_map(clean))
-    pure = truth["pure_spectra"]
-    cos_stream = _cos(res["nmf"].fields["spectra"].data, pure)
-    cos_memory = _cos(nmf.components_, pure)
-    assert np.all(cos_stream >= cos_memory - 0.01), (cos_stream, cos_memory)
-    good = truth["labels"] >= 0
-    ari_stream = adjusted_rand_score(truth["labels"][good], res["kmeans"].fields["labels"].data[good])
-    ari_memory = adjusted_rand_score(truth["labels"][good], km.labels_[good])
-    assert ari_stream >= ari_memory - 0.01, (ari_stream, ari_memory)
+    mem = _run(sample_dir, tmp_path / "mem", recipe, Settings(seed=seed))
+    monkeypatch.setattr(stream, "SAMPLE_PIXELS", 32 * 40 // 2)
+    smp = _run(sample_dir, tmp_path / "smp", recipe, Settings(seed=seed), block_bytes=1 << 20)
+    assert smp["summary"]["plan"]["sample_stride"] == 2
+    a = {r.name: r for r in mem["results"]}
+    b = {r.name: r for r in smp["results"]}
+
+    def rel_rms(name, field):
+        x, y = a[name].fields[field].data, b[name].fields[field].data
+        return np.sqrt(np.nanmean((y - x) ** 2)) / np.nanpercentile(np.abs(x), 99)
+
+    assert rel_rms("unmixing", "abundance") < 1e-9
+    assert rel_rms("concentration", "concentration") < 1e-9
+    cos = _cos(b["mcr"].fields["spectra"].data, a["mcr"].fields["spectra"].data)
+    assert cos.min() >= 0.90, cos
+    la, lb = a["classes"].fields["labels"].data, b["classes"].fields["labels"].data
+    good = la >= 0
+    assert adjusted_rand_score(la[good], lb[good]) >= 0.40
+    assert rel_rms("mcr", "images") < 0.15
+
+
+def test_nmf_and_kmeans_chunkwise_match_in_memory(sample_dir, recipe, tmp_path):
+    from mapkit.pipeline import Settings
+
+    s = dict(component_method="nmf", class_method="kmeans", n_components=3)
+    mem = _run(sample_dir, tmp_path / "mem", recipe, Settings(**s))
+    chunk = _run(sample_dir, tmp_path / "chunk", recipe, Settings(**s), block_bytes=1 << 20)
+    a = {r.name: r for r in mem["results"]}
+    b = {r.name: r for r in chunk["results"]}
+    np.testing.assert_allclose(b["nmf"].fields["spectra"].data, a["nmf"].fields["spectra"].data,
+                               atol=1e-9)
+    x, y = a["nmf"].fields["images"].data, b["nmf"].fields["images"].data
+    np.testing.assert_allclose(y, x, atol=1e-7 * np.nanmax(x), equal_nan=True)
+    np.testing.assert_array_equal(b["classes"].fields["labels"].data,
+                                  a["classes"].fields["labels"].data)
 
 
 def test_two_worker_cluster_gives_identical_results(sample_map_path, recipe, tmp_path):
     import distributed  # noqa: F401  (a declared dependency: missing must fail, not skip)
-    from mapkit.stream import analyse_large
+    from mapkit.pipeline import analyse
 
-    analyse_large(sample_map_path, tmp_path / "threads", recipe=recipe, band_bytes=1 << 20,
-                  progress=False, figures=False)
-    out = analyse_large(sample_map_path, tmp_path / "cluster", recipe=recipe,
-                        band_bytes=1 << 20, progress=False, figures=False, workers=2)
+    analyse(sample_map_path, tmp_path / "threads", recipe=recipe, block_bytes=1 << 20,
+            progress=False, figures=False)
+    out = analyse(sample_map_path, tmp_path / "cluster", recipe=recipe, block_bytes=1 << 20,
+                  progress=False, figures=False, workers=2)
     assert "LocalCluster" in out["summary"]["scheduler"]
-    with h5py.File(tmp_path / "threads" / "results.h5") as a, \
-            h5py.File(tmp_path / "cluster" / "results.h5") as b:
-        for path in ("/entry/map/intensity", "/entry/results/nmf/images/abundance",
-                     "/entry/results/nmf/spectra/spectrum", "/entry/results/kmeans/labels/labels"):
-            np.testing.assert_array_equal(a[path][...], b[path][...])
+    a, b = _datasets(tmp_path / "threads" / "results.h5"), _datasets(tmp_path / "cluster" /
+                                                                      "results.h5")
+    assert set(a) == set(b)
+    for name in a:
+        np.testing.assert_array_equal(a[name], b[name], err_msg=name)
 
 
 def test_cli_says_which_mode(sample_map_path, tmp_path, capsys, monkeypatch):
     import mapkit.stream as stream
 
     assert main(["analyse", str(sample_map_path), "--out", str(tmp_path / "a"), "--quiet",
-                 "--no-figures", "--components", "3", "--classes", "3"]) == 0
-    assert "mode      in memory" in capsys.readouterr().out
+                 "--no-figures", "--components", "3"]) == 0
+    assert "mode      in memory (the map fits comfortably): one block" in capsys.readouterr().out
     # a machine with little memory: the same command goes chunk-wise by itself
     monkeypatch.setattr(stream, "memory_available", lambda: 10 << 20)
     assert main(["analyse", str(sample_map_path), "--out", str(tmp_path / "b"), "--quiet",
-                 "--no-figures", "--components", "3", "--classes", "3"]) == 0
+                 "--no-figures", "--components", "3"]) == 0
     out = capsys.readouterr().out
     assert "mode      chunk-wise (the cube" in out and "would not fit" in out
+    assert "blocks of" in out and "sample of" not in out   # 3072 spectra: all enter the fit
+    monkeypatch.setattr(stream, "SAMPLE_PIXELS", 1000)
+    assert main(["analyse", str(sample_map_path), "--out", str(tmp_path / "c"), "--quiet",
+                 "--no-figures", "--components", "3"]) == 0
+    out = capsys.readouterr().out
+    assert "estimators fitted on a sample of about" in out and "good pixel in" in out
 
 
-def test_in_memory_path_refuses_a_cube_that_will_not_fit(sample_map_path, tmp_path, monkeypatch):
-    import mapkit.pipeline as pipeline
-    from mapkit import MapkitError
+def test_large_maps_skip_the_long_table_with_a_notice(sample_map_path, tmp_path, monkeypatch):
+    import mapkit.stream as stream
+    from mapkit.pipeline import analyse
 
-    monkeypatch.setattr(pipeline, "_memory_available", lambda: 10 << 20)
-    with pytest.raises(MapkitError, match="GiB to process in memory"):
-        pipeline.analyse(sample_map_path, tmp_path, progress=False)
+    monkeypatch.setattr(stream, "LONG_TABLE_MAX_PIXELS", 1000)
+    out = analyse(sample_map_path, tmp_path, progress=False, figures=False)
+    assert not list(tmp_path.glob("*_maps.csv"))
+    assert any("per-pixel table" in n for n in out["summary"]["notices"])
 
 
-def test_chunkwise_bands_unmixing_and_content_match_in_memory(sample_dir, tmp_path, capsys):
-    import json
+def test_an_interrupted_run_leaves_the_previous_results(sample_map_path, tmp_path, monkeypatch):
+    import mapkit.stream as stream
+    from mapkit.pipeline import analyse
 
-    blend = str(sample_dir / "blend_map.h5")
-    common = ["--library", str(sample_dir / "library"), "--standards",
-              str(sample_dir / "calibration_standards.csv"), "--calibration-model", "quadratic",
-              "--band", "api:845-872", "--recipe", str(sample_dir / "tablet_recipe.toml"),
-              "--quiet", "--no-figures", "--components", "3", "--classes", "3"]
-    assert main(["analyse", blend, "--out", str(tmp_path / "mem"), *common]) == 0
-    assert main(["analyse", blend, "--chunked", "--out", str(tmp_path / "chunk"), *common]) == 0
-    assert "mode      chunk-wise" in capsys.readouterr().out
-    with h5py.File(tmp_path / "mem" / "results.h5") as a, \
-            h5py.File(tmp_path / "chunk" / "results.h5") as b:
-        for path in ("api/image/band_integral",
-                     "concentration/concentration/concentration",
-                     "concentration/concentration/concentration_errors",
-                     "concentration/flags/flags"):
-            x = a[f"/entry/results/{path}"][...]
-            y = b[f"/entry/results/{path}"][...]
-            np.testing.assert_allclose(y, x, rtol=1e-6, atol=1e-9, err_msg=path)
-        # unmixing is not the same method yet: in memory it fits a data-chosen baseline
-        # order on the despiked counts, chunk-wise six fixed terms on the corrected cube;
-        # the two abundance maps must still agree within a few % of the largest abundance
-        # (measured 2026-12-02 on this map: at most 0.75 % of the 99th percentile)
-        x = a["/entry/results/unmixing/abundance/abundance"][...]
-        y = b["/entry/results/unmixing/abundance/abundance"][...]
-        scale = np.nanpercentile(x, 99)
-        diff = np.sqrt(np.nanmean((y - x) ** 2, axis=(1, 2))) / scale
-        assert diff.max() < 0.05, diff
-    summary = json.loads((tmp_path / "chunk" / "summary.json").read_text())
-    assert summary["mode"] == "chunk-wise"
-    assert (tmp_path / "chunk" / "quant_model.json").exists()
+    analyse(sample_map_path, tmp_path, progress=False, figures=False, block_bytes=1 << 20)
+    before = (tmp_path / "results.h5").read_bytes()
+
+    def broken(*a, **k):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(stream.ClassStats, "add", broken)
+    with pytest.raises(KeyboardInterrupt):
+        analyse(sample_map_path, tmp_path, progress=False, figures=False, overwrite=True,
+                block_bytes=1 << 20)
+    assert (tmp_path / "results.h5").read_bytes() == before
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]
 
 
 def test_peak_fit_command_goes_chunkwise_on_a_big_map(sample_map_path, tmp_path, capsys,

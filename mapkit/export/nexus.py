@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import json
 from pathlib import Path
@@ -211,6 +212,20 @@ def write_results_file(path, m: RamanMap, results=(), *, overwrite=False, compre
     optical : PlacedImage, optional
         A micrograph placed on the map (``/entry/optical``, ``/entry/optical_registration``).
     """
+    with results_file(path, m, overwrite=overwrite, inputs=inputs, optical=optical) as f:
+        _write_cube(f, m, compression)
+        for r in results:
+            _write_result(f, r)
+    return Path(path)
+
+
+@contextlib.contextmanager
+def results_file(path, m: RamanMap, *, overwrite=False, inputs: dict | None = None,
+                 optical=None):
+    """Open a new results file atomically and yield it with its entry made; the caller
+    writes the cube (``_write_cube`` or, block by block, ``_write_cube_from``) and the
+    results; the micrograph and the provenance of ``m`` follow on a clean exit. An error
+    leaves any previous file at ``path`` intact."""
     import h5py
 
     recorded = {role: {"path": Path(p).name, "sha256": file_sha256(p)}
@@ -222,13 +237,10 @@ def write_results_file(path, m: RamanMap, results=(), *, overwrite=False, compre
             entry = f.create_group(layout.ENTRY)
             entry.attrs["NX_class"] = "NXentry"
             entry.attrs["default"] = "map"
-            _write_cube(f, m, compression)
-            for r in results:
-                _write_result(f, r)
+            yield f
             if optical is not None:
                 write_optical(f, optical)
             _write_provenance(f, m.provenance, {"inputs": recorded} if recorded else None)
-    return Path(path)
 
 
 def write_map(path, m: RamanMap, *, overwrite=False, compression=None) -> Path:

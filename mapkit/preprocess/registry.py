@@ -212,18 +212,20 @@ def _despike(m, method, threshold, grow=3.0, width=2):
         mask = da.from_array(m.mask[..., None], chunks=m.intensity.chunks[:2] + ((1,),))
         cube = m.intensity.rechunk({2: -1})
 
-        def on_chunk(c, mk, part):   # part 0: cleaned cube, 1: spike flags
-            return _spikes.remove_spatial_spikes(c, mk[..., 0], threshold=threshold,
-                                                 grow=grow)[part]
+        def on_chunk(c, mk):   # the cleaned cube and, as more channels, the spike flags
+            out, fl = _spikes.remove_spatial_spikes(c, mk[..., 0], threshold=threshold,
+                                                    grow=grow)
+            return np.concatenate([out.astype(np.float32), fl.astype(np.float32)], axis=-1)
 
         # each chunk sees a one-pixel halo of its neighbours, so results match the whole map;
-        # the flags are a graph of their own, computed only when someone asks for them
+        # cube and flags come from one run of the kernel per chunk
         depth = {0: 1, 1: 1, 2: 0}
         cube_h = da.overlap.overlap(cube, depth=depth, boundary="none")
         mask_h = da.overlap.overlap(mask, depth=depth, boundary="none")
-        out, flags = (da.overlap.trim_internal(da.map_blocks(on_chunk, cube_h, mask_h, part=k,
-                                                             dtype=t), depth, boundary="none")
-                      for k, t in enumerate((np.float32, bool)))
+        both = da.overlap.trim_internal(
+            da.map_blocks(on_chunk, cube_h, mask_h, dtype=np.float32,
+                          chunks=cube_h.chunks[:2] + ((2 * ns,),)), depth, boundary="none")
+        out, flags = both[..., :ns], both[..., ns:] > 0.5
     else:
         out, flags = _spikes.remove_spatial_spikes(np.asarray(m.intensity), m.mask,
                                                    threshold=threshold, grow=grow)
@@ -259,10 +261,21 @@ def _baseline_step(m, method, **params):
     func = _baseline.METHODS[method]
     shift = m.raman_shift
     if m.is_lazy:
-        def sub(block):
-            return block - func(block, shift, **params)
+        import dask.array as da
 
-        return _spectral(m, "baseline", {"method": method, **params}, sub), {}
+        ns = m.shape[2]
+
+        def sub(block):   # one more channel carries the converged flag: one run gives both
+            info = {}
+            out = np.empty((block.shape[0], ns + 1))
+            out[:, :ns] = block - func(block, shift, info=info, **params)
+            out[:, ns] = info["converged"]
+            return out
+
+        both = map_spectra(m, sub, ns + 1)
+        mask = da.from_array(m.mask, chunks=both.chunks[:2])
+        return (m.derive(both[..., :ns], Step("baseline", {"method": method, **params})),
+                {"converged": (both[..., ns] > 0.5) | mask})
     # in memory: also record which spectra hit max_iter before converging (a quality mask)
     ny, nx, ns = m.shape
     converged = np.ones(ny * nx, bool)

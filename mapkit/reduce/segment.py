@@ -350,10 +350,19 @@ class DominantClasses(_ClassMap):
                                   f"{(self.n_classes, *mp.shape[:2])}", field="images",
                                   fix="give one image per class on the map's grid")
             A = np.nan_to_num(images.reshape(self.n_classes, -1)[:, good])
-        level = np.sort(A, axis=1)[:, -min(max(1, self.n_purest), A.shape[1])]
-        shares = A / np.where(level > 0, level, 1.0)[:, None]
+        shares = self._shares(A)
         self.shares_ = rows_out(shares.T, good, mp)
         return self._store(mp, X, good, np.argmax(shares, axis=0))
+
+    def shares_of(self, images, good):
+        """Each component image over its pure level, at the ``good`` pixels (flat mask):
+        (n_classes, n_good); the class of a pixel is its largest share."""
+        return self._shares(np.nan_to_num(
+            np.asarray(images, float).reshape(self.n_classes, -1)[:, good]))
+
+    def _shares(self, A):
+        level = np.sort(A, axis=1)[:, -min(max(1, self.n_purest), A.shape[1])]
+        return A / np.where(level > 0, level, 1.0)[:, None]
 
 
 def class_domains(labels, pixel_size, *, connectivity: int = 1, n_classes: int | None = None):
