@@ -20,17 +20,19 @@ def good_spectra(m: RamanMap, *, what: str) -> tuple[np.ndarray, np.ndarray]:
 
 
 def to_images(m: RamanMap, values: np.ndarray, good: np.ndarray, fill=np.nan) -> np.ndarray:
-    """Scatter per-good-pixel rows (n_good, k) back into images (k, ny, nx), fill elsewhere."""
-    ny, nx, _ = m.shape
+    """Scatter per-good-pixel rows (n_good, k) back into images (k, *spatial shape), fill
+    elsewhere: (k, ny, nx) for a map, (k, nz, nx) for a section, (k, nz, ny, nx) for a volume."""
+    spatial = m.shape[:-1]
     values = np.asarray(values)
     k = values.shape[1] if values.ndim == 2 else 1
-    out = np.full((ny * nx, k), fill, dtype=np.result_type(values.dtype, np.asarray(fill).dtype))
+    out = np.full((m.n_pixels, k), fill, dtype=np.result_type(values.dtype, np.asarray(fill).dtype))
     out[good] = values.reshape(good.size, k)
-    return out.T.reshape(k, ny, nx)
+    return out.T.reshape(k, *spatial)
 
 
-def image_axes(m: RamanMap) -> tuple[Axis, Axis]:
-    return Axis("y", m.y, "um"), Axis("x", m.x, "um")
+def image_axes(m: RamanMap) -> tuple[Axis, ...]:
+    """The spatial axes of the map's images in µm: (y, x), (z, x) or (z, y, x)."""
+    return tuple(Axis(name, m.coords(name), "um") for name in m.spatial_dims)
 
 
 def shift_axis(m: RamanMap) -> Axis:
