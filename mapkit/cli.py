@@ -681,6 +681,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     cli_reduce.add_parsers(sub, _add_read_options, _band, _positive_int)
     cli_quantify.add_parsers(sub, _add_read_options, _range_arg)
+    from . import cli_depth
+    cli_depth.add_parsers(sub, _add_read_options, _open_kwargs, _band)
 
     pp = sub.add_parser("preprocess", help="clean one map or every map in a folder with a recipe",
                         description="Apply a recipe of cleaning steps and write *_clean.h5 maps.")

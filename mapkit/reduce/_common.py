@@ -43,8 +43,8 @@ def check_components(n: int, m: RamanMap, n_good: int, name="n_components"):
     if not isinstance(n, (int, np.integer)) or n < 1:
         raise MapkitError(f"{name} = {n!r} must be a positive integer", field=name,
                           fix="choose 2-10 for a typical map")
-    limit = min(m.shape[2], n_good)
+    limit = min(m.shape[-1], n_good)
     if n > limit:
-        raise MapkitError(f"{name} = {n} exceeds what the map supports ({m.shape[2]} channels, "
+        raise MapkitError(f"{name} = {n} exceeds what the map supports ({m.shape[-1]} channels, "
                           f"{n_good} good pixels)", file=m.source, field=name,
                           fix=f"choose at most {limit}")

@@ -423,7 +423,7 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
 
     def transform(self, m: RamanMap) -> np.ndarray:
         """Concentration images (n_components, ny, nx) of a map on the same axis."""
-        if m.shape[2] != self.raman_shift_.size or not np.allclose(m.raman_shift,
+        if m.shape[-1] != self.raman_shift_.size or not np.allclose(m.raman_shift,
                                                                     self.raman_shift_):
             raise MapkitError("the map's shift axis differs from the one the model was fitted on",
                               file=m.source, field="raman_shift", fix="fit on this map")

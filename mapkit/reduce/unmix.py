@@ -382,9 +382,9 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
             raise MapkitError("two references share a name", field="references",
                               fix="give every reference a unique name")
         order = check_baseline_order(self.baseline_order)
-        if len(refs) + baseline_terms(order) >= m.shape[2]:
+        if len(refs) + baseline_terms(order) >= m.shape[-1]:
             raise MapkitError(f"{len(refs)} references and the baseline terms need more channels "
-                              f"than the map's {m.shape[2]}", file=m.source, field="references",
+                              f"than the map's {m.shape[-1]}", file=m.source, field="references",
                               fix="use fewer references or a lower baseline order")
         R = np.stack([r.on_axis(m.raman_shift) for r in refs])
         self.resampled_ = any(r.raman_shift.shape != m.raman_shift.shape
@@ -424,7 +424,7 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
         return abundance, rms
 
     def _unmix(self, m: RamanMap):
-        if m.shape[2] != self.raman_shift_.size or not np.allclose(m.raman_shift, self.raman_shift_):
+        if m.shape[-1] != self.raman_shift_.size or not np.allclose(m.raman_shift, self.raman_shift_):
             raise MapkitError("the map's shift axis differs from the one the model was fitted on",
                               file=m.source, field="raman_shift", fix="fit on this map")
         X, good = good_spectra(m, what="unmixing")
