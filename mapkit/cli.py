@@ -348,7 +348,7 @@ def _choose_mode(a, map_path):
         return "--chunked"
     m = open_map(map_path, **_open_kwargs(a)) if hasattr(a, "dataset") else open_map(map_path)
     if not fits_in_memory(m):
-        return (f"the cube ({m.n_pixels * m.shape[2] * 4 / 2**30:.1f} GiB) would not fit "
+        return (f"the cube ({m.n_pixels * m.shape[-1] * 4 / 2**30:.1f} GiB) would not fit "
                 "comfortably in memory")
     return None
 

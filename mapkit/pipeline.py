@@ -182,7 +182,7 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
                                                 "baseline terms"
     axis_notes = []
     recipe.check_axis(raw.raman_shift, need=need, why=why, library=refs, notes=axis_notes)
-    need = raw.n_pixels * raw.shape[2] * 8 * 4  # float64 working copies of the cube
+    need = raw.n_pixels * raw.shape[-1] * 8 * 4  # float64 working copies of the cube
     if need > s.memory_fraction * _memory_available():
         raise MapkitError(f"the map needs about {need / 2**30:.1f} GiB to process in memory",
                           file=map_path, field="intensity",
@@ -256,9 +256,12 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
         results.append(conc)
     bar.update()
 
-    img_axes = (Axis("y", corrected.y, "um"), Axis("x", corrected.x, "um"))
-    ny, nx, ns = corrected.shape
-    snr_img = snr(np.asarray(corrected.intensity, float).reshape(-1, ns)).reshape(ny, nx)
+    from .reduce._common import image_axes
+
+    img_axes = image_axes(corrected)      # (y, x), (z, x) or (z, y, x)
+    ns = corrected.shape[-1]
+    snr_img = snr(np.asarray(corrected.intensity, float).reshape(-1, ns)).reshape(
+        corrected.shape[:-1])
     snr_img[corrected.mask] = np.nan
     quality = {
         "snr": Field("snr", snr_img, img_axes, "", long_name="signal-to-noise ratio"),
@@ -274,12 +277,12 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
         quality_summary["baseline_not_converged"] = int((~conv & ~corrected.mask).sum())
     results.append(Result("quality", "quality", {}, quality, quality_summary))
     spike_summary = {"channels_replaced": 0, "spectra_touched": 0}
-    if spikes is not None and spikes.shape[:2] == corrected.shape[:2]:
+    if spikes is not None and spikes.shape[:-1] == corrected.shape[:-1]:
         spikes = np.asarray(spikes)
         spike_summary = {"channels_replaced": int(spikes.sum()),
                          "spectra_touched": int(spikes.any(axis=-1).sum())}
         spike_axes = img_axes + (Axis("raman_shift", m.raman_shift, "1/cm"),)
-        if spikes.shape[2] == m.raman_shift.size:
+        if spikes.shape[-1] == m.raman_shift.size:
             results.append(Result("spikes", "despike", dict(recipe.steps)["despike"],
                                   {"replaced": Field("replaced", spikes.astype(np.uint8),
                                                      spike_axes, "",

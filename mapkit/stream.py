@@ -39,7 +39,7 @@ def memory_available() -> int:
 
 def fits_in_memory(m, fraction: float = 0.5) -> bool:
     """True when the in-memory path's working copies (≈ 4 float64 cubes) fit comfortably."""
-    return m.n_pixels * m.shape[2] * 8 * 4 <= fraction * memory_available()
+    return m.n_pixels * m.shape[-1] * 8 * 4 <= fraction * memory_available()
 
 
 def band_rows(m, band_bytes: int = BAND_BYTES) -> int:
@@ -124,6 +124,11 @@ def analyse_large(map_path, outdir, *, recipe=None, n_components: int = 4, n_cla
         # tasks of a few MB, read in one call each: file-chunk-sized tasks would drown the
         # work in scheduling overhead
         raw = open_map(map_path, block_bytes=layout.READ_BYTES)
+        if raw.dims != ("y", "x", "raman_shift"):
+            raise MapkitError(f"the chunk-wise path takes (y, x) maps only, this is a {raw.kind}"
+                              f" ({', '.join(raw.spatial_dims)})", file=map_path,
+                              field="intensity", fix="process it in memory: crop the depth "
+                              "range or bin the layers until it fits, and drop --chunked")
         if not raw.is_lazy:
             raise MapkitError("chunk-wise processing needs an HDF5 map", file=map_path,
                               field="intensity", fix="convert the table with 'mapkit convert'")

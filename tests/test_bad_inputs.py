@@ -201,7 +201,19 @@ CASES = [
      "error", "names a depth axis z but no depth dataset"),
     ("depth section read by stated axis order", lambda t: _foreign_section(t, z=np.arange(6) * 2.0),
      "ok", "section z,x"),
+    ("volume on the chunk-wise path", lambda t: (analyse(_volume(t / "v.h5"), "--chunked"), [t / "v.h5"]),
+     "error", "the chunk-wise path takes (y, x) maps only, this is a volume (z, y, x)"),
 ]
+
+
+def _volume(path):
+    """A small (z, y, x, shift) volume in the mapkit layout."""
+    from mapkit import RamanMap
+    from mapkit.export import write_map
+
+    cube = np.random.default_rng(0).poisson(200, (3, 4, 5, SHIFT.size)).astype(np.float32)
+    return write_map(path, RamanMap(cube, raman_shift=SHIFT, x=np.arange(5.0),
+                                    y=np.arange(4.0), z=[0.0, 2.0, 4.0]))
 
 
 def _depth_rows(rows, ncol=4):

@@ -213,6 +213,12 @@ class RamanMap:
         return _step(self.coords(self._dims[-3])), _step(self.x)
 
     @property
+    def spacing(self) -> tuple[float, ...]:
+        """Step in µm along every spatial axis, in cube order ((dy, dx), (dz, dx) or
+        (dz, dy, dx)); 1.0 along an axis with a single position."""
+        return tuple(_step(self.coords(n)) for n in self.spatial_dims)
+
+    @property
     def z_step(self) -> float | None:
         """Depth step in µm (``None`` without a depth axis)."""
         return None if self.z is None else _step(self.z)
