@@ -413,3 +413,26 @@ def test_screenshot_of_the_calibration_panel(make_napari_viewer, sample_map_path
     assert panel.fit_calibration() is not None
     qtbot.wait(300)
     _screenshot(viewer, tmp_path, "viewer_calibration.png")
+
+
+def test_volume_opens_with_a_depth_slider_and_the_spectrum_follows_any_slice(
+        make_napari_viewer, tmp_path):
+    from mapkit import RamanMap
+    from mapkit.export import write_map
+    from mapkit_napari._panel import SpectrumPanel
+
+    rng = np.random.default_rng(0)
+    cube = rng.poisson(100, (3, 4, 5, 30)).astype(np.float32)
+    m = RamanMap(cube, raman_shift=np.linspace(400, 1600, 30), x=np.arange(5) * 0.5,
+                 y=np.arange(4) * 0.5, z=np.array([0.0, 2.0, 4.0]))
+    path = write_map(tmp_path / "vol.h5", m)
+    viewer = make_napari_viewer()
+    (layer,) = viewer.open(str(path), plugin="mapkit-napari")
+    assert layer.data.shape == (3, 4, 5)
+    np.testing.assert_allclose(layer.scale, (2.0, 0.5, 0.5))
+    assert viewer.dims.ndim == 3            # napari shows a slider for the depth axis
+    panel = SpectrumPanel(viewer)
+    viewer.window.add_dock_widget(panel)
+    viewer.cursor.position = (4.0, 1.0, 1.5)          # z = 4 um (slice 2), y = 1, x = 1.5 um
+    np.testing.assert_array_equal(panel.line.get_data()[1], cube[2, 2, 3])
+    assert "z = 4.0 µm" in panel.status.text() and "column 3, row 2" in panel.status.text()

@@ -102,28 +102,36 @@ class SpectrumPanel(QWidget):
         return self._maps[path]
 
     def pixel_at(self, position):
-        """(layer, iy, ix) of the map pixel at a world position, or None outside the map."""
+        """(layer, iy, ix) of the map pixel at a world position, or None outside the map; in a
+        volume (layer, iz, iy, ix), the depth taken from the slice shown."""
         layer = self._map_layer()
         if layer is None:
             return None
-        iy, ix = (int(np.round(v)) for v in layer.world_to_data(position)[-2:])
-        ny, nx = layer.data.shape[-2:]
-        if not (0 <= iy < ny and 0 <= ix < nx):
+        n = layer.data.ndim
+        idx = tuple(int(np.round(v)) for v in layer.world_to_data(position)[-n:])
+        if not all(0 <= i < s for i, s in zip(idx, layer.data.shape)):
             return None
-        return layer, iy, ix
+        return (layer, *idx)
 
-    def spectrum(self, layer, iy, ix):
+    def spectrum(self, layer, *index):
         m = self.map_for(layer)
-        return m.raman_shift, m.spectrum(iy, ix), m
+        return m.raman_shift, m.spectrum(*index), m
+
+    @staticmethod
+    def where(m, index) -> str:
+        """Position of a pixel in words: 'x = 1.0 µm, y = 2.0 µm' (z too in depth maps)."""
+        coords = dict(zip(m.spatial_dims, index))
+        return ", ".join(f"{d} = {m.coords(d)[coords[d]]:.1f} µm" for d in ("x", "y", "z")
+                         if d in coords)
 
     # -- events ---------------------------------------------------------------
     def _on_cursor(self, event=None):
         hit = self.pixel_at(self.viewer.cursor.position)
         if hit is None:
             return
-        layer, iy, ix = hit
-        shift, spec, m = self.spectrum(layer, iy, ix)
-        self.current = (layer, iy, ix)
+        layer, *index = hit
+        shift, spec, m = self.spectrum(layer, *index)
+        self.current = (layer, *index)
         self.line.set_data(shift, spec)
         base = None
         if self.show_baseline.isChecked() or self.show_corrected.isChecked():
@@ -134,9 +142,9 @@ class SpectrumPanel(QWidget):
                                     else ([], []))
         self.corrected_line.set_data((shift, spec - base) if self.show_corrected.isChecked()
                                      else ([], []))
-        flag = "  (masked pixel)" if m.mask[iy, ix] else ""
-        self.status.setText(f"x = {m.x[ix]:.1f} µm, y = {m.y[iy]:.1f} µm  "
-                            f"(column {ix}, row {iy}){flag}")
+        flag = "  (masked pixel)" if m.mask[tuple(index)] else ""
+        self.status.setText(f"{self.where(m, index)}  (column {index[-1]}, row {index[-2]})"
+                            f"{flag}")
         if self._fits_view(shift, spec):
             self._blit()
         else:
@@ -174,12 +182,12 @@ class SpectrumPanel(QWidget):
             if hit is not None:
                 self.pin(*hit)
 
-    def pin(self, layer, iy, ix):
-        shift, spec, m = self.spectrum(layer, iy, ix)
+    def pin(self, layer, *index):
+        shift, spec, m = self.spectrum(layer, *index)
         colour = _PIN_COLOURS[len(self.pinned) % len(_PIN_COLOURS)]
         line, = self.ax.plot(shift, spec, color=colour, lw=1.0,
-                             label=f"pinned x={m.x[ix]:.1f}, y={m.y[iy]:.1f} µm")
-        self.pinned.append((layer.name, iy, ix, line))
+                             label=f"pinned {self.where(m, index).replace(' µm', '')} µm")
+        self.pinned.append((layer.name, *index, line))
         self._redraw()
 
     def clear_pinned(self):
