@@ -436,3 +436,27 @@ def test_volume_opens_with_a_depth_slider_and_the_spectrum_follows_any_slice(
     viewer.cursor.position = (4.0, 1.0, 1.5)          # z = 4 um (slice 2), y = 1, x = 1.5 um
     np.testing.assert_array_equal(panel.line.get_data()[1], cube[2, 2, 3])
     assert "z = 4.0 µm" in panel.status.text() and "column 3, row 2" in panel.status.text()
+
+
+def test_depth_profile_of_a_clicked_point(make_napari_viewer, tmp_path):
+    from mapkit.export import write_results_file
+    from mapkit.reduce.unmix import ReferenceUnmixing
+    from mapkit.scenes import make_film_section
+    from mapkit_napari._panel import SpectrumPanel
+
+    s = make_film_section(0)
+    m = s.to_map()
+    result = ReferenceUnmixing(s.references(), baseline_order=1).fit(m).result(m)
+    path = write_results_file(tmp_path / "film.h5", m, [result])
+    viewer = make_napari_viewer()
+    viewer.open(str(path), plugin="mapkit-napari")
+    panel = SpectrumPanel(viewer)
+    viewer.window.add_dock_widget(panel)
+    viewer.layers.selection.active = viewer.layers[0]
+    viewer.cursor.position = (m.z[20], m.x[4])
+    profile, interfaces = panel.plot_depth_profile()
+    np.testing.assert_allclose(profile.values, result.fields["abundance"].data[:, :, 4])
+    assert profile.names == tuple(result.fields["abundance"].axes[0].values)
+    assert any(abs(i.z - s.truth["interface"]) < 0.5 for i in interfaces)
+    assert panel.depth_canvas.isVisible() or not panel.isVisible()
+    assert "apparent" in panel.status.text()

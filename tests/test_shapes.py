@@ -274,3 +274,19 @@ def test_cli_on_depth_maps(tmp_path, capsys, kind):
     csv = (tmp_path / "o" / f"{kind}_maps.csv").read_text().splitlines()
     assert csv[1].startswith("x [um],y [um],z [um]" if kind == "volume" else "x [um],z [um]")
     assert len(csv) == 2 + m.n_pixels
+
+
+def test_cli_spectrum_of_a_voxel(tmp_path, capsys):
+    from mapkit.cli import main
+    from mapkit.export import write_map
+
+    m, _ = make("volume")
+    path = write_map(tmp_path / "v.h5", m)
+    assert main(["spectrum", str(path), "--at", "3", "1", "2"]) == 0     # x y z in um
+    out = capsys.readouterr().out.splitlines()
+    assert out[0] == "# pixel x=3 um, y=1 um, z=2 um (column 3, row 1)"
+    values = [float(line.split(",")[1]) for line in out[2:]]
+    np.testing.assert_allclose(values, m.intensity[1, 1, 3], rtol=1e-5)
+    assert main(["spectrum", str(path), "--at", "3", "1"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "this volume needs X Y Z" in err[0]
