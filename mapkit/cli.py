@@ -359,7 +359,13 @@ def cmd_spectrum(a):
     from .read import open_map
 
     m = open_map(a.map, **_open_kwargs(a))
-    for name, want, axis in (("x", a.at[0], m.x), ("y", a.at[1], m.y)):
+    names = ("x",) + tuple(d for d in m.spatial_dims[::-1] if d != "x")   # x y, x z, x y z
+    if len(a.at) != len(names):
+        raise MapkitError(f"--at gives {len(a.at)} values, this {m.kind} needs "
+                          f"{' '.join(n.upper() for n in names)}", file=a.map, field="--at",
+                          fix=f"give {' '.join(n.upper() for n in names)} in um")
+    for name, want in zip(names, a.at):
+        axis = m.coords(name)
         # a pixel covers half a step on each side of its position: beyond that is outside
         half = 0.5 * float(np.median(np.abs(np.diff(axis)))) if axis.size > 1 else 0.5
         lo, hi = float(axis.min()) - half, float(axis.max()) + half
@@ -367,11 +373,13 @@ def cmd_spectrum(a):
             raise MapkitError(f"{name} = {want:g} um lies outside the map ({name} "
                               f"{axis.min():g} to {axis.max():g} um)", file=a.map, field="--at",
                               fix=f"give a position from {lo:g} to {hi:g} um")
-    ix = int(np.argmin(np.abs(m.x - a.at[0])))
-    iy = int(np.argmin(np.abs(m.y - a.at[1])))
-    s = m.spectrum(iy, ix)
+    want = dict(zip(names, a.at))
+    index = tuple(int(np.argmin(np.abs(m.coords(d) - want[d]))) for d in m.spatial_dims)
+    s = m.spectrum(*index)
     _print_notes(m, prefix="# notice: ")
-    print(f"# pixel x={m.x[ix]:g} um, y={m.y[iy]:g} um (column {ix}, row {iy})")
+    where = ", ".join(f"{d}={m.coords(d)[i]:g} um" for d, i in
+                      sorted(zip(m.spatial_dims, index), key=lambda t: "xyz".index(t[0])))
+    print(f"# pixel {where} (column {index[-1]}, row {index[-2]})")
     print("raman_shift_cm-1,intensity")
     for sh, v in zip(m.raman_shift, s):
         print(f"{sh:.3f},{v:.6g}")
@@ -504,9 +512,10 @@ def build_parser() -> argparse.ArgumentParser:
 
     s = sub.add_parser("spectrum", help="print one pixel's spectrum as CSV")
     s.add_argument("map", help="map file")
-    s.add_argument("--at", nargs=2, type=float, metavar=("X_UM", "Y_UM"), required=True,
-                   help="stage position in um (nearest pixel; a position more than half a "
-                        "pixel outside the map is an error)")
+    s.add_argument("--at", nargs="+", type=float, metavar="UM", required=True,
+                   help="stage position X Y in um (a depth section: X Z; a volume: X Y Z; "
+                        "nearest pixel; a position more than half a pixel outside the map is "
+                        "an error)")
     _add_read_options(s)
     s.set_defaults(func=cmd_spectrum)
 
@@ -514,6 +523,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     cli_reduce.add_parsers(sub, _add_read_options, _band, _positive_int)
     cli_quantify.add_parsers(sub, _add_read_options, _range_arg)
+    from . import cli_depth
+    cli_depth.add_parsers(sub, _add_read_options, _open_kwargs, _band)
 
     pp = sub.add_parser("preprocess", help="clean one map or every map in a folder with a recipe",
                         description="Apply a recipe of cleaning steps and write *_clean.h5 maps.")

@@ -61,6 +61,9 @@ def _add_read_options(p, laser: bool = True):
     g.add_argument("--x", dest="x_path", help="path of the x positions dataset (um; one per "
                                               "column, or one per spectrum of a 2-D stack)")
     g.add_argument("--y", dest="y_path", help="path of the y positions dataset (um)")
+    g.add_argument("--z-dataset", dest="z_path", help="path of the nominal depths dataset (um) "
+                                                      "of a depth section or volume (--axes "
+                                                      "naming z)")
     g.add_argument("--pixel-size", type=float, help="step in um when no position datasets exist")
     p.add_argument("--position-tolerance", type=float, metavar="UM",
                    help="text tables and 2-D stacks: snap positions that jitter by up to UM "
@@ -77,7 +80,8 @@ def _open_kwargs(a) -> dict:
     # every command is a pass over whole maps: read them in blocks, not pixel tiles
     return {"dataset": a.dataset, "axes": a.axes, "shift": a.shift_path, "x": a.x_path,
             "y": a.y_path, "pixel_size": a.pixel_size, "laser_wavelength": a.laser,
-            "position_tolerance": a.position_tolerance, "block_bytes": layout.READ_BYTES}
+            "position_tolerance": a.position_tolerance, "block_bytes": layout.READ_BYTES,
+            "z": getattr(a, "z_path", None)}
 
 
 def _print_notes(m, prefix="notice    ", file=None):

@@ -75,8 +75,10 @@ def cmd_classes(a):
     res = run_method(m, a.method, n=a.n, seed=a.seed, library=library, smooth=a.smooth,
                      min_score=a.min_score)[0]
     for name, v in res.summary["areas"].items():
-        lines.append(f"{name}: {v['fraction_pct']:.1f} % ({v['area_um2']:.0f} um2), "
-                     f"{v['domains']} domains, median ECD {v.get('ecd_median_um', 0):.1f} um")
+        size, d = ((f"{v['area_um2']:.0f} um2", "ECD") if "area_um2" in v else
+                   (f"{v['volume_um3']:.0f} um3", "ESD"))   # a volume: 3-D domains
+        lines.append(f"{name}: {v['fraction_pct']:.1f} % ({size}), {v['domains']} domains, "
+                     f"median {d} {v.get(d.lower() + '_median_um', 0):.1f} um")
     return _write(a, m, [res], lines + _identified(res))
 
 

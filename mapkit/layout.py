@@ -17,7 +17,10 @@ OPTICAL = "/entry/optical"
 OPTICAL_REGISTRATION = "/entry/optical_registration"
 
 AXES = ("y", "x", "raman_shift")
-AXIS_UNITS = {"y": "um", "x": "um", "raman_shift": "1/cm"}
+#: a depth section (rows are nominal depths) and a volume; ``/entry/map/z`` holds the depths
+SECTION_AXES = ("z", "x", "raman_shift")
+VOLUME_AXES = ("z", "y", "x", "raman_shift")
+AXIS_UNITS = {"z": "um", "y": "um", "x": "um", "raman_shift": "1/cm"}
 
 #: Target size of one HDF5 chunk of the cube. Chunks always hold whole
 #: spectra, so reading one pixel touches one chunk.
@@ -28,6 +31,19 @@ CHUNK_CACHE_BYTES = 64 << 20
 #: HDF5 call per block; 2.2x faster than chunk-sized tasks, benchmarks/RESULTS.md).
 #: The viewer keeps chunk-sized reads: a cursor touches one chunk, not a block.
 READ_BYTES = 8 << 20
+
+
+def cube_tile(shape, itemsize: int = 4) -> tuple[int, ...]:
+    """HDF5 chunk shape of a 3-D cube, or of a volume (one depth layer deep).
+
+    Examples
+    --------
+    >>> cube_tile((4, 48, 64, 600))
+    (1, 16, 16, 600)
+    """
+    if len(shape) == 4:
+        return (1,) + pixel_tile(*shape[1:], itemsize=itemsize)
+    return pixel_tile(*shape, itemsize=itemsize)
 
 
 def pixel_tile(ny: int, nx: int, n_shift: int, itemsize: int = 4) -> tuple[int, int, int]:

@@ -186,7 +186,7 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     plan = stream.plan_blocks(raw, memory_fraction=s.memory_fraction, chunked=chunked,
                               block_bytes=block_bytes, cluster=bool(workers or address))
     if plan.chunked and not raw.is_lazy and not stream.fits_in_memory(raw, s.memory_fraction):
-        raise MapkitError(f"the map needs about {raw.n_pixels * raw.shape[2] * 32 / 2**30:.1f} "
+        raise MapkitError(f"the map needs about {raw.n_pixels * raw.shape[-1] * 32 / 2**30:.1f} "
                           "GiB to process in memory and only an HDF5 map can be processed "
                           "chunk by chunk", file=map_path, field="intensity",
                           fix=f"convert it first: mapkit convert {map_path} map.h5")
@@ -287,6 +287,7 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
     from .read.dispatch import read_notes
     from .reduce import BackgroundMCR, DominantClasses, KMeansClasses, NMFComponents
     from .reduce import ReferenceUnmixing, band_image
+    from .reduce._common import image_axes
 
     bar = tqdm(total=3 * plan.n_blocks + 2, desc="mapkit", unit="step",
                disable=not progress, leave=False)
@@ -311,10 +312,11 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                                                        {"nonfinite": 0, "dead": 0, "saturated": 0})
     spikes = extras.get("despike", {}).get("spikes")
     conv = extras.get("baseline", {}).get("converged")
-    ny, nx, ns = corrected.shape
-    if spikes is not None and tuple(spikes.shape) != (ny, nx, ns):
+    grid, ns = corrected.shape[:-1], corrected.shape[-1]   # (y, x), (z, x) or (z, y, x)
+    ny, n_pixels = grid[0], int(np.prod(grid))
+    if spikes is not None and tuple(spikes.shape) != corrected.shape:
         spikes = None          # a later step changed the grid or the axis
-    if conv is not None and tuple(conv.shape) != (ny, nx):
+    if conv is not None and tuple(conv.shape) != grid:
         conv = None
     mask = corrected.mask
     n_good = int((~mask).sum())
@@ -345,9 +347,9 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                                 **({"optical": optical} if optical is not None else {})})
     final = corrected.derive(corrected.intensity, run_step)
     inputs = _inputs(map_path, standards, optical, placed)
-    snr_img = np.full((ny, nx), np.nan)
-    conv_img = np.ones((ny, nx), bool)
-    record = stream.SpikeRecord(ny, nx)
+    snr_img = np.full(grid, np.nan)
+    conv_img = np.ones(grid, bool)
+    record = stream.SpikeRecord(grid)
     rng = np.random.default_rng(s.seed)
     sample_c, sample_k = [], []
     scratch = outdir / f".{Path(map_path).stem}.background.part.h5"
@@ -368,7 +370,7 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                     flat = c.reshape(-1, ns)
                     snr_blk = np.full(g.size, np.nan)
                     snr_blk[g] = snr(flat[g])
-                    snr_img[y0:y0 + rows] = snr_blk.reshape(rows, nx)
+                    snr_img[y0:y0 + rows] = snr_blk.reshape((rows,) + grid[1:])
                     if cv is not None:
                         conv_img[y0:y0 + rows] = cv
                     if sp is not None:
@@ -387,8 +389,9 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
             store_c = stream.BlockStore(one, write=False)   # multi-block: the results cube
             store_k = stream.BlockStore(one or same, None if one or same else
                                         scratch_file.create_dataset(
-                                            "background", shape=(ny, nx, ns), dtype="float32",
-                                            chunks=layout.pixel_tile(ny, nx, ns)))
+                                            "background", shape=corrected.shape,
+                                            dtype="float32",
+                                            chunks=layout.pixel_tile(*corrected.shape)))
             store_c.dataset = _write_cube_from(f, corrected, cleaned())
             # fit: on the whole map (one block, no sample) or on the sample
             if stride == 1 and plan.n_blocks == 1:
@@ -431,8 +434,8 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
             stage("fit")
             lap("fit")
             # pass 2: apply the fitted estimators block by block
-            images = np.full((s.n_components, ny, nx), np.nan)
-            labels = np.full((ny, nx), -1, np.int16)
+            images = np.full((s.n_components, *grid), np.nan)
+            labels = np.full(grid, -1, np.int16)
             band_parts = {name: [] for name, _, _ in s.bands}
             unmix_parts, conc_parts = [], []
             for y0 in plan.starts:
@@ -467,12 +470,12 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
             if s.class_method == "dominant":
                 cls = DominantClasses(n_classes=s.n_components)
                 shares = cls.shares_of(images, good)
-                lab = np.full(ny * nx, -1, np.int16)
+                lab = np.full(n_pixels, -1, np.int16)
                 lab[good] = np.argmax(shares, axis=0)
-                labels = lab.reshape(ny, nx)
-                sh = np.full((s.n_components, ny * nx), np.nan)
+                labels = lab.reshape(grid)
+                sh = np.full((s.n_components, n_pixels), np.nan)
                 sh[:, good] = shares
-                cls.shares_ = sh.reshape(s.n_components, ny, nx)
+                cls.shares_ = sh.reshape(s.n_components, *grid)
             else:
                 cls = km
             stats = stream.ClassStats(n_cls, ns)
@@ -495,9 +498,8 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
             if model is not None:
                 x0 = np.concatenate([p.fields["concentration"].data for p in conc_parts])
                 sx0 = np.concatenate([p.fields["concentration"].errors for p in conc_parts])
-                conc = concentration_map(x0, sx0, model.calibration,
-                                         (Axis("y", corrected.y, "um"),
-                                          Axis("x", corrected.x, "um")), mask=mask)
+                conc = concentration_map(x0, sx0, model.calibration, image_axes(corrected),
+                                         mask=mask)
                 conc.summary["response"] = model.response.to_dict()
                 region_masks = class_regions(labels, list(km_result.summary["areas"]))
                 for name, verts in (regions or {}).items():
@@ -506,7 +508,7 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                                                             conc.fields["flags"].data,
                                                             region_masks)
                 results.append(conc)
-            img_axes = (Axis("y", corrected.y, "um"), Axis("x", corrected.x, "um"))
+            img_axes = image_axes(corrected)
             snr_img[mask] = np.nan
             quality = {
                 "snr": Field("snr", snr_img, img_axes, "", long_name="signal-to-noise ratio"),
@@ -534,9 +536,9 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                 scratch.unlink()
     bar.close()
     notices = notices + read_notes(raw)
-    csv = ny * nx <= stream.LONG_TABLE_MAX_PIXELS
+    csv = n_pixels <= stream.LONG_TABLE_MAX_PIXELS
     if not csv:
-        notices.append(f"the per-pixel table ({ny * nx} pixels) is not written above "
+        notices.append(f"the per-pixel table ({n_pixels} pixels) is not written above "
                        f"{stream.LONG_TABLE_MAX_PIXELS} pixels; every map is in results.h5 "
                        "and the TIFFs")
     lap("write results file")

@@ -346,3 +346,78 @@ def scene_family(seeds=(0, 1, 2), kinds=None, shape=(48, 56)):
     for kind in kinds or KINDS:
         for seed in seeds:
             yield make_scene(kind, seed, shape)
+
+
+@dataclass
+class FilmSection:
+    """An invented depth section (z, x) of a coated film and its truth (nominal depths, µm).
+
+    ``truth``: ``pure_spectra`` (2, n), ``abundance`` (2, nz, nx) (the blurred, attenuated
+    layer indicators the counts were made from), ``surface`` and ``interface`` (nominal
+    depths of the top of the coating and of the coating/substrate boundary), ``thickness``
+    (their difference), ``blur_sigma`` (Gaussian depth response, µm).
+    """
+
+    seed: int
+    counts: np.ndarray
+    raman_shift: np.ndarray
+    z: np.ndarray
+    x: np.ndarray
+    names: tuple
+    truth: dict = field(repr=False)
+    laser_nm: float = 532.0
+
+    def to_map(self):
+        from .core.provenance import Step
+        from .core.ramanmap import RamanMap
+
+        return RamanMap(self.counts, raman_shift=self.raman_shift, x=self.x, y=[0.0], z=self.z,
+                        laser_wavelength=self.laser_nm,
+                        provenance=(Step("synthesise", {"scene": "film section",
+                                                        "seed": self.seed,
+                                                        "scenario": "invented"},
+                                         timestamp="2026-12-02T00:00:00+00:00"),))
+
+    def references(self):
+        """The true pure spectra as :class:`~mapkit.read.Spectrum` references."""
+        from .read.reference import Spectrum
+
+        return [Spectrum(n, self.raman_shift, s) for n, s in zip(self.names,
+                                                                  self.truth["pure_spectra"])]
+
+
+def make_film_section(seed: int = 0, *, thickness: float | None = None,
+                      blur_sigma: float = 1.2, z_step: float = 0.5, z_range=(-4.0, 18.0),
+                      nx: int = 10, level: float = 400.0, attenuation_um: float = 60.0,
+                      materials=("polystyrene", "pmma")) -> FilmSection:
+    """An invented coating (``materials[0]``) on a substrate (``materials[1]``), scanned in depth.
+
+    The coating starts at the surface (nominal depth 0) and is ``thickness`` µm thick
+    (default: drawn from 4-8 µm, off the depth grid); the signal fades with depth as
+    exp(-z / ``attenuation_um``) and is blurred along z by a Gaussian of ``blur_sigma``;
+    counts are Poisson with a flat fluorescence background and a detector offset.
+    Everything is invented.
+    """
+    rng = np.random.default_rng([seed, 17])
+    if thickness is None:
+        thickness = float(rng.uniform(4.0, 8.0))
+    z = np.arange(z_range[0], z_range[1] + z_step / 2, z_step)
+    shift = np.linspace(500.0, 1800.0, 320)
+    pure = np.stack([pure_spectrum(n, shift, level * st) for n, st in zip(materials, (1.0, 0.8))])
+    # the layer indicators on a fine grid, attenuated, then blurred by the depth response
+    fine = np.arange(z_range[0] - 6 * blur_sigma, z_range[1] + 6 * blur_sigma, 0.01)
+    fade = np.where(fine > 0, np.exp(-np.clip(fine, 0, None) / attenuation_um), 0.0)
+    ind = np.stack([(fine >= 0) & (fine < thickness), fine >= thickness]).astype(float) * fade
+    kernel = np.exp(-0.5 * (np.arange(-600, 601) * 0.01 / blur_sigma) ** 2)
+    kernel /= kernel.sum()
+    blurred = np.stack([np.convolve(row, kernel, mode="same") for row in ind])
+    prof = np.stack([np.interp(z, fine, row) for row in blurred])          # (2, nz)
+    gain = 1.0 + 0.05 * rng.standard_normal(nx)                            # lateral variation
+    abundance = prof[:, :, None] * gain[None, None, :]                     # (2, nz, nx)
+    raman = np.einsum("kzx,ks->zxs", abundance, pure)
+    background = 0.5 * level * (1.0 + 0.3 * np.linspace(0, 1, shift.size)) + 30.0
+    counts = rng.poisson(raman + background).astype(np.float32)
+    truth = {"pure_spectra": pure, "abundance": abundance, "surface": 0.0,
+             "interface": float(thickness), "thickness": float(thickness),
+             "blur_sigma": float(blur_sigma)}
+    return FilmSection(seed, counts, shift, z, np.arange(nx) * 1.0, tuple(materials), truth)

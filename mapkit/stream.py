@@ -42,13 +42,13 @@ def memory_available() -> int:
 
 def fits_in_memory(m, fraction: float = 0.5) -> bool:
     """True when the in-memory path's working copies (≈ 4 float64 cubes) fit comfortably."""
-    return m.n_pixels * m.shape[2] * 8 * WORKING_COPIES <= fraction * memory_available()
+    return m.n_pixels * m.shape[-1] * 8 * WORKING_COPIES <= fraction * memory_available()
 
 
 def band_rows(m, band_bytes: int = BAND_BYTES) -> int:
-    ny, nx, ns = m.shape
+    per_row = int(np.prod(m.shape[1:]))     # values in one row (one depth of a volume)
     tile = m.intensity.chunks[0][0] if m.is_lazy else 1
-    rows = max(1, band_bytes // max(1, nx * ns * 8))
+    rows = max(1, band_bytes // max(1, per_row * 8))
     return int(max(tile, (rows // tile) * tile)) if rows >= tile else int(rows)
 
 
@@ -130,7 +130,7 @@ def plan_blocks(m, *, memory_fraction: float = 0.5, chunked: bool = False,
     ``memory_fraction`` of the available memory, else bands of ``block_bytes`` of float64
     each (:data:`BAND_BYTES`). ``chunked``, ``cluster`` (a Dask cluster was asked for) or an
     explicit ``block_bytes`` force the chunk-wise cleaning."""
-    ny, nx, ns = m.shape
+    ny, ns = m.shape[0], m.shape[-1]
     if cluster:
         reason = "a Dask cluster was asked for"
     elif chunked:
@@ -142,6 +142,11 @@ def plan_blocks(m, *, memory_fraction: float = 0.5, chunked: bool = False,
                   "comfortably in memory")
     else:
         return BlockPlan(ny, [0], False, "the map fits comfortably")
+    if m.spatial_dims != ("y", "x"):
+        raise MapkitError(f"the chunk-wise path takes (y, x) maps only, this is a {m.kind} "
+                          f"({', '.join(m.spatial_dims)})", file=m.source, field="intensity",
+                          fix="process it in memory: crop the depth range or bin the layers "
+                              "until it fits, and drop --chunked")
     # a band is at most BAND_BYTES, less on a machine with little memory to spare
     budget = max(1 << 20, int(memory_fraction * memory_available()) // 16)
     rows = band_rows(m, block_bytes or min(BAND_BYTES, budget))
@@ -152,6 +157,8 @@ def block_map(m, intensity, y0: int):
     """The rows ``y0:y0 + len(intensity)`` of map ``m`` as a map in memory."""
     from dataclasses import replace
 
+    if y0 == 0 and intensity.shape[0] == m.shape[0]:   # the whole map (any spatial shape)
+        return replace(m, intensity=intensity)
     y1 = y0 + intensity.shape[0]
     return replace(m, intensity=intensity, y=m.y[y0:y1], mask=m.mask[y0:y1])
 
@@ -193,6 +200,8 @@ def stitch(parts, m, *, sum_keys=()):
     import dataclasses
 
     first = parts[0]
+    if len(parts) == 1:       # one block: the whole map, whatever its spatial axes
+        return first
     y = Axis("y", m.y, "um")
     fields = {}
     for name, fld in first.fields.items():
@@ -245,6 +254,7 @@ class ClassStats:
                                  np.sqrt(self.m2 / np.maximum(self.n, 1)[:, None]))
         est.area_fraction_ = self.n / max(int(self.n.sum()), 1)
         est.pixel_size_ = m.pixel_size
+        est.spacing_ = m.spacing
         return est
 
 
@@ -253,19 +263,23 @@ class SpikeRecord:
     (channels replaced per pixel) and the (row, column, channel) index of every replaced
     channel, instead of a one-byte flag per value of the cube."""
 
-    def __init__(self, ny, nx):
-        self.count = np.zeros((ny, nx), np.uint16)
+    def __init__(self, shape):
+        self.count = np.zeros(tuple(shape), np.uint16)   # the spatial shape of the map
         self.where = []
 
     def add(self, y0, flags):
         flags = np.asarray(flags, bool)
         self.count[y0:y0 + flags.shape[0]] = flags.sum(axis=-1)
-        iy, ix, ic = np.nonzero(flags)
-        self.where.append(np.stack([iy + y0, ix, ic], axis=1).astype(np.int32))
+        index = list(np.nonzero(flags))
+        index[0] = index[0] + y0
+        self.where.append(np.stack(index, axis=1).astype(np.int32))
 
     def result(self, m, parameters):
-        idx = np.concatenate(self.where) if self.where else np.zeros((0, 3), np.int32)
-        yx = (Axis("y", m.y, "um"), Axis("x", m.x, "um"))
+        from .reduce._common import image_axes
+
+        idx = np.concatenate(self.where) if self.where else \
+            np.zeros((0, self.count.ndim + 1), np.int32)
+        yx = image_axes(m)
         summary = {"channels_replaced": int(idx.shape[0]),
                    "spectra_touched": int((self.count > 0).sum())}
         fields = {
@@ -273,8 +287,9 @@ class SpikeRecord:
                            long_name="channels replaced as cosmic-ray spikes"),
             "replaced": Field("replaced", idx,
                               (Axis("spike", np.arange(idx.shape[0])),
-                               Axis("index", np.array(["y", "x", "raman_shift"]))), "",
-                              long_name="row, column and channel of each replaced channel"),
+                               Axis("index", np.array(list(m.dims)))), "",
+                              long_name="position (cube order) and channel of each replaced "
+                                        "channel"),
             "raman_shift": Field("raman_shift", m.raman_shift,
                                  (Axis("channel", np.arange(m.raman_shift.size)),), "1/cm",
                                  long_name="Raman shift of each channel")}

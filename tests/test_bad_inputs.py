@@ -190,7 +190,51 @@ CASES = [
                                                              [t / "a.csv"]), "ok", "of 4 positions to a 2 x 2 grid (largest offset"),
     ("2-D stack without positions", lambda t: _foreign(t, stack=True), "error",
      "needs the position of each spectrum"),
+    # depth sections and volumes
+    ("z column that does not form a grid", lambda t: (["info", str(_table(t / "a.csv", _depth_rows(((0, 0), (1, 0), (0, 2)))))], [t / "a.csv"]),
+     "error", "z: the z values do not form a grid: position x=1, y=0 has no spectrum at z=2"),
+    ("repeated z values in a table", lambda t: (["info", str(_table(t / "a.csv", _depth_rows(((0, 0), (1, 0), (0, 2), (1, 2), (1, 2)))))], [t / "a.csv"]),
+     "error", "appears more than once: a depth value repeats"),
+    ("repeated z values in a depth dataset", lambda t: _foreign_section(t, z=[0.0, 2.0, 2.0, 4.0, 6.0, 8.0]),
+     "error", "/depth: axis has a duplicated value 2"),
+    ("depth section without its depth dataset", lambda t: _foreign_section(t, z=None),
+     "error", "names a depth axis z but no depth dataset"),
+    ("depth section read by stated axis order", lambda t: _foreign_section(t, z=np.arange(6) * 2.0),
+     "ok", "section z,x"),
+    ("volume on the chunk-wise path", lambda t: (analyse(_volume(t / "v.h5"), "--chunked"), [t / "v.h5"]),
+     "error", "the chunk-wise path takes (y, x) maps only, this is a volume (z, y, x)"),
 ]
+
+
+def _volume(path):
+    """A small (z, y, x, shift) volume in the mapkit layout."""
+    from mapkit import RamanMap
+    from mapkit.export import write_map
+
+    cube = np.random.default_rng(0).poisson(200, (3, 4, 5, SHIFT.size)).astype(np.float32)
+    return write_map(path, RamanMap(cube, raman_shift=SHIFT, x=np.arange(5.0),
+                                    y=np.arange(4.0), z=[0.0, 2.0, 4.0]))
+
+
+def _depth_rows(rows, ncol=4):
+    """A wide table with x and z columns (a depth section) at the given (x, z) positions."""
+    head = "x,z," + ",".join(str(100 + 10 * i) for i in range(ncol))
+    body = [f"{x},{z}," + ",".join(f"{i}.5" for i in range(ncol)) for x, z in rows]
+    return "\n".join([head] + body) + "\n"
+
+
+def _foreign_section(t, z):
+    """A (z, raman_shift, x) cube in a foreign HDF5 file, read with --axes and --z-dataset."""
+    cube = np.moveaxis(_cube(), 1, 2)            # (6, 60, 7)
+    with h5py.File(t / "f.h5", "w") as f:
+        f["data"] = cube
+        f["shift"] = SHIFT
+        if z is not None:
+            f["depth"] = np.asarray(z, float)
+            f["depth"].attrs["units"] = "um"
+    more = [] if z is None else ["--z-dataset", "/depth"]
+    return (["info", str(t / "f.h5"), "--dataset", "/data", "--axes", "z,raman_shift,x",
+             "--shift-dataset", "/shift", "--pixel-size", "1", *more], [t / "f.h5"])
 
 
 def _foreign(t, units=None, shift=SHIFT, axes="y,x,raman_shift", positions=False, stack=False,

@@ -102,3 +102,27 @@ def test_outputs_are_atomic_and_not_overwritten(tmp_path, m):
     assert [q.name for q in tmp_path.iterdir()] == ["a.h5"], "no temporary file left behind"
     with pytest.raises(MapkitError, match="directory"):
         write_map(tmp_path, m)
+
+
+def test_documented_depth_layout(tmp_path):
+    """The section and volume rows of docs/file-layout.md, read back with plain h5py."""
+    rng = np.random.default_rng(2)
+    shift = np.linspace(200, 1800, 11)
+    sec = RamanMap(rng.random((4, 7, 11)).astype(np.float32), raman_shift=shift,
+                   x=np.arange(7) * 0.5, y=[3.0], z=np.arange(4) * 2.0)
+    vol = RamanMap(rng.random((3, 5, 7, 11)).astype(np.float32), raman_shift=shift,
+                   x=np.arange(7) * 0.5, y=np.arange(5) * 0.5, z=np.arange(3) * 2.0)
+    for m, axes in ((sec, ["z", "x", "raman_shift"]), (vol, ["z", "y", "x", "raman_shift"])):
+        p = write_map(tmp_path / f"{m.kind}.h5", m, overwrite=True)
+        with h5py.File(p, "r") as f:
+            g = f["/entry/map"]
+            assert list(g.attrs["axes"]) == axes
+            for i, a in enumerate(axes):
+                assert g.attrs[f"{a}_indices"] == i
+            assert g["z"].attrs["units"] == "um" and "apparent" in g["z"].attrs["long_name"]
+            assert g["intensity"].shape == m.shape and g["mask"].shape == m.shape[:-1]
+            assert g["y"].shape == (m.y.size,)
+            if m.kind == "volume":
+                assert g["intensity"].chunks[0] == 1, "a volume is chunked one layer deep"
+    with h5py.File(tmp_path / "section.h5", "r") as f:
+        assert f["/entry/map/y"].shape == (1,)

@@ -473,3 +473,48 @@ def test_small_map_and_no_event_loop_give_the_exact_mean_at_once(make_napari_vie
     assert kind == "image" and kw["metadata"]["mapkit_mean"] == "exact"
     np.testing.assert_allclose(data, exact, rtol=1e-6)
     assert not _refine._RUNNING
+def test_volume_opens_with_a_depth_slider_and_the_spectrum_follows_any_slice(
+        make_napari_viewer, tmp_path):
+    from mapkit import RamanMap
+    from mapkit.export import write_map
+    from mapkit_napari._panel import SpectrumPanel
+
+    rng = np.random.default_rng(0)
+    cube = rng.poisson(100, (3, 4, 5, 30)).astype(np.float32)
+    m = RamanMap(cube, raman_shift=np.linspace(400, 1600, 30), x=np.arange(5) * 0.5,
+                 y=np.arange(4) * 0.5, z=np.array([0.0, 2.0, 4.0]))
+    path = write_map(tmp_path / "vol.h5", m)
+    viewer = make_napari_viewer()
+    (layer,) = viewer.open(str(path), plugin="mapkit-napari")
+    assert layer.data.shape == (3, 4, 5)
+    np.testing.assert_allclose(layer.scale, (2.0, 0.5, 0.5))
+    assert viewer.dims.ndim == 3            # napari shows a slider for the depth axis
+    panel = SpectrumPanel(viewer)
+    viewer.window.add_dock_widget(panel)
+    viewer.cursor.position = (4.0, 1.0, 1.5)          # z = 4 um (slice 2), y = 1, x = 1.5 um
+    np.testing.assert_array_equal(panel.line.get_data()[1], cube[2, 2, 3])
+    assert "z = 4.0 µm" in panel.status.text() and "column 3, row 2" in panel.status.text()
+
+
+def test_depth_profile_of_a_clicked_point(make_napari_viewer, tmp_path):
+    from mapkit.export import write_results_file
+    from mapkit.reduce.unmix import ReferenceUnmixing
+    from mapkit.scenes import make_film_section
+    from mapkit_napari._panel import SpectrumPanel
+
+    s = make_film_section(0)
+    m = s.to_map()
+    result = ReferenceUnmixing(s.references(), baseline_order=1).fit(m).result(m)
+    path = write_results_file(tmp_path / "film.h5", m, [result])
+    viewer = make_napari_viewer()
+    viewer.open(str(path), plugin="mapkit-napari")
+    panel = SpectrumPanel(viewer)
+    viewer.window.add_dock_widget(panel)
+    viewer.layers.selection.active = viewer.layers[0]
+    viewer.cursor.position = (m.z[20], m.x[4])
+    profile, interfaces = panel.plot_depth_profile()
+    np.testing.assert_allclose(profile.values, result.fields["abundance"].data[:, :, 4])
+    assert profile.names == tuple(result.fields["abundance"].axes[0].values)
+    assert any(abs(i.z - s.truth["interface"]) < 0.5 for i in interfaces)
+    assert panel.depth_canvas.isVisible() or not panel.isVisible()
+    assert "apparent" in panel.status.text()

@@ -12,7 +12,14 @@ from .provenance import Step
 #: Axis order of every intensity cube in mapkit. Readers that meet another
 #: order transpose on the way in; nothing downstream guesses.
 DIMS = ("y", "x", "raman_shift")
-UNITS = {"y": "um", "x": "um", "raman_shift": "1/cm", "laser_wavelength": "nm"}
+#: A depth section: rows are depths (µm along the optical axis), columns x.
+SECTION_DIMS = ("z", "x", "raman_shift")
+#: A volume: depth, then the (y, x) plane.
+VOLUME_DIMS = ("z", "y", "x", "raman_shift")
+UNITS = {"z": "um", "y": "um", "x": "um", "raman_shift": "1/cm", "laser_wavelength": "nm"}
+#: Shown wherever depth values are reported (confocal depth scales are nominal).
+DEPTH_CAUTION = ("depth values are apparent (nominal stage depth) unless corrected for "
+                 "refraction and validated against a known thickness")
 
 
 def check_axis(values, *, name: str, length: int | None = None, source=None,
@@ -51,19 +58,27 @@ def check_axis(values, *, name: str, length: int | None = None, source=None,
     return arr
 
 
+def _step(a) -> float:
+    return float(abs(np.median(np.diff(a)))) if a.size > 1 else 1.0
+
+
 @dataclass(frozen=True, eq=False)
 class RamanMap:
     """A hyperspectral Raman map.
 
     Parameters
     ----------
-    intensity : ndarray or dask array, shape (ny, nx, n_shift)
-        Counts (or any linear intensity) in the order ``DIMS = (y, x, raman_shift)``.
+    intensity : ndarray or dask array
+        Counts (or any linear intensity). Shape ``(ny, nx, n_shift)`` in the order
+        ``DIMS = (y, x, raman_shift)`` for an area map or a line scan (one row, ``ny = 1``);
+        ``(nz, nx, n_shift)`` for a depth section (``SECTION_DIMS``: give ``z`` with one
+        value per row and ``y`` with one value, the section's position); ``(nz, ny, nx,
+        n_shift)`` for a volume (``VOLUME_DIMS``).
     raman_shift : array, shape (n_shift,)
         Raman shift of each channel in cm⁻¹, strictly monotonic.
     x, y : array
         Stage positions of the columns and rows in µm.
-    mask : bool array, shape (ny, nx), optional
+    mask : bool array, shape ``intensity.shape[:-1]``, optional
         ``True`` marks a bad pixel (dead, saturated, non-finite) that no
         decomposition may use.
     laser_wavelength : float, optional
@@ -72,6 +87,10 @@ class RamanMap:
         Every step that made this map, oldest first.
     source : str, optional
         The file it was read from, for error messages.
+    z : array, optional
+        Nominal (stage) depth in µm of each depth row (section, volume), or one value (an
+        area map at one depth). Depths are apparent unless corrected for refraction
+        (:mod:`mapkit.quantify.depth`).
 
     Examples
     --------
@@ -81,6 +100,10 @@ class RamanMap:
     ((2, 3, 4), 6, (1.0, 1.0))
     >>> m.spectrum(1, 2).tolist()
     [1.0, 1.0, 1.0, 1.0]
+    >>> s = RamanMap(np.ones((3, 2, 4)), raman_shift=[100., 200., 300., 400.],
+    ...              x=[0., 1.], y=[5.], z=[0., 2., 4.])
+    >>> s.dims, s.kind, s.pixel_size
+    (('z', 'x', 'raman_shift'), 'section', (2.0, 1.0))
     """
 
     intensity: object
@@ -91,28 +114,51 @@ class RamanMap:
     laser_wavelength: float | None = None
     provenance: tuple = field(default_factory=tuple)
     source: str | None = None
+    z: np.ndarray | None = None
 
     def __post_init__(self):
         data = self.intensity
         if not hasattr(data, "shape") or not hasattr(data, "dtype"):
             data = np.asarray(data)
-        if len(data.shape) != 3:
-            raise MapkitError(f"intensity must have 3 axes {DIMS}, got shape {tuple(data.shape)}",
-                              file=self.source, field="intensity",
+        if len(data.shape) not in (3, 4):
+            raise MapkitError(f"intensity must have 3 axes {DIMS} (or 4 {VOLUME_DIMS}), got "
+                              f"shape {tuple(data.shape)}", file=self.source, field="intensity",
                               fix="state the axis order when reading a cube of another rank")
         if not np.issubdtype(data.dtype, np.number) or np.issubdtype(data.dtype, np.complexfloating):
             raise MapkitError(f"intensity has non-real dtype {data.dtype}", file=self.source,
                               field="intensity", fix="store intensities as integers or floats")
-        ny, nx, ns = data.shape
         set_ = object.__setattr__
+        ns = data.shape[-1]
+        nz = None if self.z is None else np.size(self.z)
+        if len(data.shape) == 4:
+            dims = VOLUME_DIMS
+            if self.z is None:
+                raise MapkitError("a 4-D cube needs its depth axis z", file=self.source,
+                                  field="z", fix="give one depth in um per cube layer")
+        elif nz is not None and nz == data.shape[0] and nz > 1 and np.size(self.y) == 1:
+            dims = SECTION_DIMS
+        else:
+            dims = DIMS
+            if nz is not None and nz != 1:
+                raise MapkitError(f"z has {nz} values for a (y, x) map: give one value (the "
+                                  "map's depth), or a section's y as a single value",
+                                  file=self.source, field="z",
+                                  fix="give z one value per depth row and y one value")
+        set_(self, "_dims", dims)
+        sizes = dict(zip(dims, data.shape))
+        spatial = tuple(int(n) for n in data.shape[:-1])
         set_(self, "intensity", data)
         set_(self, "raman_shift", check_axis(self.raman_shift, name="raman_shift", length=ns,
                                              source=self.source))
-        set_(self, "x", check_axis(self.x, name="x", length=nx, source=self.source))
-        set_(self, "y", check_axis(self.y, name="y", length=ny, source=self.source))
-        mask = np.zeros((ny, nx), bool) if self.mask is None else np.asarray(self.mask, bool)
-        if mask.shape != (ny, nx):
-            raise MapkitError(f"mask shape {mask.shape} does not match the map {(ny, nx)}",
+        set_(self, "x", check_axis(self.x, name="x", length=sizes["x"], source=self.source))
+        set_(self, "y", check_axis(self.y, name="y", length=sizes.get("y", 1),
+                                   source=self.source))
+        if self.z is not None:
+            set_(self, "z", check_axis(self.z, name="z", length=sizes.get("z", 1),
+                                       source=self.source))
+        mask = np.zeros(spatial, bool) if self.mask is None else np.asarray(self.mask, bool)
+        if mask.shape != spatial:
+            raise MapkitError(f"mask shape {mask.shape} does not match the map {spatial}",
                               file=self.source, field="mask", fix="store one flag per pixel")
         set_(self, "mask", mask)
         if self.laser_wavelength is not None:
@@ -125,22 +171,57 @@ class RamanMap:
         set_(self, "provenance", tuple(self.provenance))
 
     # -- shape and geometry ---------------------------------------------------
-    dims = DIMS
+    @property
+    def dims(self) -> tuple[str, ...]:
+        """Axis names of the cube: ``DIMS``, ``SECTION_DIMS`` or ``VOLUME_DIMS``."""
+        return self._dims
 
     @property
-    def shape(self) -> tuple[int, int, int]:
+    def spatial_dims(self) -> tuple[str, ...]:
+        return self._dims[:-1]
+
+    @property
+    def shape(self) -> tuple[int, ...]:
         return tuple(int(n) for n in self.intensity.shape)
 
     @property
     def n_pixels(self) -> int:
-        return self.shape[0] * self.shape[1]
+        return int(np.prod(self.shape[:-1]))
+
+    @property
+    def kind(self) -> str:
+        """``"map"``, ``"line"`` (one spatial axis with more than one position),
+        ``"section"`` (z, x) or ``"volume"`` (z, y, x)."""
+        if self._dims == VOLUME_DIMS:
+            return "volume"
+        if sum(n > 1 for n in self.shape[:-1]) == 1:
+            return "line"
+        return "section" if self._dims == SECTION_DIMS else "map"
+
+    def coords(self, name: str) -> np.ndarray:
+        """Positions in µm along spatial axis ``name`` (``"z"``, ``"y"`` or ``"x"``)."""
+        values = {"x": self.x, "y": self.y, "z": self.z}.get(name)
+        if values is None:
+            raise MapkitError(f"the map has no {name} axis", file=self.source, field=name,
+                              fix="read the map with its depth axis")
+        return values
 
     @property
     def pixel_size(self) -> tuple[float, float]:
-        """(dy, dx) step in µm; 1.0 along an axis with a single position."""
-        def step(a):
-            return float(abs(np.median(np.diff(a)))) if a.size > 1 else 1.0
-        return step(self.y), step(self.x)
+        """(row step, dx) in µm of the image plane (rows are y, or z for a section);
+        1.0 along an axis with a single position. A volume's depth step is ``z_step``."""
+        return _step(self.coords(self._dims[-3])), _step(self.x)
+
+    @property
+    def spacing(self) -> tuple[float, ...]:
+        """Step in µm along every spatial axis, in cube order ((dy, dx), (dz, dx) or
+        (dz, dy, dx)); 1.0 along an axis with a single position."""
+        return tuple(_step(self.coords(n)) for n in self.spatial_dims)
+
+    @property
+    def z_step(self) -> float | None:
+        """Depth step in µm (``None`` without a depth axis)."""
+        return None if self.z is None else _step(self.z)
 
     @property
     def is_lazy(self) -> bool:
@@ -148,13 +229,14 @@ class RamanMap:
         return not isinstance(self.intensity, np.ndarray)
 
     # -- data access ----------------------------------------------------------
-    def spectrum(self, iy: int, ix: int) -> np.ndarray:
-        """One pixel's spectrum, read without loading the cube."""
-        return np.asarray(self.intensity[int(iy), int(ix), :])
+    def spectrum(self, *index: int) -> np.ndarray:
+        """One pixel's spectrum (``iy, ix``; ``iz, iy, ix`` for a volume), read without
+        loading the cube."""
+        return np.asarray(self.intensity[tuple(int(i) for i in index) + (slice(None),)])
 
     def spectra(self) -> np.ndarray:
         """All spectra as a 2-D (n_pixels, n_shift) array in memory (row-major pixels)."""
-        return np.asarray(self.load().intensity).reshape(self.n_pixels, self.shape[2])
+        return np.asarray(self.load().intensity).reshape(self.n_pixels, self.shape[-1])
 
     def load(self) -> "RamanMap":
         """The same map with its cube read into memory."""
@@ -173,9 +255,11 @@ class RamanMap:
                        provenance=self.provenance + (step,))
 
     def __repr__(self) -> str:
-        ny, nx, ns = self.shape
+        ns = self.shape[-1]
         lo, hi = sorted((self.raman_shift[0], self.raman_shift[-1]))
-        return (f"RamanMap({ny} x {nx} pixels, {ns} channels {lo:.1f}-{hi:.1f} 1/cm, "
+        size = " x ".join(str(n) for n in self.shape[:-1])
+        kind = "" if self.kind == "map" else f"{self.kind} {','.join(self.spatial_dims)}: "
+        return (f"RamanMap({kind}{size} pixels, {ns} channels {lo:.1f}-{hi:.1f} 1/cm, "
                 f"pixel {self.pixel_size[1]:g} x {self.pixel_size[0]:g} um, "
                 f"{int(self.mask.sum())} masked, {len(self.provenance)} steps"
                 f"{', lazy' if self.is_lazy else ''})")

@@ -51,8 +51,14 @@ class Field:
 
     @property
     def is_image(self) -> bool:
-        """True when the last two axes are (y, x): a map or a stack of maps."""
-        return self.axis_names[-2:] == ("y", "x")
+        """True when the last two axes are (y, x) or, for a depth section, (z, x): a map or a
+        stack of maps (a volume's ``(z, y, x)`` counts too; see ``is_volume``)."""
+        return self.axis_names[-2:] in (("y", "x"), ("z", "x"))
+
+    @property
+    def is_volume(self) -> bool:
+        """True when the last three axes are (z, y, x)."""
+        return self.axis_names[-3:] == ("z", "y", "x")
 
 
 @dataclass(frozen=True, eq=False)

@@ -60,7 +60,8 @@ def write_bundle(outdir, m, results, *, stem: str, overwrite: bool = False, figu
     for r in results:
         names = identified_names(r)
         for fname, fld in r.fields.items():
-            if not fld.is_image or fld.data.ndim > 3 or fname in _NO_IMAGE_FILES:
+            if not fld.is_image or fname in _NO_IMAGE_FILES or \
+                    fld.data.ndim > (4 if fld.is_volume else 3):
                 continue
             base = f"{stem}_{r.name}" + ("" if fname in ("image", r.name) else f"_{fname}")
             written.append(write_tiff(outdir / f"{base}.tif", fld, overwrite=overwrite,
@@ -73,7 +74,7 @@ def write_bundle(outdir, m, results, *, stem: str, overwrite: bool = False, figu
                 if figures:
                     each_format(save_image_figure, f"{base}_uncertainty", err,
                                 title=f"{r.name}: uncertainty")
-            if not figures:
+            if not figures or fld.is_volume:   # a volume: the TIFF z stack (and the viewer)
                 continue
             if fld.data.ndim == 3:
                 for k, label in enumerate(fld.axes[0].values):

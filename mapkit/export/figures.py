@@ -129,6 +129,10 @@ def save_image_figure(path, field: Field, index: int | None = None, *, title: st
     from matplotlib.patches import Patch
 
     img = np.asarray(field.data if index is None else field.data[index], dtype=float)
+    if img.ndim == 3 and field.is_volume:   # a volume: its middle depth layer
+        z, kz = field.axes[-3].values, img.shape[0] // 2
+        img = img[kz]
+        title = f"{title} (z = {z[kz]:g} µm, layer {kz + 1} of {len(z)})".strip()
     y, x = field.axes[-2].values, field.axes[-1].values
     dy = abs(y[1] - y[0]) if len(y) > 1 else 1.0
     dx = abs(x[1] - x[0]) if len(x) > 1 else 1.0
@@ -198,8 +202,14 @@ def save_image_figure(path, field: Field, index: int | None = None, *, title: st
         if cb is not None:
             cb.solids.set_alpha(1)
     ax.set_xlabel("x (µm)")
-    ax.set_ylabel("y (µm)")
-    _scale_bar(ax, extent)
+    if field.axes[-2].name == "z":    # a depth section: depth downward, x and z scale bars
+        from .section import _bars
+
+        ax.set_ylabel("depth z (µm, apparent)")
+        _bars(ax, extent, "apparent")
+    else:
+        ax.set_ylabel("y (µm)")
+        _scale_bar(ax, extent)
     ax.set_title(title, fontsize=10)
     with atomic_path(path, overwrite=overwrite) as tmp:
         fig.savefig(tmp, dpi=dpi, format=str(path).rsplit(".", 1)[-1])

@@ -52,9 +52,8 @@ def file_sha256(path) -> str:
 def _write_cube_from(f, m: RamanMap, bands, compression=None):
     """Create the map group and fill the cube from an iterator of (first row, block)."""
     g = _map_group(f, m)
-    ny, nx, ns = m.shape
-    d = g.create_dataset("intensity", shape=(ny, nx, ns), dtype="float32",
-                         chunks=layout.pixel_tile(ny, nx, ns), compression=compression,
+    d = g.create_dataset("intensity", shape=m.shape, dtype="float32",
+                         chunks=layout.cube_tile(m.shape), compression=compression,
                          shuffle=compression is not None)
     d.attrs["units"] = "counts"
     d.attrs["long_name"] = "Raman intensity"
@@ -67,11 +66,13 @@ def _map_group(f, m: RamanMap):
     g = f.require_group(layout.MAP)
     g.attrs["NX_class"] = "NXdata"
     g.attrs["signal"] = "intensity"
-    g.attrs["axes"] = list(layout.AXES)
-    for i, name in enumerate(layout.AXES):
+    g.attrs["axes"] = list(m.dims)
+    for i, name in enumerate(m.dims):
         g.attrs[f"{name}_indices"] = i
-    _write_axis(g, "y", m.y, "um")
+    _write_axis(g, "y", m.y, "um")   # a section's y: one value, its position
     _write_axis(g, "x", m.x, "um")
+    if m.z is not None:   # nominal depths; a corrected axis says so in its long_name
+        _write_axis(g, "z", m.z, "um").attrs["long_name"] = "nominal (stage) depth, apparent"
     _write_axis(g, "raman_shift", m.raman_shift, "1/cm")
     mk = g.create_dataset("mask", data=m.mask.astype(np.uint8))
     mk.attrs["long_name"] = "bad pixel (1) / good pixel (0)"
@@ -85,11 +86,10 @@ def _map_group(f, m: RamanMap):
 
 def _write_cube(f, m: RamanMap, compression):
     """Write the cube tile by tile, so a lazy map never has to fit in memory."""
-    ny, nx, ns = m.shape
-    ty = layout.pixel_tile(ny, nx, ns)[0]
+    ty = layout.cube_tile(m.shape)[0]
 
     def bands():
-        for y0 in range(0, ny, ty):
+        for y0 in range(0, m.shape[0], ty):
             yield y0, np.asarray(m.intensity[y0:y0 + ty], dtype=np.float32)
 
     _write_cube_from(f, m, bands(), compression)

@@ -104,8 +104,9 @@ def write_report(path, *, map_name: str, summary: dict, results, model=None, rec
         if classes is not None:
             r = classes
             names = {i["spectrum"]: i["match"] for i in r.summary.get("identification", [])}
-            rows = [(k, names.get(k, ""), v["fraction_pct"], v["area_um2"], v.get("domains"),
-                     v.get("ecd_median_um")) for k, v in r.summary["areas"].items()]
+            rows = [(k, names.get(k, ""), v["fraction_pct"],
+                     v.get("area_um2", v.get("volume_um3")), v.get("domains"),
+                     v.get("ecd_median_um", v.get("esd_median_um"))) for k, v in r.summary["areas"].items()]
             how = {"dominant": "each pixel with its dominant component",
                    "kmeans": "k-means", "minibatch": "mini-batch k-means",
                    "minibatch_kmeans": "mini-batch k-means", "ward": "Ward clustering"}

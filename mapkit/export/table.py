@@ -23,11 +23,12 @@ def image_columns(results):
     for r in results:
         names = identified_names(r)
         for fname, fld in r.fields.items():
-            if not fld.is_image or fld.data.ndim > 3:
+            spatial = 3 if fld.is_volume else 2
+            if not fld.is_image or fld.data.ndim > spatial + 1:
                 continue
             unit = f" [{fld.units}]" if fld.units else ""
             base = r.name if fname in ("image", r.name) else f"{r.name}.{fname}"
-            if fld.data.ndim == 3:
+            if fld.data.ndim == spatial + 1:
                 for k, label in enumerate(fld.axes[0].values):
                     cols.append((f"{base}.{display_label(label, names)}{unit}", fld.data[k]))
             elif fld.signal == "labels":
@@ -44,17 +45,19 @@ def write_long_csv(path, m, results, *, overwrite: bool = False):
     the library versions and the class legends. Masked or undefined values are empty
     cells."""
     cols = image_columns(results)
-    yy, xx = np.meshgrid(m.y, m.x, indexing="ij")
+    dims = m.spatial_dims[::-1]          # x, y; x, z (a section); x, y, z (a volume)
+    grids = np.meshgrid(*[m.coords(d) for d in m.spatial_dims], indexing="ij")[::-1]
     with atomic_path(path, overwrite=overwrite) as tmp:
         with open(tmp, "w", newline="") as fh:
             fh.write("# mapkit long-form export; versions: " + ", ".join(
                 f"{k} {v}" for k, v in library_versions().items())
                 + "".join(f"; {line}" for line in _class_legends(results)) + "\n")
             w = csv.writer(fh)
-            w.writerow(["x [um]", "y [um]", "masked"] + [c[0] for c in cols])
+            w.writerow([f"{d} [um]" for d in dims] + ["masked"] + [c[0] for c in cols])
             flat = [c[1].ravel() for c in cols]
-            for i, (x, y, bad) in enumerate(zip(xx.ravel(), yy.ravel(), m.mask.ravel())):
-                w.writerow([f"{x:.6g}", f"{y:.6g}", int(bad)]
+            coords = [g.ravel() for g in grids]
+            for i, bad in enumerate(m.mask.ravel()):
+                w.writerow([f"{c[i]:.6g}" for c in coords] + [int(bad)]
                            + ["" if not np.isfinite(v[i]) else f"{v[i]:.6g}" for v in flat])
     return path
 

@@ -45,7 +45,7 @@ def good_mean_spectrum(m: RamanMap) -> np.ndarray:
     """Mean spectrum of the unmasked pixels (a reduction; chunk-wise for lazy maps)."""
     good = ~m.mask
     if not good.any():
-        return np.zeros(m.shape[2])
+        return np.zeros(m.shape[-1])
     if m.is_lazy:
         import dask.array as da
 

@@ -107,12 +107,45 @@ class StepSpec:
 
 
 STEPS: dict[str, StepSpec] = {}
+#: steps that compare a pixel with its spatial neighbours: they handle every spatial shape
+#: (line, section, volume) themselves; every other step sees a volume as rows of spectra
+SPATIAL_STEPS = ("despike", "bin")
+
+
+def _unrows(value, nz, ny, nx):
+    shape = getattr(value, "shape", None)
+    if shape is not None and tuple(shape[:2]) == (nz * ny, nx):
+        return value.reshape((nz, ny, nx) + tuple(shape[2:]))
+    return value
+
+
+def _on_rows(func):
+    """Run a per-spectrum step on a volume (z, y, x, shift) as a (z·y, x, shift) map."""
+    import functools
+    from dataclasses import replace
+
+    @functools.wraps(func)
+    def run(m, **params):
+        if m.intensity.ndim != 4:
+            return func(m, **params)
+        nz, ny, nx, ns = m.shape
+        rows = RamanMap(m.intensity.reshape(nz * ny, nx, ns), raman_shift=m.raman_shift,
+                        x=m.x, y=np.arange(nz * ny, dtype=float),
+                        mask=m.mask.reshape(nz * ny, nx), laser_wavelength=m.laser_wavelength,
+                        provenance=m.provenance, source=m.source)
+        out, extra = func(rows, **params)
+        back = replace(m, intensity=out.intensity.reshape(nz, ny, nx, out.shape[-1]),
+                       raman_shift=out.raman_shift, mask=out.mask.reshape(nz, ny, nx),
+                       provenance=out.provenance)
+        return back, {k: _unrows(v, nz, ny, nx) for k, v in extra.items()}
+    return run
 
 
 def register(name: str, *params: Param):
     """Decorator: add a step function ``f(map, **params) -> (map, extras)`` to the registry."""
     def deco(func):
-        STEPS[name] = StepSpec(name, (func.__doc__ or "").strip().split("\n\n")[0], params, func)
+        run = func if name in SPATIAL_STEPS else _on_rows(func)
+        STEPS[name] = StepSpec(name, (func.__doc__ or "").strip().split("\n\n")[0], params, run)
         return func
     return deco
 
@@ -198,19 +231,20 @@ def _mask_bad_pixels(m, saturation, max_fraction):
                 high=10, methods=("spectral",)))
 def _despike(m, method, threshold, grow=3.0, width=2):
     """Find cosmic-ray spikes and replace them; the mask of replaced channels is returned."""
-    ny, nx, ns = m.shape
+    ns = m.shape[-1]
     if method == "spectral":
         cube = np.asarray(m.load().intensity, dtype=np.float64).reshape(-1, ns)
         flags = _spikes.spectral_spike_mask(cube, threshold=threshold, width=width)
         flags[m.mask.ravel()] = False
-        out = _spikes.interpolate_flagged(cube, flags).reshape(ny, nx, ns).astype(np.float32)
-        flags = flags.reshape(ny, nx, ns)
+        out = _spikes.interpolate_flagged(cube, flags).reshape(m.shape).astype(np.float32)
+        flags = flags.reshape(m.shape)
         params = {"method": method, "threshold": threshold, "width": width}
     elif m.is_lazy:
         import dask.array as da
 
-        mask = da.from_array(m.mask[..., None], chunks=m.intensity.chunks[:2] + ((1,),))
-        cube = m.intensity.rechunk({2: -1})
+        last = m.intensity.ndim - 1
+        mask = da.from_array(m.mask[..., None], chunks=m.intensity.chunks[:-1] + ((1,),))
+        cube = m.intensity.rechunk({last: -1})
 
         def on_chunk(c, mk):   # the cleaned cube and, as more channels, the spike flags
             out, fl = _spikes.remove_spatial_spikes(c, mk[..., 0], threshold=threshold,
@@ -219,12 +253,12 @@ def _despike(m, method, threshold, grow=3.0, width=2):
 
         # each chunk sees a one-pixel halo of its neighbours, so results match the whole map;
         # cube and flags come from one run of the kernel per chunk
-        depth = {0: 1, 1: 1, 2: 0}
+        depth = {**{i: 1 for i in range(last)}, last: 0}
         cube_h = da.overlap.overlap(cube, depth=depth, boundary="none")
         mask_h = da.overlap.overlap(mask, depth=depth, boundary="none")
         both = da.overlap.trim_internal(
             da.map_blocks(on_chunk, cube_h, mask_h, dtype=np.float32,
-                          chunks=cube_h.chunks[:2] + ((2 * ns,),)), depth, boundary="none")
+                          chunks=cube_h.chunks[:last] + ((2 * ns,),)), depth, boundary="none")
         out, flags = both[..., :ns], both[..., ns:] > 0.5
     else:
         out, flags = _spikes.remove_spatial_spikes(np.asarray(m.intensity), m.mask,
@@ -401,14 +435,21 @@ def _bin(m, factor):
     """Average factor x factor pixel tiles (masked pixels excluded)."""
     from dataclasses import replace
 
-    cube, mask, dropped = _axis.bin_cube(m.load().intensity, m.mask, factor)
-    by, bx = mask.shape
-    y = m.y[:by * factor].reshape(by, factor).mean(axis=1)
+    data = m.load().intensity
+    if data.ndim == 4:   # a volume: bin each depth layer in (y, x), depths kept
+        layers = [_axis.bin_cube(data[k], m.mask[k], factor) for k in range(data.shape[0])]
+        cube, mask = np.stack([c for c, _, _ in layers]), np.stack([k for _, k, _ in layers])
+        dropped = layers[0][2]
+    else:                # a map or a depth section: tiles in its two axes
+        cube, mask, dropped = _axis.bin_cube(data, m.mask, factor)
+    by, bx = mask.shape[-2:]
+    rows = m.dims[-3]    # y, or z for a section
+    binned_rows = m.coords(rows)[:by * factor].reshape(by, factor).mean(axis=1)
     x = m.x[:bx * factor].reshape(bx, factor).mean(axis=1)
     step = Step("bin", {"factor": factor, "dropped_rows": dropped[0],
                         "dropped_columns": dropped[1]})
-    return replace(m, intensity=cube.astype(np.float32), x=x, y=y, mask=mask,
-                   provenance=m.provenance + (step,)), {"dropped": dropped}
+    return replace(m, intensity=cube.astype(np.float32), x=x, mask=mask,
+                   provenance=m.provenance + (step,), **{rows: binned_rows}), {"dropped": dropped}
 
 
 @register("correct_axis",

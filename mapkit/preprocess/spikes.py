@@ -52,12 +52,17 @@ def spectral_spike_mask(block, *, threshold: float = 6.0, width: int = 2):
 
 
 def _neighbours(cube, mask):
-    """The 8 spatial neighbours of every pixel, shape (8, ny, nx, n); NaN off the map or masked."""
-    ny, nx, n = cube.shape
-    padded = np.full((ny + 2, nx + 2, n), np.nan)
-    padded[1:-1, 1:-1] = np.where(mask[..., None], np.nan, cube)
-    offsets = [(dy, dx) for dy in (-1, 0, 1) for dx in (-1, 0, 1) if (dy, dx) != (0, 0)]
-    return np.stack([padded[1 + dy:1 + dy + ny, 1 + dx:1 + dx + nx] for dy, dx in offsets])
+    """The spatial neighbours of every pixel, shape (8, ny, nx, n) for a map (26, nz, ny,
+    nx, n for a volume); NaN off the map or masked, so an edge pixel, a line scan or a
+    depth section uses the neighbours that exist along each axis."""
+    import itertools
+
+    spatial = cube.shape[:-1]
+    padded = np.full(tuple(s + 2 for s in spatial) + cube.shape[-1:], np.nan)
+    padded[(slice(1, -1),) * len(spatial)] = np.where(mask[..., None], np.nan, cube)
+    offsets = [o for o in itertools.product((-1, 0, 1), repeat=len(spatial)) if any(o)]
+    return np.stack([padded[tuple(slice(1 + d, 1 + d + s) for d, s in zip(o, spatial))]
+                     for o in offsets])
 
 
 #: channel stride of the per-pixel level and noise-gain estimates (shared with the kernel)
@@ -107,11 +112,11 @@ def spatial_spike_mask(cube, mask=None, *, threshold: float = 8.0, grow: float =
         is replaced by (elsewhere the values are unspecified).
     """
     cube = np.asarray(cube, dtype=np.float64)
-    ny, nx, n = cube.shape
-    mask = np.zeros((ny, nx), bool) if mask is None else np.asarray(mask, bool)
+    n = cube.shape[-1]
+    mask = np.zeros(cube.shape[:-1], bool) if mask is None else np.asarray(mask, bool)
     from ._spikes_kernel import HAVE_NUMBA
 
-    if engine == "numba" or (engine == "auto" and HAVE_NUMBA):
+    if cube.ndim == 3 and (engine == "numba" or (engine == "auto" and HAVE_NUMBA)):
         from ._spikes_kernel import spatial_spikes
 
         return spatial_spikes(np.ascontiguousarray(cube), np.ascontiguousarray(mask),
@@ -142,9 +147,10 @@ def remove_spatial_spikes(cube, mask=None, *, threshold: float = 8.0, grow: floa
     """
     from ._spikes_kernel import HAVE_NUMBA
 
-    ny, nx, n = np.shape(cube)
-    mask = np.zeros((ny, nx), bool) if mask is None else np.ascontiguousarray(mask, bool)
-    if engine == "numba" or (engine == "auto" and HAVE_NUMBA):
+    shape = np.shape(cube)
+    n = shape[-1]
+    mask = np.zeros(shape[:-1], bool) if mask is None else np.ascontiguousarray(mask, bool)
+    if len(shape) == 3 and (engine == "numba" or (engine == "auto" and HAVE_NUMBA)):
         from ._spikes_kernel import sampled_levels, spatial_spikes_into
 
         src = np.asarray(cube)

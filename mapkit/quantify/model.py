@@ -107,7 +107,9 @@ class QuantModel:
         x0, s_x0 = self.calibration.inverse(y)
         x0_img = to_images(m, x0[:, None], good)[0]
         s_img = to_images(m, s_x0[:, None], good)[0]
-        axes = (Axis("y", m.y, "um"), Axis("x", m.x, "um"))
+        from ..reduce._common import image_axes
+
+        axes = image_axes(m)
         r = concentration_map(x0_img, s_img, self.calibration, axes, mask=m.mask, name=name)
         r.summary["response"] = self.response.to_dict()
         return r

@@ -16,7 +16,7 @@ MAP_SUFFIXES = _HDF5 + _TEXT
 def open_map(path, *, dataset: str | None = None, axes=None, shift: str | None = None,
              x: str | None = None, y: str | None = None, pixel_size: float | None = None,
              laser_wavelength: float | None = None, block_bytes: int | None = None,
-             position_tolerance: float | None = None) -> RamanMap:
+             position_tolerance: float | None = None, z: str | None = None) -> RamanMap:
     """Open a map lazily from a mapkit NeXus file, any HDF5 dataset, or a text table.
 
     Parameters
@@ -28,6 +28,9 @@ def open_map(path, *, dataset: str | None = None, axes=None, shift: str | None =
         datasets (or a pixel size in µm). Not used for mapkit files or tables.
         A 2-D dataset ``(pixel, raman_shift)`` with one x and one y position per
         spectrum is read too (``axes="pixel,raman_shift"``).
+    z : str, optional
+        For a depth section (``axes="z,x,raman_shift"`` in any order) or a volume
+        (``"z,y,x,raman_shift"``): the dataset of nominal depths in µm.
     laser_wavelength : float, optional
         Excitation wavelength in nm, when the file does not record it (needed to convert
         a shift dataset whose ``units`` are nm).
@@ -53,7 +56,7 @@ def open_map(path, *, dataset: str | None = None, axes=None, shift: str | None =
                               fix="pass --axes (e.g. y,x,raman_shift) and --shift-dataset PATH")
         return read_hdf5_dataset(p, dataset, axes=axes, shift_path=shift, x_path=x, y_path=y,
                                  pixel_size=pixel_size, laser_wavelength=laser_wavelength,
-                                 position_tolerance=position_tolerance)
+                                 position_tolerance=position_tolerance, z_path=z)
     if p.suffix.lower() in _TEXT:
         return read_table(p, laser_wavelength=laser_wavelength,
                           position_tolerance=position_tolerance)

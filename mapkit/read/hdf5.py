@@ -7,13 +7,13 @@ from pathlib import Path
 import numpy as np
 
 from .. import layout
-from ..core.ramanmap import DIMS, RamanMap
+from ..core.ramanmap import DIMS, SECTION_DIMS, VOLUME_DIMS, RamanMap, check_axis
 from ..errors import MapkitError
 from .dispatch import read_steps
 
 _AXIS_ALIASES = {"y": "y", "row": "y", "x": "x", "col": "x", "column": "x",
                  "raman_shift": "raman_shift", "shift": "raman_shift", "s": "raman_shift",
-                 "wavenumber": "raman_shift"}
+                 "wavenumber": "raman_shift", "z": "z", "depth": "z"}
 
 
 def open_h5(path):
@@ -71,7 +71,10 @@ def lazy_cube(dset, *, source, field: str, block_bytes: int | None = None):
     if 0 in dset.shape:
         raise MapkitError(f"dataset is empty (shape {dset.shape})", file=source, field=field,
                           fix="store at least one pixel and one channel")
-    chunks = dset.chunks or layout.pixel_tile(*dset.shape[:2], dset.shape[-1])
+    chunks = dset.chunks or (layout.cube_tile(dset.shape) if len(dset.shape) in (3, 4)
+                             else layout.pixel_tile(*dset.shape[:2], dset.shape[-1]))
+    if len(dset.shape) == 4:
+        chunks = tuple(chunks[:3]) + (dset.shape[3],)
     if len(dset.shape) == 3:
         chunks = (chunks[0], chunks[1], dset.shape[2])
         if block_bytes:
@@ -128,9 +131,11 @@ def parse_axes(axes, ndim: int = 3) -> tuple[str, ...]:
     parts = axes.split(",") if isinstance(axes, str) else list(axes)
     names = tuple("pixel" if p.strip().lower() in _PIXEL else
                   _AXIS_ALIASES.get(p.strip().lower(), p.strip()) for p in parts)
-    want = DIMS if ndim == 3 else ("pixel", "raman_shift")
+    want = {3: SECTION_DIMS if "z" in names else DIMS, 4: VOLUME_DIMS}.get(
+        ndim, ("pixel", "raman_shift"))
     if sorted(names) != sorted(want):
-        example = "y,x,raman_shift" if ndim == 3 else "pixel,raman_shift"
+        example = {3: "y,x,raman_shift (a depth section: z,x,raman_shift)",
+                   4: "z,y,x,raman_shift"}.get(ndim, "pixel,raman_shift")
         raise MapkitError(f"axis order {axes!r} must name {', '.join(want[:-1])} and "
                           f"raman_shift once each for a {ndim}-D dataset", field="--axes",
                           fix=f"for example --axes {example}")
@@ -150,7 +155,8 @@ def _units(d):
 def read_hdf5_dataset(path, dataset_path: str, *, axes, shift_path: str,
                       x_path: str | None = None, y_path: str | None = None,
                       pixel_size: float | None = None, laser_wavelength=None,
-                      position_tolerance: float | None = None) -> RamanMap:
+                      position_tolerance: float | None = None,
+                      z_path: str | None = None) -> RamanMap:
     """A map from any 3-D HDF5 dataset, or a 2-D stack of spectra with positions.
 
     Parameters
@@ -173,6 +179,10 @@ def read_hdf5_dataset(path, dataset_path: str, *, axes, shift_path: str,
         Datasets holding stage positions in µm (``units`` um, mm, nm or m are
         converted): one per column/row of a cube, or one per spectrum of a 2-D stack.
         Without them, ``pixel_size`` (µm) must be given and positions start at 0.
+    z_path : str, optional
+        For a depth section (``axes`` naming ``z, x, raman_shift``) or a volume (``z, y, x,
+        raman_shift``): the dataset of nominal depths in µm, one per layer (required).
+        A section's y is then a single position (``y_path`` with one value, else 0).
     position_tolerance : float, optional
         For a 2-D stack: snap positions within this many µm onto a grid.
 
@@ -181,7 +191,7 @@ def read_hdf5_dataset(path, dataset_path: str, *, axes, shift_path: str,
     """
     with open_h5(path) as f:
         return _read_dataset(f, path, dataset_path, axes, shift_path, x_path, y_path,
-                             pixel_size, laser_wavelength, position_tolerance)
+                             pixel_size, laser_wavelength, position_tolerance, z_path)
 
 
 def _shift_axis(f, path, shift_path, laser_wavelength, hint):
@@ -241,10 +251,10 @@ def _dimension_labels(cube_ds):
 
 
 def _read_dataset(f, path, dataset_path, axes, shift_path, x_path, y_path, pixel_size,
-                  laser_wavelength, position_tolerance=None):
+                  laser_wavelength, position_tolerance=None, z_path=None):
     hint = "give the path of a dataset inside the file (see h5ls -r)"
     cube_ds = dataset(f, dataset_path, source=path, hint=hint)
-    if cube_ds.ndim not in (2, 3):
+    if cube_ds.ndim not in (2, 3, 4):
         raise MapkitError(f"dataset has rank {cube_ds.ndim}, a map needs 3 (y, x, shift) or 2 "
                           "(pixel, shift) with position datasets", file=path,
                           field=dataset_path, fix="point to the 3-D cube")
@@ -278,19 +288,33 @@ def _read_dataset(f, path, dataset_path, axes, shift_path, x_path, y_path, pixel
     if cube_ds.ndim == 2:
         return _stack(f, path, cube_ds, dataset_path, order, shift, x_path, y_path,
                       laser_wavelength, position_tolerance, notes, hint)
+    target = {3: SECTION_DIMS if "z" in order else DIMS, 4: VOLUME_DIMS}[cube_ds.ndim]
     cube = lazy_cube(cube_ds, source=path, field=dataset_path)
-    cube = cube.transpose([order.index(d) for d in DIMS])
-    ny, nx, _ = cube.shape
+    cube = cube.transpose([order.index(d) for d in target])
+    ny, nx = shape.get("y", 1), shape["x"]
+    z = None
+    if "z" in order:
+        if z_path is None:
+            raise MapkitError(f"--axes {stated} names a depth axis z but no depth dataset is "
+                              "given", file=path, field="z",
+                              fix="pass the dataset of nominal depths in um (--z-dataset PATH)")
+        z = _positions(f, path, z_path, hint)
+        if z.ndim != 1 or z.size != shape["z"]:
+            raise MapkitError(f"{z_path} holds {z.size} depths but --axes {stated} puts z along "
+                              f"dimension {order.index('z')} of {dataset_path}, which has "
+                              f"{shape['z']}", file=path, field="--axes",
+                              fix="check --axes and --z-dataset")
+        check_axis(z, name="z", source=str(path), field_path=z_path)
 
     given = {}
     for name, p in (("x", x_path), ("y", y_path)):
         if p is not None:
             given[name] = (p, _positions(f, path, p, hint))
     for name, (p, values) in given.items():
-        n = shape[name]
+        n = shape.get(name, 1)
         if values.ndim == 1 and values.size != n:
             other = "y" if name == "x" else "x"
-            swapped = values.size == shape[other]
+            swapped = values.size == shape.get(other)
             raise MapkitError(
                 f"{p} holds {values.size} {name} positions but --axes {stated} puts {name} "
                 f"along dimension {order.index(name)} of {dataset_path}, which has {n}"
@@ -298,7 +322,7 @@ def _read_dataset(f, path, dataset_path, axes, shift_path, x_path, y_path, pixel
                    f"{values.size}: the two are likely swapped)" if swapped else ""),
                 file=path, field="--axes",
                 fix="check --axes (the order of the dataset's dimensions) and --x/--y")
-    if labels is None and (len(given) < 2 or nx == ny):   # square: lengths cannot tell
+    if labels is None and "y" in order and (len(given) < 2 or nx == ny):   # square
         notes.append(f"axis order from --axes {stated} alone (nothing in the file confirms "
                      f"it): read as {ny} rows (y) x {nx} columns (x); if the map looks "
                      "transposed, swap x and y in --axes")
@@ -311,7 +335,9 @@ def _read_dataset(f, path, dataset_path, axes, shift_path, x_path, y_path, pixel
                               fix=f"pass the {name} dataset path or the pixel size in um")
         return np.arange(n) * float(pixel_size)
 
-    return RamanMap(cube, raman_shift=shift, x=positions("x", nx), y=positions("y", ny),
+    x = positions("x", nx)
+    y = positions("y", ny) if ("y" in order or "y" in given) else np.zeros(1)
+    return RamanMap(cube, raman_shift=shift, x=x, y=y, z=z,
                     laser_wavelength=laser_wavelength, source=str(path),
                     provenance=read_steps(notes, path))
 

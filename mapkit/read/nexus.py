@@ -39,9 +39,20 @@ def _read_nexus(f, path, block_bytes=None):
     hint = ("write the map in the mapkit layout (docs/file-layout.md), or read the cube by "
             "path with --dataset and --axes")
     cube_ds = dataset(f, layout.INTENSITY, source=path, hint=hint)
-    if cube_ds.ndim != 3:
-        raise MapkitError(f"intensity has rank {cube_ds.ndim}, the layout needs 3 (y, x, raman_shift)",
+    group = f.get(layout.MAP)
+    stated = [a.decode() if isinstance(a, bytes) else str(a)
+              for a in np.atleast_1d(group.attrs.get("axes", layout.AXES))]
+    dims = {3: layout.SECTION_AXES if tuple(stated) == layout.SECTION_AXES else layout.AXES,
+            4: layout.VOLUME_AXES}.get(cube_ds.ndim)
+    if dims is None:
+        raise MapkitError(f"intensity has rank {cube_ds.ndim}, the layout needs 3 (y, x, "
+                          "raman_shift or z, x, raman_shift) or 4 (z, y, x, raman_shift)",
                           file=path, field=layout.INTENSITY, fix="store the cube as (y, x, raman_shift)")
+    if cube_ds.ndim == 4 and tuple(stated) != layout.VOLUME_AXES:
+        raise MapkitError(f"intensity has rank 4, a volume, but the map group states axes "
+                          f"{stated}, not {list(layout.VOLUME_AXES)}", file=path,
+                          field=f"{layout.MAP} (axes)",
+                          fix="store the volume as (z, y, x, raman_shift) and say so in axes")
     cube = lazy_cube(cube_ds, source=path, field=layout.INTENSITY,
                      block_bytes=block_bytes)
 
@@ -62,13 +73,18 @@ def _read_nexus(f, path, block_bytes=None):
         raw = f[f"{layout.PROVENANCE}/steps"][...]
         steps = tuple(Step.from_json(s.decode() if isinstance(s, bytes) else s) for s in raw)
     from ..core.ramanmap import check_axis
-    shift = check_axis(axis("raman_shift"), name="raman_shift", length=cube.shape[2],
+    sizes = dict(zip(dims, cube.shape))
+    shift = check_axis(axis("raman_shift"), name="raman_shift", length=sizes["raman_shift"],
                        source=str(path), field_path=f"{layout.MAP}/raman_shift")
-    x = check_axis(axis("x"), name="x", length=cube.shape[1], source=str(path),
+    x = check_axis(axis("x"), name="x", length=sizes["x"], source=str(path),
                    field_path=f"{layout.MAP}/x")
-    y = check_axis(axis("y"), name="y", length=cube.shape[0], source=str(path),
-                   field_path=f"{layout.MAP}/y")
-    return RamanMap(cube, raman_shift=shift, x=x, y=y,
+    y = check_axis(np.atleast_1d(axis("y")), name="y", length=sizes.get("y", 1),
+                   source=str(path), field_path=f"{layout.MAP}/y")
+    z = None
+    if "z" in dims or f"{layout.MAP}/z" in f:
+        z = check_axis(np.atleast_1d(axis("z")), name="z", length=sizes.get("z", 1),
+                       source=str(path), field_path=f"{layout.MAP}/z")
+    return RamanMap(cube, raman_shift=shift, x=x, y=y, z=z,
                     mask=None if mask is None else np.asarray(mask, bool),
                     laser_wavelength=laser, provenance=steps, source=str(path))
 
@@ -122,7 +138,7 @@ def read_result_objects(path) -> list:
             for aname, values in f["axes"].items():
                 vals = np.array([v.decode() if isinstance(v, bytes) else v for v in values]) \
                     if values.dtype.kind in "SO" else values
-                axes.append(Axis(aname, vals, "um" if aname in ("x", "y") else
+                axes.append(Axis(aname, vals, "um" if aname in ("x", "y", "z") else
                                  "1/cm" if aname == "raman_shift" else ""))
             units = f["units"].decode() if isinstance(f["units"], bytes) else str(f["units"])
             data = f["data"]

@@ -89,3 +89,32 @@ def check_coverage(seen, ux, uy, path):
                           f"rectangular grid ({int((seen == 0).sum())} positions missing)",
                           file=path, field="x, y",
                           fix="export the full rectangular scan; " + TOLERANCE_FIX)
+
+
+def depth_grid(xs, ys, zs, *, tolerance: float | None = None, path=None):
+    """Grid lines and each spectrum's ``(iz, iy, ix)`` from per-spectrum x, y, z (µm).
+
+    Like :func:`grid_positions` with a depth axis: returns ``(ux, uy, uz, ix, iy, iz,
+    note)``. z is never snapped (depth steps are set by the focus drive, not jittered).
+    """
+    ux, uy, ix, iy, note = grid_positions(xs, ys, tolerance=tolerance, path=path)
+    uz, iz, _ = _lines(zs, None, "z", path)
+    return ux, uy, uz, ix, iy, iz, note
+
+
+def check_depth_coverage(seen, ux, uy, uz, path):
+    """Refuse a (z, y, x) grid where a position repeats or is missing (one-line errors)."""
+    if np.any(seen > 1):
+        iz, iy, ix = np.argwhere(seen > 1)[0]
+        raise MapkitError(f"position x={ux[ix]:g}, y={uy[iy]:g}, z={uz[iz]:g} appears more than "
+                          "once: a depth value repeats", file=path, field="z",
+                          fix="keep one spectrum per position and depth (average repeats "
+                              "or give each depth its own z)")
+    missing = int((seen == 0).sum())
+    if missing:
+        iz, iy, ix = np.argwhere(seen == 0)[0]
+        raise MapkitError(f"the z values do not form a grid: position x={ux[ix]:g}, "
+                          f"y={uy[iy]:g} has no spectrum at z={uz[iz]:g} ({missing} of "
+                          f"{seen.size} grid positions missing)", file=path, field="z",
+                          fix="measure every position at the same depths (or split the "
+                              "file by depth range)")

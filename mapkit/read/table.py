@@ -2,7 +2,9 @@
 
 Long form: one row per (x, y, shift) with an intensity, columns found by their
 header names. Wide form: one row per pixel, ``x`` and ``y`` columns followed by
-one column per channel whose header is the Raman shift. The delimiter
+one column per channel whose header is the Raman shift. Either form may carry a ``z``
+(depth, µm) column: the table is then a depth section (x, z; ``y`` may be left out) or
+a volume (x, y, z), and every position must be measured at the same depths. The delimiter
 (comma, semicolon, tab or spaces) is detected from the header line. Headers may write
 µm as ``um`` or ``µm`` and cm⁻¹ as ``1/cm``, ``cm-1`` or ``cm⁻¹``.
 """
@@ -23,6 +25,8 @@ from .positions import grid_positions
 _NAMES = {
     "x": ("x", "x_um", "x (um)", "x [um]", "x(um)", "pos_x", "x_position"),
     "y": ("y", "y_um", "y (um)", "y [um]", "y(um)", "pos_y", "y_position"),
+    "z": ("z", "z_um", "z (um)", "z [um]", "z(um)", "pos_z", "z_position", "depth",
+          "depth (um)", "depth_um"),
     "raman_shift": ("raman_shift", "shift", "raman shift", "wavenumber", "raman_shift_cm-1",
                     "shift (1/cm)", "raman shift (cm-1)", "shift [1/cm]", "shift (cm-1)",
                     "raman shift (1/cm)", "raman shift [cm-1]", "raman_shift (cm-1)"),
@@ -105,8 +109,13 @@ def read_table(path, *, laser_wavelength=None, position_tolerance=None) -> Raman
     ((1, 2, 2), [3.0, 4.0])
     """
     header, values = _read_rows(path)
-    cx, cy = _find(header, "x", path), _find(header, "y", path)
+    cz = _find(header, "z", path, required=False)
+    cx = _find(header, "x", path)
+    cy = _find(header, "y", path, required=cz is None)
     cs = _find(header, "raman_shift", path, required=False)
+    if cz is not None:
+        return _depth(header, values, cx, cy, cz, cs, path, laser_wavelength,
+                      position_tolerance)
     if cs is not None:
         ci = _find(header, "intensity", path)
         return _long(values, cx, cy, cs, ci, path, laser_wavelength, position_tolerance)
@@ -153,3 +162,57 @@ def _long(values, cx, cy, cs, ci, path, laser_wavelength, position_tolerance=Non
     cube[iy, ix, ish] = values[:, ci]
     return RamanMap(cube, raman_shift=shift, x=ux, y=uy, laser_wavelength=laser_wavelength,
                     source=str(path), provenance=read_steps([note], path))
+
+
+def _depth(header, values, cx, cy, cz, cs, path, laser_wavelength, position_tolerance):
+    """A table with a z column: a depth section (one y) or a volume, long or wide form."""
+    from .positions import check_depth_coverage, depth_grid
+
+    ys = values[:, cy] if cy is not None else np.zeros(len(values))
+    known = [c for c in (cx, cy, cz) if c is not None]
+    if cs is not None:
+        ci = _find(header, "intensity", path)
+        shift = np.unique(values[:, cs])
+        keys = np.c_[values[:, cx], ys, values[:, cz]]
+        # one spectrum per distinct (x, y, z): group the rows, then check the channels
+        pos, inverse = np.unique(keys, axis=0, return_inverse=True)
+        inverse = inverse.ravel()
+        per = np.bincount(inverse, minlength=len(pos))
+        if np.any(per != shift.size):
+            k = int(np.flatnonzero(per != shift.size)[0])
+            more = per[k] > shift.size
+            raise MapkitError(f"position x={pos[k, 0]:g}, y={pos[k, 1]:g}, z={pos[k, 2]:g} has "
+                              f"{per[k]} rows for {shift.size} channels"
+                              + (": a depth value repeats" if more else ""),
+                              file=path, field="z" if more else "raman_shift",
+                              fix="keep one row per position, depth and shift" if more else
+                                  "export every channel at every position and depth")
+        spectra = np.full((len(pos), shift.size), np.nan)
+        spectra[inverse, np.searchsorted(shift, values[:, cs])] = values[:, ci]
+        xs, ys, zs = pos[:, 0], pos[:, 1], pos[:, 2]
+    else:
+        channel_cols = [i for i in range(len(header)) if i not in known]
+        bad = [header[i] for i in channel_cols if not _NUMBER.match(header[i])]
+        if bad or not channel_cols:
+            raise MapkitError(f"cannot tell the table's form: column {bad[0] if bad else ''!r}"
+                              " is neither a shift value nor a known column", file=path,
+                              field="header", fix="use long form (x, y, z, raman_shift, "
+                                                  "intensity) or wide form (x, y, z, then one "
+                                                  "numeric shift per column)")
+        shift = np.array([float(header[i]) for i in channel_cols])
+        spectra = values[:, channel_cols]
+        xs, zs = values[:, cx], values[:, cz]
+    ux, uy, uz, ix, iy, iz, note = depth_grid(xs, ys, zs, tolerance=position_tolerance,
+                                              path=path)
+    seen = np.zeros((uz.size, uy.size, ux.size), int)
+    np.add.at(seen, (iz, iy, ix), 1)
+    check_depth_coverage(seen, ux, uy, uz, path)
+    cube = np.full((uz.size, uy.size, ux.size, shift.size), np.nan, np.float32)
+    cube[iz, iy, ix] = spectra
+    if uz.size == 1:          # one depth: an area map (or line) at that depth
+        cube = cube[0]
+    elif uy.size == 1:        # one y: a depth section (z, x)
+        cube = cube[:, 0]
+    return RamanMap(cube, raman_shift=shift, x=ux, y=uy, z=uz,
+                    laser_wavelength=laser_wavelength, source=str(path),
+                    provenance=read_steps([note], path))

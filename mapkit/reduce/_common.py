@@ -28,17 +28,19 @@ def good_spectra(m: RamanMap, *, what: str) -> tuple[np.ndarray, np.ndarray]:
 
 
 def to_images(m: RamanMap, values: np.ndarray, good: np.ndarray, fill=np.nan) -> np.ndarray:
-    """Scatter per-good-pixel rows (n_good, k) back into images (k, ny, nx), fill elsewhere."""
-    ny, nx, _ = m.shape
+    """Scatter per-good-pixel rows (n_good, k) back into images (k, *spatial shape), fill
+    elsewhere: (k, ny, nx) for a map, (k, nz, nx) for a section, (k, nz, ny, nx) for a volume."""
+    spatial = m.shape[:-1]
     values = np.asarray(values)
     k = values.shape[1] if values.ndim == 2 else 1
-    out = np.full((ny * nx, k), fill, dtype=np.result_type(values.dtype, np.asarray(fill).dtype))
+    out = np.full((m.n_pixels, k), fill, dtype=np.result_type(values.dtype, np.asarray(fill).dtype))
     out[good] = values.reshape(good.size, k)
-    return out.T.reshape(k, ny, nx)
+    return out.T.reshape(k, *spatial)
 
 
-def image_axes(m: RamanMap) -> tuple[Axis, Axis]:
-    return Axis("y", m.y, "um"), Axis("x", m.x, "um")
+def image_axes(m: RamanMap) -> tuple[Axis, ...]:
+    """The spatial axes of the map's images in µm: (y, x), (z, x) or (z, y, x)."""
+    return tuple(Axis(name, m.coords(name), "um") for name in m.spatial_dims)
 
 
 def shift_axis(m: RamanMap) -> Axis:
@@ -113,9 +115,9 @@ def check_components(n: int, m, n_good: int, name="n_components"):
         raise MapkitError(f"{name} = {n!r} must be a positive integer", field=name,
                           fix="choose 2-10 for a typical map")
     if isinstance(m, RamanMap):
-        limit = min(m.shape[2], n_good)
+        limit = min(m.shape[-1], n_good)
         if n > limit:
-            raise DataError(f"{name} = {n} exceeds what the map supports ({m.shape[2]} "
+            raise DataError(f"{name} = {n} exceeds what the map supports ({m.shape[-1]} "
                             f"channels, {n_good} good pixels)", file=m.source, field=name,
                             fix=f"choose at most {limit}")
         return

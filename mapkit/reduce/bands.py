@@ -84,10 +84,11 @@ def _measure(m: RamanMap, lo, hi, measure, local_baseline):
     crop_indices(m.raman_shift, lo, hi)   # fail before reading if the band is outside
     shift = m.raman_shift
     if m.is_lazy:  # chunk by chunk: a band image of a cube larger than memory
-        data = m.intensity.rechunk({2: -1})
+        last = m.intensity.ndim - 1     # the shift axis (2; 3 for a volume)
+        data = m.intensity.rechunk({last: -1})
         img = data.map_blocks(lambda b: func(np.asarray(b, np.float64), shift, lo, hi,
                                              local_baseline=local_baseline),
-                              drop_axis=2, dtype=np.float64).compute()
+                              drop_axis=last, dtype=np.float64).compute()
     else:
         img = func(np.asarray(m.intensity, dtype=np.float64), shift, lo, hi,
                    local_baseline=local_baseline)
@@ -129,8 +130,8 @@ def band_ratio_image(m: RamanMap, numerator, denominator, *, name: str = "ratio"
     lo_d, hi_d = denominator
     num = _measure(m, lo_n, hi_n, measure, True)
     den = _measure(m, lo_d, hi_d, measure, True)
-    ny, nx, ns = m.shape
-    sd = noise_sd(np.asarray(m.load().intensity, float).reshape(-1, ns)).reshape(ny, nx)
+    ns = m.shape[-1]
+    sd = noise_sd(np.asarray(m.load().intensity, float).reshape(-1, ns)).reshape(m.shape[:-1])
     if measure == "area":
         idx = crop_indices(m.raman_shift, lo_d, hi_d)
         step = float(np.median(np.abs(np.diff(m.raman_shift))))

@@ -626,7 +626,7 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
         """Concentration images (n_components, ny, nx) of a map on the same axis, or rows
         (n_spectra, n_components) of spectra on the fitted axis."""
         check_is_fitted(self)
-        if isinstance(m, RamanMap) and (m.shape[2] != self.raman_shift_.size or not
+        if isinstance(m, RamanMap) and (m.shape[-1] != self.raman_shift_.size or not
                                         np.allclose(m.raman_shift, self.raman_shift_)):
             raise MapkitError("the map's shift axis differs from the one the model was fitted on",
                               file=m.source, field="raman_shift", fix="fit on this map")

@@ -504,12 +504,12 @@ def peak_fit_map(m: RamanMap, lo: float, hi: float, *, shape: str = "lorentzian"
     1 not converged, 2 band not significant, 4 centre outside the window) and the
     summary counts them, so medians and colour scales describe real bands only.
     """
-    ny, nx, ns = m.shape
+    spatial = m.shape[:-1]
     # only the fit window is read: on a lazy map, chunk by chunk, so a cube larger than
     # memory is fitted with the window's channels alone in memory
     idx = crop_indices(m.raman_shift, lo, hi)
     sel = slice(int(idx[0]), int(idx[-1]) + 1)
-    window = m.intensity[:, :, sel]
+    window = m.intensity[..., sel]
     window = window.compute() if m.is_lazy else window
     shift = m.raman_shift[sel]
     flat = np.asarray(window, np.float32).reshape(-1, shift.size)
@@ -527,9 +527,9 @@ def peak_fit_map(m: RamanMap, lo: float, hi: float, *, shape: str = "lorentzian"
     per = len(PEAK_PARAMS[shape])
 
     def image(values, fill=np.nan):
-        out = np.full(ny * nx, fill, dtype=float)
+        out = np.full(m.n_pixels, fill, dtype=float)
         out[good] = values
-        return out.reshape(ny, nx)
+        return out.reshape(spatial)
 
     axes = image_axes(m)
     fields = {}

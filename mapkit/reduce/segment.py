@@ -43,7 +43,6 @@ def _smoothed(m: RamanMap | None, S, good, smooth: float):
         if m is None:
             raise DataError("spatial smoothing needs the map's grid, not spectra as rows",
                             field="smooth", fix="pass the RamanMap or use smooth=0")
-        ny, nx, _ = m.shape
         weight = (~m.mask).astype(float)
         wsm = gaussian_filter(weight, smooth, mode="nearest")
         imgs = to_images(m, S, good, fill=0.0)
@@ -94,6 +93,7 @@ class _ClassMap(ClusterMixin, BaseEstimator):
                 self.class_sd_[k] = X[lab == k].std(axis=0)
         self.area_fraction_ = np.bincount(lab, minlength=n)[:n] / lab.size
         self.pixel_size_ = None if m is None else m.pixel_size
+        self.spacing_ = None if m is None else m.spacing
         return self
 
     def fit_predict(self, m, y=None, **kwargs):
@@ -102,16 +102,17 @@ class _ClassMap(ClusterMixin, BaseEstimator):
         return self.fit(m, y, **kwargs).labels_
 
     def result(self, m: RamanMap, name: str | None = None) -> Result:
-        dy, dx = m.pixel_size
+        cell = float(np.prod(m.spacing))     # µm² per pixel, µm³ per voxel of a volume
+        unit = "volume_um3" if len(m.spacing) == 3 else "area_um2"
         cls = Axis("class", np.array([f"class {k + 1}" for k in range(self.n_classes)]))
         labels = Field("labels", self.labels_, image_axes(m), "",
                        long_name="class index (0-based, -1 masked)")
         spectra = Field("mean_spectrum", self.class_mean_, (cls, shift_axis(m)), "a.u.",
                         errors=self.class_sd_, long_name="class mean spectrum (errors: sd)")
         n_good = int((self.labels_ >= 0).sum())
-        domains = class_domains(self.labels_, (dy, dx), n_classes=self.n_classes)
+        domains = class_domains(self.labels_, m.spacing, n_classes=self.n_classes)
         areas = {f"class {k + 1}": {"fraction_pct": float(100 * f),
-                                    "area_um2": float(f * n_good * dx * dy),
+                                    unit: float(f * n_good * cell),
                                     **domains[k]["summary"]}
                  for k, f in enumerate(self.area_fraction_)}
         domain_img = np.full(self.labels_.shape, -1, np.int32)
@@ -345,9 +346,9 @@ class DominantClasses(_ClassMap):
                                 fix="give one row of weights per spectrum, one column per class")
             A = np.nan_to_num(images.T)
         else:
-            if images.shape != (self.n_classes, *mp.shape[:2]):
+            if images.shape != (self.n_classes, *mp.shape[:-1]):
                 raise MapkitError(f"component images have shape {images.shape}, expected "
-                                  f"{(self.n_classes, *mp.shape[:2])}", field="images",
+                                  f"{(self.n_classes, *mp.shape[:-1])}", field="images",
                                   fix="give one image per class on the map's grid")
             A = np.nan_to_num(images.reshape(self.n_classes, -1)[:, good])
         shares = self._shares(A)
@@ -371,7 +372,11 @@ def class_domains(labels, pixel_size, *, connectivity: int = 1, n_classes: int |
     Returns, for each class k, ``{"labels": int image (0 = not in a domain of k),
     "area_um2": array, "ecd_um": array, "summary": {...}}``. The equivalent circular
     diameter is ECD = 2·√(A/π). ``connectivity`` 1 joins edge neighbours, 2 also
-    diagonal ones.
+    diagonal ones (3, in a volume, corner ones too).
+
+    A 3-D label volume ``(nz, ny, nx)`` with ``pixel_size = (dz, dy, dx)`` gives domains
+    in 3-D: ``"volume_um3"`` and the equivalent spherical diameter ``"esd_um"``,
+    ESD = 2·(3V/(4π))^(1/3), in place of area and ECD (summary keys ``esd_*``).
 
     Examples
     --------
@@ -382,23 +387,33 @@ def class_domains(labels, pixel_size, *, connectivity: int = 1, n_classes: int |
     """
     from scipy.ndimage import generate_binary_structure, label
 
-    dy, dx = pixel_size
-    structure = generate_binary_structure(2, connectivity)
+    labels = np.asarray(labels)
+    cell = float(np.prod(pixel_size))
+    if len(pixel_size) != labels.ndim:
+        raise ValueError(f"pixel_size {pixel_size} does not match labels of rank {labels.ndim}")
+    three_d = labels.ndim == 3
+    structure = generate_binary_structure(labels.ndim, min(connectivity, labels.ndim))
     out = []
     if n_classes is None:
         n_classes = int(labels.max()) + 1 if labels.size else 0
     for k in range(n_classes):
         lab, n = label(labels == k, structure=structure)
         counts = np.bincount(lab.ravel(), minlength=n + 1)[1:]
-        area = counts * dx * dy
-        ecd = 2 * np.sqrt(area / np.pi)
+        size = counts * cell
+        if three_d:
+            d, tag, big = 2 * np.cbrt(3 * size / (4 * np.pi)), "esd", "largest_domain_um3"
+        else:
+            d, tag, big = 2 * np.sqrt(size / np.pi), "ecd", "largest_domain_um2"
         summary = {"domains": int(n)}
         if n:
-            summary.update({"ecd_median_um": float(np.median(ecd)),
-                            "ecd_mean_um": float(np.mean(ecd)),
-                            "ecd_p90_um": float(np.percentile(ecd, 90)),
-                            "largest_domain_um2": float(area.max())})
-        out.append({"labels": lab, "area_um2": area, "ecd_um": ecd, "summary": summary})
+            summary.update({f"{tag}_median_um": float(np.median(d)),
+                            f"{tag}_mean_um": float(np.mean(d)),
+                            f"{tag}_p90_um": float(np.percentile(d, 90)),
+                            big: float(size.max())})
+        if three_d:
+            out.append({"labels": lab, "volume_um3": size, "esd_um": d, "summary": summary})
+        else:
+            out.append({"labels": lab, "area_um2": size, "ecd_um": d, "summary": summary})
     return out
 
 

@@ -423,7 +423,7 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
                               fix="give every reference a unique name")
         order = check_baseline_order(self.baseline_order)
         if isinstance(m, RamanMap):   # the spectra are read only if the order is chosen
-            X, mp, n_shift = None, m, m.shape[2]
+            X, mp, n_shift = None, m, m.shape[-1]
             self.n_features_in_ = n_shift
         else:
             X, _, mp = spectra_in(self, m, what="unmixing", reset=True)
@@ -475,7 +475,7 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
 
     def _unmix(self, m):
         check_is_fitted(self)
-        if isinstance(m, RamanMap) and (m.shape[2] != self.raman_shift_.size or
+        if isinstance(m, RamanMap) and (m.shape[-1] != self.raman_shift_.size or
                                         not np.allclose(m.raman_shift, self.raman_shift_)):
             raise MapkitError("the map's shift axis differs from the one the model was fitted on",
                               file=m.source, field="raman_shift", fix="fit on this map")

@@ -20,9 +20,12 @@ def robust_limits(img):
 
 
 def common_kwargs(m, path):
-    dy, dx = m.pixel_size
-    return {"scale": (dy, dx), "translate": (float(m.y[0]), float(m.x[0])), "units": ("um", "um"),
-            "metadata": {"mapkit_path": str(path)}}
+    """Scale and origin in µm along every spatial axis: (y, x), a section's (z, x), or a
+    volume's (z, y, x), which napari shows with a depth slider."""
+    dims = m.spatial_dims
+    return {"scale": m.spacing, "translate": tuple(float(m.coords(d)[0]) for d in dims),
+            "units": ("um",) * len(dims),
+            "metadata": {"mapkit_path": str(path), "mapkit_dims": dims}}
 
 
 def mean_image_layer(m, path, name):
@@ -52,7 +55,7 @@ def result_layers(results, common, *, visible: bool = False):
             meta = {**common.get("metadata", {}), "mapkit_result": r.name,
                     "mapkit_field": fname, "units": f.units}
             kw = {**common, "metadata": meta, "visible": visible}
-            if f.data.ndim == 3:   # a stack: one layer per component
+            if f.data.ndim == (4 if f.is_volume else 3):   # a stack: one layer per component
                 for k, label in enumerate(f.axes[0].values):
                     plane = np.asarray(f.data[k], np.float32)
                     layers.append((plane, {**kw, "name": f"{r.name}: {label}",

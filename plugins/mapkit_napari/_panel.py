@@ -59,11 +59,23 @@ class SpectrumPanel(QWidget):
         self.region_button.clicked.connect(self.plot_region)
         self.clear_button = QPushButton("Clear pinned")
         self.clear_button.clicked.connect(self.clear_pinned)
+        self.depth_button = QPushButton("Depth profile")
+        self.depth_button.setToolTip("Component images (or the mean intensity) against depth "
+                                     "at the pixel under the cursor, with the located "
+                                     "interfaces (depth sections and volumes)")
+        self.depth_button.clicked.connect(self.plot_depth_profile)
         row = QHBoxLayout()
-        for w in (self.show_baseline, self.show_corrected, self.region_button, self.clear_button):
+        for w in (self.show_baseline, self.show_corrected, self.region_button, self.clear_button,
+                  self.depth_button):
             row.addWidget(w)
+        # the depth plot: shown the first time a depth profile is asked for
+        self.depth_figure = Figure(figsize=(4, 2.6), layout="constrained")
+        self.depth_canvas = FigureCanvasQTAgg(self.depth_figure)
+        self.depth_ax = self.depth_figure.add_subplot()
+        self.depth_canvas.setVisible(False)
         layout = QVBoxLayout(self)
         layout.addWidget(self.canvas, 1)
+        layout.addWidget(self.depth_canvas, 1)
         layout.addLayout(row)
         layout.addWidget(self.status)
         self._style()
@@ -102,28 +114,36 @@ class SpectrumPanel(QWidget):
         return self._maps[path]
 
     def pixel_at(self, position):
-        """(layer, iy, ix) of the map pixel at a world position, or None outside the map."""
+        """(layer, iy, ix) of the map pixel at a world position, or None outside the map; in a
+        volume (layer, iz, iy, ix), the depth taken from the slice shown."""
         layer = self._map_layer()
         if layer is None:
             return None
-        iy, ix = (int(np.round(v)) for v in layer.world_to_data(position)[-2:])
-        ny, nx = layer.data.shape[-2:]
-        if not (0 <= iy < ny and 0 <= ix < nx):
+        n = layer.data.ndim
+        idx = tuple(int(np.round(v)) for v in layer.world_to_data(position)[-n:])
+        if not all(0 <= i < s for i, s in zip(idx, layer.data.shape)):
             return None
-        return layer, iy, ix
+        return (layer, *idx)
 
-    def spectrum(self, layer, iy, ix):
+    def spectrum(self, layer, *index):
         m = self.map_for(layer)
-        return m.raman_shift, m.spectrum(iy, ix), m
+        return m.raman_shift, m.spectrum(*index), m
+
+    @staticmethod
+    def where(m, index) -> str:
+        """Position of a pixel in words: 'x = 1.0 µm, y = 2.0 µm' (z too in depth maps)."""
+        coords = dict(zip(m.spatial_dims, index))
+        return ", ".join(f"{d} = {m.coords(d)[coords[d]]:.1f} µm" for d in ("x", "y", "z")
+                         if d in coords)
 
     # -- events ---------------------------------------------------------------
     def _on_cursor(self, event=None):
         hit = self.pixel_at(self.viewer.cursor.position)
         if hit is None:
             return
-        layer, iy, ix = hit
-        shift, spec, m = self.spectrum(layer, iy, ix)
-        self.current = (layer, iy, ix)
+        layer, *index = hit
+        shift, spec, m = self.spectrum(layer, *index)
+        self.current = (layer, *index)
         self.line.set_data(shift, spec)
         base = None
         if self.show_baseline.isChecked() or self.show_corrected.isChecked():
@@ -134,9 +154,9 @@ class SpectrumPanel(QWidget):
                                     else ([], []))
         self.corrected_line.set_data((shift, spec - base) if self.show_corrected.isChecked()
                                      else ([], []))
-        flag = "  (masked pixel)" if m.mask[iy, ix] else ""
-        self.status.setText(f"x = {m.x[ix]:.1f} µm, y = {m.y[iy]:.1f} µm  "
-                            f"(column {ix}, row {iy}){flag}")
+        flag = "  (masked pixel)" if m.mask[tuple(index)] else ""
+        self.status.setText(f"{self.where(m, index)}  (column {index[-1]}, row {index[-2]})"
+                            f"{flag}")
         if self._fits_view(shift, spec):
             self._blit()
         else:
@@ -174,12 +194,12 @@ class SpectrumPanel(QWidget):
             if hit is not None:
                 self.pin(*hit)
 
-    def pin(self, layer, iy, ix):
-        shift, spec, m = self.spectrum(layer, iy, ix)
+    def pin(self, layer, *index):
+        shift, spec, m = self.spectrum(layer, *index)
         colour = _PIN_COLOURS[len(self.pinned) % len(_PIN_COLOURS)]
         line, = self.ax.plot(shift, spec, color=colour, lw=1.0,
-                             label=f"pinned x={m.x[ix]:.1f}, y={m.y[iy]:.1f} µm")
-        self.pinned.append((layer.name, iy, ix, line))
+                             label=f"pinned {self.where(m, index).replace(' µm', '')} µm")
+        self.pinned.append((layer.name, *index, line))
         self._redraw()
 
     def clear_pinned(self):
@@ -209,7 +229,8 @@ class SpectrumPanel(QWidget):
         if isinstance(layer, Shapes) and len(layer.data):
             verts = np.asarray(layer.data[-1])[:, -2:]
             world = np.array([layer.data_to_world(v) for v in verts])[:, -2:]
-            return polygon_mask(m.x, m.y, world[:, ::-1]), f"{layer.name} shape"
+            rows = m.coords(m.spatial_dims[-2])      # y, or z for a depth section
+            return polygon_mask(m.x, rows, world[:, ::-1]), f"{layer.name} shape"
         return None, None
 
     def _map_layer_excluding(self, layer):
@@ -241,6 +262,68 @@ class SpectrumPanel(QWidget):
         self.region_lines += [line, band]
         self._redraw()
         return mean, sd, n
+
+    def _depth_images(self, layer, m):
+        """(images (k, nz, ...), names, units) to profile: the component images of the map's
+        results file (unmixing, MCR, NMF), else the mean-intensity layer itself."""
+        from mapkit.read.nexus import is_nexus_map, read_result_objects
+
+        path = layer.metadata["mapkit_path"]
+        if is_nexus_map(path):
+            found = {r.name: r for r in read_result_objects(path)}
+            for name, fname in (("unmixing", "abundance"), ("mcr", "images"),
+                                ("nmf", "images")):
+                f = found.get(name, None) and found[name].fields.get(fname)
+                if f is not None and f.axis_names[1:] == m.spatial_dims:
+                    return (np.asarray(f.data, float), [str(v) for v in f.axes[0].values],
+                            f.units)
+        return np.asarray(layer.data, float)[None], ["mean intensity"], "counts"
+
+    def plot_depth_profile(self):
+        """Draw the depth profile at the pixel under the cursor (the mean over the map when
+        the cursor is elsewhere) with its located interfaces; returns (profile, interfaces)."""
+        from mapkit.errors import MapkitError
+        from mapkit.quantify.depth import depth_profile, locate_interfaces
+
+        layer = self._map_layer()
+        if layer is None:
+            return None
+        m = self.map_for(layer)
+        if m.z is None or m.spatial_dims[0] != "z" or m.shape[0] < 2:
+            self.status.setText("The map has no depth axis: a depth profile needs a depth "
+                                "section or a volume.")
+            return None
+        images, names, units = self._depth_images(layer, m)
+        at = None
+        if self.current is not None and self.current[0] is layer:
+            at = tuple(self.current[2:])             # the lateral index below the depth
+        try:
+            profile = depth_profile(images, m.z, names=names, units=units, at=at)
+            interfaces, _ = locate_interfaces(profile)
+        except MapkitError as exc:
+            self.status.setText(str(exc))
+            return None
+        ax = self.depth_ax
+        ax.clear()
+        for k, name in enumerate(profile.names):
+            colour = _PIN_COLOURS[k % len(_PIN_COLOURS)]
+            ax.plot(profile.values[k], profile.z, color=colour, lw=1.2, label=name)
+        for i in interfaces:
+            ax.axhline(i.z, color=_FG, lw=0.8, ls="--")
+        ax.invert_yaxis()                            # depth grows downward
+        ax.set_ylabel("depth z (µm, apparent)", color=_FG, fontsize=9)
+        ax.set_xlabel(units or "value", color=_FG, fontsize=9)
+        ax.set_title(profile.where, color=_FG, fontsize=9)
+        self.depth_figure.set_facecolor(_BG)
+        ax.set_facecolor(_BG)
+        ax.tick_params(colors=_FG, labelsize=8)
+        ax.legend(fontsize=7, frameon=False, labelcolor=_FG)
+        self.depth_canvas.setVisible(True)
+        self.depth_canvas.draw_idle()
+        found = "; ".join(f"{i.component} {i.direction} at {i.z:.2f} ± {i.z_err:.2f} µm"
+                          for i in interfaces) or "no interface located"
+        self.status.setText(f"depth profile ({profile.where}): {found}. {profile.caution}")
+        return profile, interfaces
 
     def show_class_spectrum(self, row):
         """Draw a class's mean ± sd spectrum (a legend row from ``class_legend_data``)."""

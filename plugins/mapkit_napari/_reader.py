@@ -32,7 +32,7 @@ def _looks_like_table_map(path) -> bool:
             for line in fh:
                 if line.strip() and not line.lstrip().startswith("#"):
                     head = line.lower()
-                    return "x" in head and "y" in head
+                    return "x" in head and ("y" in head or "z" in head)
     except (OSError, UnicodeDecodeError):
         return False
     return False
