@@ -374,7 +374,7 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                     if cv is not None:
                         conv_img[y0:y0 + rows] = cv
                     if sp is not None:
-                        record.add(y0, sp & ~mask[y0:y0 + rows, :, None])
+                        record.add(y0, sp & ~mask[y0:y0 + rows, ..., None])
                     store_c.put(y0, c)
                     if not same:
                         store_k.put(y0, k)
