@@ -568,8 +568,10 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
         Xp = X - (X @ Q) @ Q.T
         # the leading principal directions of the background-free spectra (uncentred: the
         # mixing is linear, not affine, once the background is gone)
-        _, sv, vt = np.linalg.svd(Xp[:: max(1, Xp.shape[0] // 20000)], full_matrices=False)
-        V = vt[: self.n_components]
+        # (the leading eigenvectors of the channel Gram matrix: the subspace of a thin SVD
+        # of the spectra, at a small fraction of its cost on tens of thousands of spectra)
+        Xs = Xp[:: max(1, Xp.shape[0] // 20000)]
+        V = np.linalg.eigh(Xs.T @ Xs)[1][:, ::-1][:, : self.n_components].T
         scores = Xp @ V.T
         idx = successive_projections(scores, self.n_components)
         return least_area_lift(scores[idx] @ V, Q), idx
