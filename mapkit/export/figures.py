@@ -203,10 +203,8 @@ def save_image_figure(path, field: Field, index: int | None = None, *, title: st
             cb.solids.set_alpha(1)
     ax.set_xlabel("x (µm)")
     if field.axes[-2].name == "z":    # a depth section: depth downward, x and z scale bars
-        from .section import _bars
-
         ax.set_ylabel("depth z (µm, apparent)")
-        _bars(ax, extent, "apparent")
+        section_scale_bars(ax, extent, "apparent")
     else:
         ax.set_ylabel("y (µm)")
         _scale_bar(ax, extent)
@@ -299,3 +297,23 @@ def save_histogram_figure(path, values, *, label: str, overwrite: bool = False, 
     with atomic_path(path, overwrite=overwrite) as tmp:
         fig.savefig(tmp, dpi=dpi, format=str(path).rsplit(".", 1)[-1])
     return path
+
+
+def section_scale_bars(ax, extent, z_label):
+    """A horizontal (x) and a vertical (z) scale bar in the lower left corner."""
+    from matplotlib.patheffects import withStroke
+
+    x0, x1, z_bottom, z_top = extent
+    span_x, span_z = abs(x1 - x0), abs(z_bottom - z_top)
+    lx, lz = _nice_length(span_x), _nice_length(span_z)
+    bx, bz = x0 + 0.06 * span_x, z_bottom - 0.06 * span_z
+    stroke = [withStroke(linewidth=3, foreground="black")]
+    ax.plot([bx, bx + lx], [bz, bz], color="white", lw=2, path_effects=stroke,
+            solid_capstyle="butt")
+    ax.plot([bx, bx], [bz, bz - lz], color="white", lw=2, path_effects=stroke,
+            solid_capstyle="butt")
+    text = dict(color="white", fontsize=8, path_effects=[withStroke(linewidth=2, foreground="black")])
+    ax.text(bx + lx / 2, bz + 0.02 * span_z, f"x {lx:g} µm", ha="center", va="top", **text)
+    ax.text(bx + 0.02 * span_x, bz - lz / 2, f"z {lz:g} µm\n{z_label}", ha="left",
+            va="center", **text)
+    return lx, lz

@@ -6,27 +6,7 @@ from __future__ import annotations
 import numpy as np
 
 from .atomic import atomic_path
-from .figures import QUANTITY_CMAP, _figure, _nice_length, robust_limits
-
-
-def _bars(ax, extent, z_label):
-    """A horizontal (x) and a vertical (z) scale bar in the lower left corner."""
-    from matplotlib.patheffects import withStroke
-
-    x0, x1, z_bottom, z_top = extent
-    span_x, span_z = abs(x1 - x0), abs(z_bottom - z_top)
-    lx, lz = _nice_length(span_x), _nice_length(span_z)
-    bx, bz = x0 + 0.06 * span_x, z_bottom - 0.06 * span_z
-    stroke = [withStroke(linewidth=3, foreground="black")]
-    ax.plot([bx, bx + lx], [bz, bz], color="white", lw=2, path_effects=stroke,
-            solid_capstyle="butt")
-    ax.plot([bx, bx], [bz, bz - lz], color="white", lw=2, path_effects=stroke,
-            solid_capstyle="butt")
-    text = dict(color="white", fontsize=8, path_effects=[withStroke(linewidth=2, foreground="black")])
-    ax.text(bx + lx / 2, bz + 0.02 * span_z, f"x {lx:g} µm", ha="center", va="top", **text)
-    ax.text(bx + 0.02 * span_x, bz - lz / 2, f"z {lz:g} µm\n{z_label}", ha="left",
-            va="center", **text)
-    return lx, lz
+from .figures import QUANTITY_CMAP, _figure, robust_limits, section_scale_bars
 
 
 def save_section_figure(path, image, x, z, *, label: str = "", profile=None, interfaces=(),
@@ -58,7 +38,7 @@ def save_section_figure(path, image, x, z, *, label: str = "", profile=None, int
     fig.colorbar(im, ax=ax, shrink=0.8).set_label(label)
     ax.set_xlabel("x (µm)")
     ax.set_ylabel(f"depth z (µm, {z_label})")
-    bars = _bars(ax, extent, z_label)
+    bars = section_scale_bars(ax, extent, z_label)
     ax.set_title(title, fontsize=10)
     if side is not None:
         for k, name in enumerate(profile.names):
