@@ -391,7 +391,7 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                                         scratch_file.create_dataset(
                                             "background", shape=corrected.shape,
                                             dtype="float32",
-                                            chunks=layout.pixel_tile(*corrected.shape)))
+                                            chunks=layout.cube_tile(corrected.shape)))
             store_c.dataset = _write_cube_from(f, corrected, cleaned())
             # fit: on the whole map (one block, no sample) or on the sample
             if stride == 1 and plan.n_blocks == 1:

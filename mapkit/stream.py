@@ -96,12 +96,14 @@ class _Progress:
 @dataclass
 class BlockPlan:
     """How a map is processed: ``starts`` of its row blocks of ``rows`` rows each;
-    ``chunked`` when it is cleaned lazily block by block (``reason`` says why)."""
+    ``chunked`` when it is cleaned lazily block by block (``reason`` says why). A depth
+    section or volume is cut along z: its "rows" are depths (``unit``)."""
 
     rows: int
     starts: list
     chunked: bool
     reason: str
+    unit: str = "rows"
 
     @property
     def n_blocks(self) -> int:
@@ -117,7 +119,7 @@ class BlockPlan:
         mode = "chunk-wise" if self.chunked else "in memory"
         text = f"{mode} ({self.reason}): "
         text += "one block" if self.n_blocks == 1 else \
-            f"{self.n_blocks} blocks of {self.rows} rows"
+            f"{self.n_blocks} blocks of {self.rows} {self.unit}"
         if stride > 1:
             text += (f"; estimators fitted on a sample of about {n_sample} spectra (one "
                      f"good pixel in {stride}), applied block by block")
@@ -142,25 +144,24 @@ def plan_blocks(m, *, memory_fraction: float = 0.5, chunked: bool = False,
                   "comfortably in memory")
     else:
         return BlockPlan(ny, [0], False, "the map fits comfortably")
-    if m.spatial_dims != ("y", "x"):
-        raise MapkitError(f"the chunk-wise path takes (y, x) maps only, this is a {m.kind} "
-                          f"({', '.join(m.spatial_dims)})", file=m.source, field="intensity",
-                          fix="process it in memory: crop the depth range or bin the layers "
-                              "until it fits, and drop --chunked")
     # a band is at most BAND_BYTES, less on a machine with little memory to spare
     budget = max(1 << 20, int(memory_fraction * memory_available()) // 16)
     rows = band_rows(m, block_bytes or min(BAND_BYTES, budget))
-    return BlockPlan(rows, list(range(0, ny, rows)), True, reason)
+    unit = "rows" if m.spatial_dims[0] == "y" else "depths"
+    return BlockPlan(rows, list(range(0, ny, rows)), True, reason, unit)
 
 
 def block_map(m, intensity, y0: int):
-    """The rows ``y0:y0 + len(intensity)`` of map ``m`` as a map in memory."""
+    """The rows ``y0:y0 + len(intensity)`` of map ``m`` as a map in memory: rows of y of
+    an area map, depths (z) of a section or a volume."""
     from dataclasses import replace
 
     if y0 == 0 and intensity.shape[0] == m.shape[0]:   # the whole map (any spatial shape)
         return replace(m, intensity=intensity)
     y1 = y0 + intensity.shape[0]
-    return replace(m, intensity=intensity, y=m.y[y0:y1], mask=m.mask[y0:y1])
+    first = m.spatial_dims[0]
+    return replace(m, intensity=intensity, mask=m.mask[y0:y1],
+                   **{first: m.coords(first)[y0:y1]})
 
 
 def sample_map(m, spectra):
@@ -194,25 +195,27 @@ class BlockStore:
 
 
 def stitch(parts, m, *, sum_keys=()):
-    """One result from the results of consecutive row blocks of map ``m``: fields whose
-    last axes are (y, x) are joined along y; the others (spectra, references) are the
+    """One result from the results of consecutive row blocks of map ``m``: image fields
+    are joined along the map's first spatial axis (y, or z of a depth map); the others (spectra, references) are the
     first block's; ``sum_keys`` of the summary are summed over the blocks."""
     import dataclasses
 
     first = parts[0]
     if len(parts) == 1:       # one block: the whole map, whatever its spatial axes
         return first
-    y = Axis("y", m.y, "um")
+    dims = m.spatial_dims     # blocks run along the first: y of a map, z of a depth map
+    lead = Axis(dims[0], m.coords(dims[0]), "um")
+    at = -len(dims)
     fields = {}
     for name, fld in first.fields.items():
         if not fld.is_image:
             fields[name] = fld
             continue
-        data = np.concatenate([p.fields[name].data for p in parts], axis=-2)
+        data = np.concatenate([p.fields[name].data for p in parts], axis=at)
         errors = None if fld.errors is None else np.concatenate(
-            [p.fields[name].errors for p in parts], axis=-2)
-        fields[name] = dataclasses.replace(fld, data=data, errors=errors,
-                                           axes=fld.axes[:-2] + (y, fld.axes[-1]))
+            [p.fields[name].errors for p in parts], axis=at)
+        axes = fld.axes[:at] + (lead,) + fld.axes[at + 1:]
+        fields[name] = dataclasses.replace(fld, data=data, errors=errors, axes=axes)
     summary = dict(first.summary)
     for key in sum_keys:
         if key in summary:

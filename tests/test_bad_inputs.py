@@ -202,7 +202,7 @@ CASES = [
     ("depth section read by stated axis order", lambda t: _foreign_section(t, z=np.arange(6) * 2.0),
      "ok", "section z,x"),
     ("volume on the chunk-wise path", lambda t: (analyse(_volume(t / "v.h5"), "--chunked"), [t / "v.h5"]),
-     "error", "the chunk-wise path takes (y, x) maps only, this is a volume (z, y, x)"),
+     "ok", "mode      chunk-wise (--chunked): "),
 ]
 
 
