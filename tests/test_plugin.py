@@ -518,3 +518,31 @@ def test_depth_profile_of_a_clicked_point(make_napari_viewer, tmp_path):
     assert any(abs(i.z - s.truth["interface"]) < 0.5 for i in interfaces)
     assert panel.depth_canvas.isVisible() or not panel.isVisible()
     assert "apparent" in panel.status.text()
+
+
+def test_depth_profile_over_a_drawn_region(make_napari_viewer, tmp_path):
+    """A rectangle drawn over a volume: the profile is the mean over the pixels inside it at
+    every depth (numpy's nanmean over the same pixels as the reference)."""
+    from mapkit import RamanMap
+    from mapkit.export import write_map
+    from mapkit_napari._panel import SpectrumPanel
+
+    rng = np.random.default_rng(3)
+    cube = rng.poisson(100, (4, 6, 7, 30)).astype(np.float32)
+    m = RamanMap(cube, raman_shift=np.linspace(400, 1600, 30), x=np.arange(7) * 0.5,
+                 y=np.arange(6) * 0.5, z=np.array([0.0, 1.0, 2.0, 3.0]))
+    path = write_map(tmp_path / "vol.h5", m)
+    viewer = make_napari_viewer()
+    (layer,) = viewer.open(str(path), plugin="mapkit-napari")
+    panel = SpectrumPanel(viewer)
+    viewer.window.add_dock_widget(panel)
+    # y 0.4-1.6 um, x 0.9-2.1 um: rows 1-3, columns 2-4
+    shapes = viewer.add_shapes([[[0, 0.4, 0.9], [0, 0.4, 2.1], [0, 1.6, 2.1], [0, 1.6, 0.9]]],
+                               shape_type="polygon")
+    viewer.layers.selection.active = shapes
+    profile, _ = panel.plot_depth_profile()
+    inside = np.zeros((6, 7), bool)
+    inside[1:4, 2:5] = True
+    expected = np.nanmean(np.asarray(layer.data, float)[:, inside], axis=-1)
+    np.testing.assert_allclose(profile.values[0], expected, rtol=1e-6)
+    assert "9 pixels" in profile.where

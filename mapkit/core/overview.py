@@ -86,12 +86,13 @@ def mean_image_steps(m, *, sample_bytes: int | None = None,
     sample_bytes = SAMPLE_BYTES if sample_bytes is None else sample_bytes
     band_bytes = BAND_BYTES if band_bytes is None else band_bytes
     cube = m.intensity
-    ny, nx, ns = m.shape
     itemsize = np.dtype(cube.dtype).itemsize
-    total_bytes = ny * nx * ns * itemsize
-    if not m.is_lazy or total_bytes <= sample_bytes:
+    total_bytes = int(np.prod(m.shape)) * itemsize
+    # depth sections and volumes are averaged at once (the tile estimate is per (y, x) plane)
+    if not m.is_lazy or total_bytes <= sample_bytes or len(m.shape) != 3:
         yield MeanImageStep(_mean(cube), 1, 1, 1.0)
         return
+    ny, nx, ns = m.shape
     ty, tx = _tiles(m)
     row_bytes = nx * ns * itemsize
     # bands of whole tile rows, about band_bytes each

@@ -61,8 +61,9 @@ class SpectrumPanel(QWidget):
         self.clear_button.clicked.connect(self.clear_pinned)
         self.depth_button = QPushButton("Depth profile")
         self.depth_button.setToolTip("Component images (or the mean intensity) against depth "
-                                     "at the pixel under the cursor, with the located "
-                                     "interfaces (depth sections and volumes)")
+                                     "at the pixel under the cursor, or averaged inside "
+                                     "the last shape of a selected shapes layer, with the "
+                                     "located interfaces (depth sections and volumes)")
         self.depth_button.clicked.connect(self.plot_depth_profile)
         row = QHBoxLayout()
         for w in (self.show_baseline, self.show_corrected, self.region_button, self.clear_button,
@@ -279,9 +280,27 @@ class SpectrumPanel(QWidget):
                             f.units)
         return np.asarray(layer.data, float)[None], ["mean intensity"], "counts"
 
+    def _lateral_region(self, m):
+        """The pixels beside the depth axis inside the last shape of the selected shapes
+        layer: an (ny, nx) polygon of a volume, the x span of a section; None without one."""
+        from napari.layers import Shapes
+
+        from mapkit.quantify import polygon_mask
+
+        layer = self.viewer.layers.selection.active
+        if not isinstance(layer, Shapes) or not len(layer.data):
+            return None
+        verts = np.asarray(layer.data[-1])
+        world = np.array([layer.data_to_world(v) for v in verts])
+        if m.spatial_dims == ("z", "y", "x"):
+            return polygon_mask(m.x, m.y, world[:, -2:][:, ::-1])
+        xs = world[:, -1]
+        return (m.x >= xs.min()) & (m.x <= xs.max())
+
     def plot_depth_profile(self):
-        """Draw the depth profile at the pixel under the cursor (the mean over the map when
-        the cursor is elsewhere) with its located interfaces; returns (profile, interfaces)."""
+        """Draw the depth profile inside the last shape of a selected shapes layer, else at
+        the pixel under the cursor (the mean over the map when the cursor is elsewhere),
+        with its located interfaces; returns (profile, interfaces)."""
         from mapkit.errors import MapkitError
         from mapkit.quantify.depth import depth_profile, locate_interfaces
 
@@ -294,11 +313,12 @@ class SpectrumPanel(QWidget):
                                 "section or a volume.")
             return None
         images, names, units = self._depth_images(layer, m)
-        at = None
-        if self.current is not None and self.current[0] is layer:
+        at, region = None, self._lateral_region(m)
+        if region is None and self.current is not None and self.current[0] is layer:
             at = tuple(self.current[2:])             # the lateral index below the depth
         try:
-            profile = depth_profile(images, m.z, names=names, units=units, at=at)
+            profile = depth_profile(images, m.z, names=names, units=units, at=at,
+                                    region=region)
             interfaces, _ = locate_interfaces(profile)
         except MapkitError as exc:
             self.status.setText(str(exc))
