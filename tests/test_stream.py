@@ -47,6 +47,23 @@ def _datasets(path):
     return out
 
 
+def _assert_same_numbers(path_a, path_b):
+    """Every dataset of two results files: the same names and shapes, integers equal,
+    floats within 1e-7 of the field's largest value; returns the first file's datasets."""
+    a, b = _datasets(path_a), _datasets(path_b)
+    assert set(a) == set(b)
+    for name, x in a.items():
+        y = b[name]
+        assert x.shape == y.shape, name
+        if x.dtype.kind in "iub":
+            np.testing.assert_array_equal(y, x, err_msg=name)
+        else:
+            scale = np.nanmax(np.abs(x)) if np.isfinite(x).any() else 1.0
+            np.testing.assert_allclose(y, x, rtol=0, atol=1e-7 * max(scale, 1e-12),
+                                       equal_nan=True, err_msg=name)
+    return a
+
+
 @pytest.fixture(scope="module")
 def default_runs(sample_dir, recipe, tmp_path_factory):
     """The default methods (background MCR, dominant classes, unmixing, content) on the same
@@ -65,19 +82,8 @@ def test_chunkwise_gives_the_in_memory_numbers(default_runs):
     assert mem["summary"]["mode"] == "in memory" and mem["summary"]["plan"]["blocks"] == 1
     assert chunk["summary"]["mode"] == "chunk-wise" and chunk["summary"]["plan"]["blocks"] > 1
     assert chunk["summary"]["plan"]["sample_stride"] == 1
-    a, b = _datasets(tmp / "mem" / "results.h5"), _datasets(tmp / "chunk" / "results.h5")
-    assert set(a) == set(b)
-    compared = 0
-    for name, x in a.items():
-        y = b[name]
-        assert x.shape == y.shape, name
-        if x.dtype.kind in "iub":
-            np.testing.assert_array_equal(y, x, err_msg=name)
-        else:
-            scale = np.nanmax(np.abs(x)) if np.isfinite(x).any() else 1.0
-            np.testing.assert_allclose(y, x, rtol=0, atol=1e-7 * max(scale, 1e-12),
-                                       equal_nan=True, err_msg=name)
-        compared += 1
+    a = _assert_same_numbers(tmp / "mem" / "results.h5", tmp / "chunk" / "results.h5")
+    compared = len(a)
     for group in ("mcr/images", "classes/labels", "unmixing/abundance", "api/image",
                   "concentration/concentration", "quality/snr", "spikes/count",
                   "spikes/replaced", "map/intensity"):
@@ -263,16 +269,6 @@ def test_depth_maps_chunkwise_give_the_in_memory_numbers(tmp_path, kind):
                     figures=False, block_bytes=per_depth)
     assert mem["summary"]["plan"]["blocks"] == 1
     assert chunk["summary"]["plan"]["blocks"] == m.shape[0]     # one depth per block
-    a, b = _datasets(tmp_path / "mem" / "results.h5"), _datasets(tmp_path / "chunk" / "results.h5")
-    assert set(a) == set(b)
-    for name, x in a.items():
-        y = b[name]
-        assert x.shape == y.shape, name
-        if x.dtype.kind in "iub":
-            np.testing.assert_array_equal(y, x, err_msg=name)
-        else:
-            scale = np.nanmax(np.abs(x)) if np.isfinite(x).any() else 1.0
-            np.testing.assert_allclose(y, x, rtol=0, atol=1e-7 * max(scale, 1e-12),
-                                       equal_nan=True, err_msg=name)
+    a = _assert_same_numbers(tmp_path / "mem" / "results.h5", tmp_path / "chunk" / "results.h5")
     labels = next(n for n in a if n.endswith("classes/labels/labels"))
     assert a[labels].shape == m.shape[:-1]

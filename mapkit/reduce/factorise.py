@@ -200,6 +200,13 @@ class NMFComponents(TransformerMixin, BaseEstimator):
     def __sklearn_tags__(self):
         return float64_tags(super().__sklearn_tags__())
 
+    def _vca_start(self, Xc) -> dict:
+        """Start values (W, H) from pure pixels for ``init="vca"``; none otherwise."""
+        if self.init != "vca":
+            return {}
+        H0 = Xc[vca(Xc, self.n_components, random_state=self.random_state)] + 1e-9
+        return {"W": np.clip(nnls_batch(H0.T, Xc.T).T, 1e-9, None), "H": H0}
+
     def fit(self, m, y=None, raman_shift=None):
         """Fit on a map or on spectra as rows (``raman_shift``: their axis, arrays only)."""
         from sklearn.decomposition import NMF, MiniBatchNMF
@@ -216,12 +223,7 @@ class NMFComponents(TransformerMixin, BaseEstimator):
                                  else "custom", **kw)
         else:
             model = NMF(init="nndsvda" if self.init == "nndsvda" else "custom", **kw)
-        if self.init == "vca":
-            H0 = Xc[vca(Xc, self.n_components, random_state=self.random_state)] + 1e-9
-            W0 = np.clip(nnls_batch(H0.T, Xc.T).T, 1e-9, None)
-            model.fit_transform(Xc, W=W0, H=H0)
-        else:
-            model.fit_transform(Xc)
+        model.fit_transform(Xc, **self._vca_start(Xc))
         self._keep(model, axis_of(mp, X.shape[1], raman_shift))
         self.fit_images_ = self.transform(m)
         return self
@@ -270,12 +272,7 @@ class NMFComponents(TransformerMixin, BaseEstimator):
                                  max_iter=self.max_iter, random_state=self.random_state,
                                  tol=1e-6, init="nndsvda" if self.init == "nndsvda"
                                  else "custom")
-            if self.init == "vca":
-                H0 = Xc[vca(Xc, self.n_components, random_state=self.random_state)] + 1e-9
-                W0 = np.clip(nnls_batch(H0.T, Xc.T).T, 1e-9, None)
-                model.partial_fit(Xc, W=W0, H=H0)
-            else:
-                model.partial_fit(Xc)
+            model.partial_fit(Xc, **self._vca_start(Xc))
             shift = axis_of(mp, X.shape[1], raman_shift)
         else:
             model.partial_fit(Xc)
