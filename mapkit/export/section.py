@@ -35,7 +35,8 @@ def save_section_figure(path, image, x, z, *, label: str = "", profile=None, int
     im = ax.imshow(np.ma.masked_invalid(img), extent=extent, cmap=QUANTITY_CMAP,
                    interpolation="nearest", vmin=lo, vmax=hi, aspect="equal")
     im.cmap.set_bad("#bbbbbb")
-    fig.colorbar(im, ax=ax, shrink=0.8).set_label(label)
+    # below the image: beside it the bar would crowd the profile panel
+    fig.colorbar(im, ax=ax, shrink=0.8, location="bottom").set_label(label)
     ax.set_xlabel("x (µm)")
     ax.set_ylabel(f"depth z (µm, {z_label})")
     bars = section_scale_bars(ax, extent, z_label)
@@ -47,7 +48,7 @@ def save_section_figure(path, image, x, z, *, label: str = "", profile=None, int
             side.axhline(i.z, color="#555555", lw=0.8, ls="--",
                          label=f"{i.component} {i.direction}: {i.z:.2f} ± {i.z_err:.2f} µm")
         side.set_xlabel(profile.units or "value")
-        side.legend(fontsize=7, frameon=False, loc="best")
+        side.legend(fontsize=7, frameon=True, framealpha=0.85, loc="best")
         side.set_title(profile.where, fontsize=9)
     fig.suptitle(profile.caution if profile is not None else
              ("depths apparent (nominal), not corrected for refraction" if not corrected
