@@ -133,3 +133,19 @@ def test_stack_of_maps_at_depths(tmp_path):
     other = RamanMap(layers[0][:1], raman_shift=SHIFT, x=np.arange(4.0) + 0.5, y=[0.0])
     with pytest.raises(MapkitError, match="other x values"):
         stack_depths(lines[:2] + [other], [0.0, 2.0, 4.0])
+
+
+def test_a_file_written_before_depth_axes_reads_as_an_area_map(sample_map_path):
+    """The bundled tablet map was written before maps had a depth axis (its layout has no
+    z): it opens as the same (y, x) map, and its NXdata axes are still the three of old."""
+    import h5py
+
+    from mapkit.read import open_map
+
+    with h5py.File(sample_map_path) as f:
+        assert [str(a) for a in f["entry/map"].attrs["axes"]] == ["y", "x", "raman_shift"]
+        assert "z" not in f["entry/map"]
+        shape = f["entry/map/intensity"].shape
+    m = open_map(sample_map_path)
+    assert m.dims == ("y", "x", "raman_shift") and m.kind == "map" and m.z is None
+    assert m.shape == shape and m.spatial_dims == ("y", "x")
