@@ -193,6 +193,29 @@ def test_writer_keeps_the_scale(make_napari_viewer, sample_map_path, tmp_path):
         assert xres[0] / xres[1] == pytest.approx(0.5)
 
 
+def test_writer_saves_a_volume_as_a_z_stack(make_napari_viewer, tmp_path):
+    """A volume layer saved from the viewer is an ImageJ z stack with the depth step as its
+    spacing and the lateral pixel size in the resolution tags (ImageJ hyperstack
+    convention, from memory)."""
+    import tifffile
+
+    from mapkit import RamanMap
+    from mapkit.export import write_map
+
+    cube = np.random.default_rng(1).poisson(50, (3, 4, 5, 20)).astype(np.float32)
+    m = RamanMap(cube, raman_shift=np.linspace(400, 1600, 20), x=np.arange(5) * 0.5,
+                 y=np.arange(4) * 0.5, z=np.array([0.0, 1.5, 3.0]))
+    path = write_map(tmp_path / "vol.h5", m)
+    viewer = make_napari_viewer()
+    (layer,) = viewer.open(str(path), plugin="mapkit-napari")
+    out = layer.save(str(tmp_path / "vol.tif"), plugin="mapkit-napari")
+    with tifffile.TiffFile(out[0] if isinstance(out, list) else out) as tif:
+        assert tif.series[0].shape == (3, 4, 5)
+        assert tif.imagej_metadata["spacing"] == pytest.approx(1.5)
+        xres = tif.pages[0].tags["XResolution"].value
+        assert xres[0] / xres[1] == pytest.approx(2.0)      # pixels per µm
+
+
 def test_reader_opens_text_tables(make_napari_viewer, tmp_path):
     rows = ["x,y,100,200,300"] + [f"{ix},{iy},1,{ix + iy},3" for iy in range(3) for ix in range(4)]
     (tmp_path / "scan.csv").write_text("\n".join(rows) + "\n")

@@ -6,15 +6,20 @@ import numpy as np
 
 
 def _field(data, meta, signal):
+    """The layer as a mapkit Field: its axes named as the map's (y, x; a section's z, x; a
+    volume's z, y, x) with the layer's µm scale and origin; one more leading axis is a
+    stack of planes."""
     from mapkit.core.result import Axis, Field
 
-    scale = meta.get("scale") or (1.0, 1.0)
-    translate = meta.get("translate") or (0.0, 0.0)
     data = np.asarray(data)
-    ny, nx = data.shape[-2:]
-    axes = (Axis("y", translate[-2] + scale[-2] * np.arange(ny), "um"),
-            Axis("x", translate[-1] + scale[-1] * np.arange(nx), "um"))
-    if data.ndim == 3:
+    dims = tuple(meta.get("metadata", {}).get("mapkit_dims") or ("y", "x"))
+    dims = dims[-min(len(dims), data.ndim):]
+    scale = tuple(meta.get("scale") or (1.0,) * data.ndim)
+    translate = tuple(meta.get("translate") or (0.0,) * data.ndim)
+    first = data.ndim - len(dims)          # the data axis of the first spatial axis
+    axes = tuple(Axis(d, translate[first + i] + scale[first + i] * np.arange(data.shape[first + i]),
+                      "um") for i, d in enumerate(dims))
+    if first:
         axes = (Axis("plane", np.arange(data.shape[0])),) + axes
     units = meta.get("metadata", {}).get("units", "")
     return Field(signal, data, axes, units, long_name=meta.get("name", ""))
