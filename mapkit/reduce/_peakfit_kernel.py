@@ -86,6 +86,8 @@ if HAVE_NUMBA:
         fb, mb, qb, j1b, j2b, lb, ib, eb = (buf[0], buf[1], buf[2], buf[3], buf[4],
                                             buf[5], buf[6], buf[7])
         tiny = 0
+        # one loop per line shape, written out twice on purpose: a branch inside the loop
+        # keeps LLVM from vectorising it
         if shape == 0:
             for i in range(N):
                 u = 2.0 * (s[i] - c) / wd
