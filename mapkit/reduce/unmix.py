@@ -140,17 +140,20 @@ def unmix_spectra(R, X, shift, baseline_order: int | None = None, *, sum_to_one:
     """
     R = np.asarray(R, float)
     X = np.asarray(X, float)
+    # spectra stay as rows (m, n) throughout: products with the transposed cube cost
+    # several times more than the same products row-major
     if baseline_order is None:
-        Rp, Xp = R.T, X.T
+        Rp, Xp = R.T, X
     else:
         Q = polynomial_basis(shift, baseline_order)
         Rp = R.T - Q @ (Q.T @ R.T)
-        Xp = X.T - Q @ (Q.T @ X.T)
+        Xp = X - (X @ Q) @ Q.T
     if sum_to_one:
-        A, converged = simplex_ls_batch(Rp, Xp, return_converged=True)
+        A, converged = simplex_ls_batch(Rp, Xp.T, return_converged=True)
     else:
-        A, converged = nnls_batch(Rp, Xp, tol=tol, return_converged=True)
-    rms = np.sqrt(np.mean((Xp - Rp @ A) ** 2, axis=0))
+        A, converged = nnls_gram(Rp.T @ Rp, np.ascontiguousarray((Xp @ Rp).T), tol=tol,
+                                 return_converged=True)
+    rms = np.sqrt(np.mean((Xp - A.T @ Rp.T) ** 2, axis=1))
     return (A, rms, converged) if return_converged else (A, rms)
 
 
@@ -183,11 +186,20 @@ def unmix_spectra_poisson(R, X, shift, baseline_order: int | None = None, *,
     """
     R = np.asarray(R, float)
     X = np.asarray(X, float)
-    A0, _ = unmix_spectra(R, X, shift, baseline_order, tol=1e-6)
     n = X.shape[1]
     Q = (np.zeros((n, 0)) if baseline_order is None
          else polynomial_basis(shift, baseline_order))
-    A = np.zeros((R.shape[0], X.shape[0]))
+    # the unweighted fit of :func:`unmix_spectra` (its abundances only): the projected
+    # references are orthogonal to the polynomials, so R_p'X_p = R_p'X without projecting X
+    Rp = R.T - Q @ (Q.T @ R.T)
+    A0 = nnls_gram(Rp.T @ Rp, np.ascontiguousarray((X @ Rp).T), tol=1e-6)
+    k, p = R.shape[0], Q.shape[1]
+    # the per-pixel weighted sums R'WR, R'WQ, Q'WQ as one product of the weights with the
+    # channel-wise products of the basis vectors (n x (k² + kp + p²)): the normal equations
+    # of the weighted fit, with the polynomials eliminated by their Schur complement
+    B = np.concatenate([R.T, Q], axis=1)                                # (n, k + p)
+    BB = (B[:, :, None] * B[:, None, :]).reshape(n, (k + p) ** 2)
+    A = np.zeros((k, X.shape[0]))
     rms = np.zeros(X.shape[0])
     converged = np.zeros(X.shape[0], bool)
     for start in range(0, X.shape[0], WEIGHTED_BLOCK):
@@ -195,18 +207,22 @@ def unmix_spectra_poisson(R, X, shift, baseline_order: int | None = None, *,
         Xb = X[sl]
         raman = A0[:, sl].T @ R
         mu = raman + ((Xb - raman) @ Q) @ Q.T
-        sw = 1.0 / np.sqrt(np.maximum(mu, 1.0))
-        Qo = np.linalg.qr(sw[:, :, None] * Q[None])[0] if Q.shape[1] else None
-        Rw = sw[:, :, None] * R.T[None]                     # (b, n, k)
-        Xw = sw * Xb
-        if Qo is not None:
-            Rw = Rw - Qo @ np.einsum("bnp,bnk->bpk", Qo, Rw)
-            Xw = Xw - np.einsum("bnp,bp->bn", Qo, np.einsum("bnp,bn->bp", Qo, Xw))
-        Ab, ok = nnls_gram(np.einsum("bnk,bnl->bkl", Rw, Rw), np.einsum("bnk,bn->kb", Rw, Xw),
-                           tol=tol, return_converged=True)
+        w = 1.0 / np.maximum(mu, 1.0)                                   # (b, n)
+        M = (w @ BB).reshape(-1, k + p, k + p)                          # B'WB per pixel
+        h = (w * Xb) @ B                                                # B'WX (b, k + p)
+        G, H = M[:, :k, :k], h[:, :k]
+        if p:
+            T = np.linalg.solve(M[:, k:, k:], np.concatenate(
+                [M[:, k:, :k], h[:, k:, None]], axis=2))                # (Q'WQ)⁻¹[Q'WR, Q'WX]
+            G = G - M[:, :k, k:] @ T[:, :, :k]
+            H = H - (M[:, :k, k:] @ T[:, :, k:])[:, :, 0]
+        Ab, ok = nnls_gram(G, H.T, tol=tol, return_converged=True)
         A[:, sl], converged[sl] = Ab, ok
-        resid = (Xw - np.einsum("bnk,kb->bn", Rw, Ab)) / sw
-        rms[sl] = np.sqrt(np.mean(resid ** 2, axis=1))
+        r = Xb - Ab.T @ R                                               # residual before the
+        if p:                                                           # weighted baseline
+            c = np.linalg.solve(M[:, k:, k:], ((w * r) @ Q)[:, :, None])[:, :, 0]
+            r = r - c @ Q.T
+        rms[sl] = np.sqrt(np.mean(r ** 2, axis=1))
     return A, rms, converged
 
 
