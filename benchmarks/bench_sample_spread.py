@@ -66,7 +66,8 @@ def main(argv=None):
              for name, sl in (("even", slice(0, None, 2)), ("odd", slice(1, None, 2)))]
     print(f"{X.shape[0]} spectra; start pixels of the full fit: "
           f"{sorted(full.start_pixels_.tolist())}")
-    print("| fit | against | cosine | ARI | image RMS | start pixels (rows of the spectra the start came from) |")
+    print("| fit | against | cosine | ARI | image RMS | start pixels (rows of the spectra the "
+          "start came from) |")
     print("|---|---|---|---|---|---|")
     for name, est, ref in rows:
         c, a, r = compare(est, ref, X, shift)
