@@ -415,7 +415,16 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
             lap("clean, write cube, sample")
             names = [f"component {i + 1}" for i in range(s.n_components)]
             if s.component_method == "mcr":   # fits the background itself: the despiked map
-                comp = BackgroundMCR(n_components=s.n_components, random_state=s.seed).fit(fit_k)
+                comp = BackgroundMCR(n_components=s.n_components, random_state=s.seed)
+                start = None
+                if stride > 1:   # the purest pixels of every block, the sweeps on the sample
+                    def background_blocks():
+                        for y0 in plan.starts:
+                            blk = (store_c if same else store_k).get(y0, plan.rows)
+                            yield blk.reshape(-1, ns)[~mask[y0:y0 + blk.shape[0]].ravel()]
+
+                    start = comp.start_from_blocks(background_blocks, keep.raman_shift)
+                comp.fit(fit_k, start=start)
             else:
                 comp = NMFComponents(n_components=s.n_components, random_state=s.seed).fit(fit_c)
             comp_on_k = s.component_method == "mcr"

@@ -130,10 +130,30 @@ def test_a_fitting_sample_stays_close_to_the_whole_map(sample_dir, recipe, tmp_p
     applied to all, against the fit on all spectra. Measured over seeds 0-2 on the blend
     map (2026-12-02): unmixing and content maps agree to 1e-16 of their 99th percentile
     (the sample only chooses the baseline order: the same one); the background MCR moves
-    more, since its start is the purest pixels and a sample of 640 spectra misses some:
-    component cosine >= 0.926, class ARI >= 0.496 against the full fit, component images
-    within 9.4 % RMS of their 99th percentile. Asserted with a margin: 1e-9, 0.90, 0.40,
-    0.15."""
+    more, its sweeps running on the sample (from the purest pixels of all blocks:
+    ``BackgroundMCR.start_from_blocks``; 2-core dev machine): component cosine
+    0.980-0.984, class ARI 0.612-0.679 against the full fit,
+    component images within 5.4-6.6 % RMS of their 99th percentile (with the sample's own
+    purest pixels as the start, before: 0.926-0.950, 0.496-0.645, 6-9.4 %). Asserted with
+    a margin: 1e-9, 0.95, 0.50, 0.10.
+
+    Why the MCR moves this much (measured 2026-12-02, 2-core dev machine, BackgroundMCR
+    fitted directly on the despiked blend map's 1280 spectra; cosine / ARI of the
+    largest-image labels / image RMS as above): the full fit is itself this sensitive.
+    Its seed changes nothing (seeds 0-2 identical), but the two halves of the map (even,
+    odd spectra) fitted alone differ from each other by 0.941 / 0.605 / 12.4 %; the even
+    half keeps the full fit's four start pixels and still differs from it by 0.968 /
+    0.842 / 6.7 %, the odd half by 0.943 / 0.632 / 12.4 %; 100 sweeps instead of 25 on
+    all spectra: 0.993 / 0.917 / 2.6 %. Near-tied purest pixels swap with a small change
+    of the principal subspace (the odd half's subspace ranks pixels 163 and 223 above 236
+    and 958), and the sweeps settle on a different solution from the changed start.
+    The same start for both halves (the full fit's) brings the odd half to 0.964 / 0.828 /
+    6.9 % (even: 0.978 / 0.867 / 6.2 %): hence the start from all blocks. Tried and not
+    adopted (not better over both offsets): each block's own purest-pixel candidates
+    added to the sample (odd half 0.690 / 0.261 / 16.3 %, worse), used only
+    for the start (0.877 / 0.811 / 10.0 %, mixed), and 1-10 further sweeps on all spectra
+    after the sampled fit (odd half unchanged: 0.94 / 0.62 / 12.4 %). The rest is the
+    spread of the sweeps on another set of spectra."""
     import mapkit.stream as stream
     from mapkit.pipeline import Settings
 
@@ -151,11 +171,11 @@ def test_a_fitting_sample_stays_close_to_the_whole_map(sample_dir, recipe, tmp_p
     assert rel_rms("unmixing", "abundance") < 1e-9
     assert rel_rms("concentration", "concentration") < 1e-9
     cos = _cos(b["mcr"].fields["spectra"].data, a["mcr"].fields["spectra"].data)
-    assert cos.min() >= 0.90, cos
+    assert cos.min() >= 0.95, cos
     la, lb = a["classes"].fields["labels"].data, b["classes"].fields["labels"].data
     good = la >= 0
-    assert adjusted_rand_score(la[good], lb[good]) >= 0.40
-    assert rel_rms("mcr", "images") < 0.15
+    assert adjusted_rand_score(la[good], lb[good]) >= 0.50
+    assert rel_rms("mcr", "images") < 0.10
 
 
 def test_nmf_and_kmeans_chunkwise_match_in_memory(sample_dir, recipe, tmp_path):
