@@ -7,6 +7,7 @@ and the viewer agree.
 
 from __future__ import annotations
 
+import contextlib
 import time
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
@@ -192,7 +193,7 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
                           fix=f"convert it first: mapkit convert {map_path} map.h5")
     t0 = time.perf_counter()
     with stream.dask_scheduler(workers, address) if plan.chunked else \
-            _nullcontext("this process") as where:
+            contextlib.nullcontext("this process") as where:
         out = _analyse_blocks(map_path, outdir, raw, plan, where, s=s, refs=refs, model=model,
                               recipe=recipe, regions=regions, overwrite=overwrite,
                               progress=progress, figures=figures, formats=formats,
@@ -217,17 +218,6 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     written.append(write_summary(outdir, summary))
     return {"written": [Path(p) for p in written], "summary": summary, "results": results,
             "calibration": model.calibration if model is not None else None, "model": model}
-
-
-class _nullcontext:
-    def __init__(self, value):
-        self.value = value
-
-    def __enter__(self):
-        return self.value
-
-    def __exit__(self, *exc):
-        return False
 
 
 def _inputs(map_path, standards, optical, placed):
@@ -357,7 +347,7 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
 
     with results_file(outdir / "results.h5", final, overwrite=overwrite, inputs=inputs,
                       optical=placed) as f, \
-            (h5py.File(scratch, "w") if plan.n_blocks > 1 and not same else _nullcontext(None)) \
+            (h5py.File(scratch, "w") if plan.n_blocks > 1 and not same else contextlib.nullcontext(None)) \
             as scratch_file:
         try:
             # pass 1: clean block by block; one writer stores the cube; keep a sample

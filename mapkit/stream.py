@@ -76,23 +76,6 @@ def dask_scheduler(workers: int | None = None, address: str | None = None):
         yield f"LocalCluster, {workers} worker processes"
 
 
-class _Progress:
-    """Progress of the band passes with an estimate of the time left."""
-
-    def __init__(self, total, enabled=True, label="mapkit"):
-        from tqdm.auto import tqdm
-
-        self.bar = tqdm(total=total, desc=label, unit="band", disable=not enabled, leave=False)
-
-    def step(self, text):
-        self.bar.set_postfix_str(text)
-        self.bar.update()
-
-    def close(self):
-        self.bar.close()
-
-
-
 @dataclass
 class BlockPlan:
     """How a map is processed: ``starts`` of its row blocks of ``rows`` rows each;
