@@ -9,7 +9,7 @@ from .cli_common import _check_outputs, _common, _map_files, _prepare, _write, a
 
 
 def cmd_calibrate(a):
-    from .export.atomic import atomic_path
+    from .export.atomic import atomic_path, output_transaction
     from .export.figures import save_calibration_figure
     from .pipeline import Settings, quantification_model
     from .preprocess.recipe import Recipe
@@ -23,10 +23,12 @@ def cmd_calibrate(a):
     model = quantification_model(a.standards, library, recipe, s)
     out = Path(a.out)
     out.mkdir(parents=True, exist_ok=True)
-    path = model.save(out / "quant_model.json", overwrite=a.overwrite)
-    with atomic_path(out / "recipe.toml", overwrite=True) as tmp:
-        tmp.write_text(model.recipe_text)
-    save_calibration_figure(out / "calibration.png", model.calibration, overwrite=True)
+    # the model, its recipe and its figure replace the previous ones together, or not at all
+    with output_transaction(out):
+        path = model.save(out / "quant_model.json", overwrite=a.overwrite)
+        with atomic_path(out / "recipe.toml", overwrite=True) as tmp:
+            tmp.write_text(model.recipe_text)
+        save_calibration_figure(out / "calibration.png", model.calibration, overwrite=True)
     c = model.calibration.summary()
     print(f"{c['analyte']} ({c['unit']}), {c['model']} model on {c['n']} standards, "
           f"response: {model.response.kind}")
@@ -45,7 +47,7 @@ def cmd_calibrate(a):
 
 
 def cmd_batch(a):
-    from .export.atomic import atomic_path
+    from .export.atomic import atomic_path, output_transaction
     from .export.bundle import safe_name, write_bundle
     from .preprocess.recipe import Recipe
     from .quantify import QuantModel
@@ -59,31 +61,34 @@ def cmd_batch(a):
     files = _map_files(a.folder)
     out = Path(a.out)
     out.mkdir(parents=True, exist_ok=True)
-    rows = []
-    for f in files:
-        m, _ = recipe.apply(open_map(f).load())
-        r = model.apply(m, library)
-        sub = out / safe_name(f.stem)
-        sub.mkdir(exist_ok=True)
-        write_bundle(sub, m, [r], stem=safe_name(f.stem), overwrite=a.overwrite,
-                     figures=not a.no_figures, inputs={"map": f})
-        s = r.summary
-        pct = s.get("percentiles", {})
-        rows.append([f.name, s["pixels"], s.get("mean"), s.get("sd"), s.get("rsd_pct"),
-                     pct.get(5), pct.get(50), pct.get(95), s["below_lod"], s["below_loq"],
-                     s["outside_range"], s["quantifiable"]])
-        print(f"{f.name}: mean {s.get('mean', float('nan')):.3f} {model.unit}, "
-              f"{s['quantifiable']} of {s['pixels']} pixels quantifiable")
-    header = ["map", "pixels", f"mean [{model.unit}]", f"sd [{model.unit}]", "rsd [%]",
-              f"p5 [{model.unit}]", f"median [{model.unit}]", f"p95 [{model.unit}]",
-              "below_lod", "below_loq", "outside_range", "quantifiable"]
-    with atomic_path(out / "batch_summary.csv", overwrite=True) as tmp:
-        with open(tmp, "w", newline="") as fh:
-            w = csv.writer(fh)
-            w.writerow(header)
-            for row in rows:
-                w.writerow(["" if v is None else (f"{v:.6g}" if isinstance(v, float) else v)
-                            for v in row])
+    # every map's bundle and the summary replace the previous ones together: a batch that
+    # fails part-way leaves the previous batch's files as they were
+    with output_transaction(out):
+        rows = []
+        for f in files:
+            m, _ = recipe.apply(open_map(f).load())
+            r = model.apply(m, library)
+            sub = out / safe_name(f.stem)
+            sub.mkdir(exist_ok=True)
+            write_bundle(sub, m, [r], stem=safe_name(f.stem), overwrite=a.overwrite,
+                         figures=not a.no_figures, inputs={"map": f})
+            s = r.summary
+            pct = s.get("percentiles", {})
+            rows.append([f.name, s["pixels"], s.get("mean"), s.get("sd"), s.get("rsd_pct"),
+                         pct.get(5), pct.get(50), pct.get(95), s["below_lod"], s["below_loq"],
+                         s["outside_range"], s["quantifiable"]])
+            print(f"{f.name}: mean {s.get('mean', float('nan')):.3f} {model.unit}, "
+                  f"{s['quantifiable']} of {s['pixels']} pixels quantifiable")
+        header = ["map", "pixels", f"mean [{model.unit}]", f"sd [{model.unit}]", "rsd [%]",
+                  f"p5 [{model.unit}]", f"median [{model.unit}]", f"p95 [{model.unit}]",
+                  "below_lod", "below_loq", "outside_range", "quantifiable"]
+        with atomic_path(out / "batch_summary.csv", overwrite=True) as tmp:
+            with open(tmp, "w", newline="") as fh:
+                w = csv.writer(fh)
+                w.writerow(header)
+                for row in rows:
+                    w.writerow(["" if v is None else (f"{v:.6g}" if isinstance(v, float) else v)
+                                for v in row])
     print(f"wrote {out / 'batch_summary.csv'} ({len(rows)} maps)")
 
 

@@ -12,6 +12,7 @@ import shutil
 import subprocess
 import sys
 import textwrap
+from pathlib import Path
 
 import h5py
 import numpy as np
@@ -171,3 +172,61 @@ def test_a_run_reads_back_what_it_wrote(tmp_path):
         assert other.read_text() == "now"
     assert target.exists() and staged(target) == target
     assert sorted(p.name for p in tmp_path.iterdir()) == ["cube.h5"]
+
+
+def _calibrate_args(sample_dir, out):
+    return ["calibrate", str(sample_dir / "calibration_standards.csv"), "--library",
+            str(sample_dir / "library"), "--recipe", str(sample_dir / "tablet_recipe.toml"),
+            "--model", "quadratic", "--out", str(out), "--overwrite"]
+
+
+def test_failed_calibration_leaves_the_previous_model(sample_dir, tmp_path, monkeypatch):
+    """The model is written before its figure: a failure at the figure must not leave a new
+    model beside the old recipe and figure."""
+    import mapkit.export.figures as figures
+
+    out = tmp_path / "model"
+    assert main(_calibrate_args(sample_dir, out)) == 0
+    before = _digests(out)
+    # a different model (another curve) is to replace it, and fails at its figure
+    args = _calibrate_args(sample_dir, out)
+    args[args.index("quadratic")] = "linear"
+
+    def fail(*a, **k):
+        raise OSError("no space left on device")
+
+    monkeypatch.setattr(figures, "save_calibration_figure", fail)
+    assert main(args) != 0
+    assert _digests(out) == before
+    monkeypatch.undo()
+    assert main(args) == 0
+    assert _digests(out)[Path("quant_model.json")] != before[Path("quant_model.json")]
+
+
+def test_failed_batch_leaves_the_previous_batch(sample_dir, tmp_path, monkeypatch):
+    """A batch that fails on its second map leaves every file of the previous batch."""
+    import mapkit.export.bundle as bundle
+
+    model = tmp_path / "model"
+    assert main(_calibrate_args(sample_dir, model)) == 0
+    maps = tmp_path / "maps"
+    maps.mkdir()
+    for lot in ("lot_A", "lot_B"):
+        shutil.copy(sample_dir / "blend_map.h5", maps / f"{lot}.h5")
+    out = tmp_path / "batch"
+    args = ["batch", str(maps), "--model-file", str(model / "quant_model.json"), "--library",
+            str(sample_dir / "library"), "--out", str(out), "--no-figures", "--overwrite"]
+    assert main(args) == 0
+    before = _digests(out)
+    real, calls = bundle.write_bundle, [0]
+
+    def second_fails(*a, **k):
+        calls[0] += 1
+        if calls[0] == 2:
+            raise OSError("no space left on device")
+        return real(*a, **k)
+
+    monkeypatch.setattr(bundle, "write_bundle", second_fails)
+    assert main(args) != 0
+    assert calls[0] == 2
+    assert _digests(out) == before
