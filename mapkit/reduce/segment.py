@@ -421,14 +421,20 @@ class DominantClasses(_ClassMap):
 
     def labels_of(self, shares, good, grid=None):
         """Class of each ``good`` pixel (n_good,) from its ``shares`` (n_classes, n_good):
-        the largest share, refined by the spatial prior on the map's ``grid`` (the
-        spatial shape the flat mask ``good`` unfolds to; None for rows: no prior)."""
+        the largest share, refined by the spatial prior on the map's ``grid`` (its
+        spatial shape; None for rows: no prior). ``good`` is a flat boolean mask or the
+        sorted flat indices of the good pixels."""
         self.n_iter_, self.share_noise_ = 0, float("nan")
         lab = np.argmax(shares, axis=0) if shares.shape[1] else np.zeros(0, np.intp)
         if grid is None or self.neighbour_weight <= 0 or shares.shape[1] == 0:
             return lab
         grid = tuple(grid)
-        good = np.asarray(good, bool).reshape(grid)
+        good = np.asarray(good)
+        if good.dtype != bool:     # sorted flat indices of the good pixels
+            flat = np.zeros(int(np.prod(grid)), bool)
+            flat[good] = True
+            good = flat
+        good = good.reshape(grid)
         sigma = _share_noise(shares, good)
         self.share_noise_ = sigma
         if not sigma > 0:          # noise-free shares: the largest one is certain
