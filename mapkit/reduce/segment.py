@@ -299,8 +299,9 @@ class DominantClasses(_ClassMap):
     (a minor phase of one or two pixels) is kept. Spectra passed as rows have no grid:
     their class is the largest share.
 
-    Measured on the scene family (6 kinds × seeds 0-2, mapkit's own images;
-    benchmarks/RESULTS.md, 2026-12-02), adjusted Rand index against the dominant fraction:
+    Measured on the scene family (6 kinds × seeds 0-2, mapkit's own images; a
+    measurement, 2026-12-02, 2-core x86_64 VM, table in benchmarks/RESULTS.md), adjusted
+    Rand index against the largest fraction:
 
     =====================================  ==========  =========  ===========
     rule                                   median all  worst all  worst core
@@ -313,8 +314,8 @@ class DominantClasses(_ClassMap):
 
     The default (purest level with ``neighbour_weight=1``) is at least as good as the
     former rule on every scene within 0.002; the closure scale is better on most scenes
-    but worse on two of three continuous gradients (by up to 0.07) and one tablet blend,
-    where the collection efficiency follows the composition.
+    but worse on two of three continuous gradients (by up to 0.08) and on one tablet
+    blend, where the collection efficiency happens to follow the composition.
 
     Parameters
     ----------
