@@ -470,7 +470,7 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                 cls = DominantClasses(n_classes=s.n_components)
                 shares = cls.shares_of(images, good)
                 lab = np.full(n_pixels, -1, np.int16)
-                lab[good] = np.argmax(shares, axis=0)
+                lab[good] = cls.labels_of(shares, good, grid)
                 labels = lab.reshape(grid)
                 sh = np.full((s.n_components, n_pixels), np.nan)
                 sh[:, good] = shares
