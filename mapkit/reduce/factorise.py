@@ -454,7 +454,7 @@ class MCRALS(TransformerMixin, BaseEstimator):
 SPECTRA_ORDER = 10
 
 
-def least_area_lift(S, Q):
+def least_area_lift(S, Q, tolerance=None):
     """Add to each row of ``S`` the combination of the columns of ``Q`` that makes it
     non-negative with the least area (a linear programme per row, HiGHS via scipy).
 
@@ -462,17 +462,42 @@ def least_area_lift(S, Q):
     spectrum undetermined by the data; the spectrum that sits on zero between its bands
     (least area while non-negative) is the usual convention for Raman spectra (common
     practice). Rows where the programme fails are clipped at zero instead.
+
+    ``tolerance`` (an array shaped like ``S``, or None) lets each channel dip that far
+    below zero before the result is clipped: for a noisy spectrum the constraint then
+    binds at the noise's lowest excursions instead of lifting the whole spectrum onto
+    them (:func:`_lift_tolerance`).
     """
     from scipy.optimize import linprog
 
     out = np.clip(S, 0, None)
     cost = Q.sum(axis=0)
+    tol = np.zeros_like(S) if tolerance is None else np.asarray(tolerance, np.float64)
     for k, s in enumerate(S):
-        res = linprog(cost, A_ub=-Q, b_ub=s, bounds=[(None, None)] * Q.shape[1],
+        res = linprog(cost, A_ub=-Q, b_ub=s + tol[k], bounds=[(None, None)] * Q.shape[1],
                       method="highs")
         if res.status == 0:
             out[k] = np.maximum(s + Q @ res.x, 0.0)
     return out
+
+
+def _lift_tolerance(C, D, S, z):
+    """How far below zero each channel of the least-squares spectra ``S`` (k, n) of
+    ``D ≈ C S`` may dip from noise alone: ``z`` standard errors, each from the residual
+    variance of its channel over the pixels and the diagonal of (CᵀC)⁻¹ (the usual
+    least-squares standard error, common practice)."""
+    R = D - C @ S
+    dof = max(1, C.shape[0] - C.shape[1])
+    var = np.einsum("ij,ij->j", R, R) / dof                 # noise variance per channel
+    G = np.linalg.pinv(C.T @ C)
+    return z * np.sqrt(np.clip(np.diag(G), 0, None)[:, None] * var[None])
+
+
+def _check_lift_noise(z):
+    if isinstance(z, bool) or not isinstance(z, (int, float, np.integer, np.floating)) \
+            or not np.isfinite(z) or z < 0:
+        raise MapkitError(f"lift_noise must be a number of standard errors >= 0, not {z!r}",
+                          field="lift_noise", fix="give 0 (off) or e.g. 2")
 
 
 class BackgroundMCR(TransformerMixin, BaseEstimator):
@@ -554,11 +579,12 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
     """
 
     def __init__(self, n_components: int = 4, baseline_order="auto", max_iter: int = 25,
-                 random_state: int = 0):
+                 random_state: int = 0, lift_noise: float = 0.0):
         self.n_components = n_components
         self.baseline_order = baseline_order
         self.max_iter = max_iter
         self.random_state = random_state
+        self.lift_noise = lift_noise
 
     def _start(self, X, Q):
         from .endmembers import successive_projections
@@ -620,6 +646,7 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
             raise MapkitError("background MCR needs background terms", field="baseline_order",
                               fix="give an order (0 for a constant) or auto; for none use MCRALS")
         check_baseline_room(baseline_terms(order), X.shape[1], "baseline_order")
+        _check_lift_noise(self.lift_noise)
         auto = order == "auto"
         if auto:   # keep at least four channels per fitted term, as the order choice does
             order = int(max(0, min(SPECTRA_ORDER, X.shape[1] // 4 - self.n_components - 1)))
@@ -632,7 +659,10 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
         for _ in range(self.max_iter):
             C = nnls_batch((S - (S @ Q) @ Q.T).T, Xp.T, tol=1e-6).T
             background = (X - C @ S) @ Q                 # polynomial coefficients per pixel
-            S = least_area_lift(nnls_batch(C, X - background @ Q.T, tol=1e-6), Q)
+            D = X - background @ Q.T
+            S = nnls_batch(C, D, tol=1e-6)
+            S = least_area_lift(S, Q, _lift_tolerance(C, D, S, self.lift_noise)
+                                if self.lift_noise else None)
             scale = S.max(axis=1, keepdims=True)
             S = S / np.where(scale > 0, scale, 1.0)
         self.spectra_baseline_order_ = int(order)
