@@ -535,6 +535,18 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
         best compromise on the scene family (benchmarks/bench_accuracy.py).
     random_state : int
         Seed of the pixel sample the background order is chosen on.
+    lift_noise : float
+        Noise allowance of the least-area lift in every sweep, in least-squares standard
+        errors of each spectrum channel (:func:`_lift_tolerance`); 0 (the default) lifts
+        every spectrum onto its lowest channel. The plain lift raises a noisy spectrum by
+        its noise's lowest excursions, a nearly constant offset that costs a weak
+        component most. Measured on the scene family (2026-12-02, 2-core VM;
+        benchmarks/RESULTS.md), 2 raised the worst cosine of the minor-phase maps from
+        0.84-0.96 to 0.98-0.99 and of the gradients from 0.89-0.95 to 0.99, and lowered
+        the abundance error on 16 of 18 maps, but it cuts deeper into the wings of broad
+        bands (worst cosine 0.974-0.978 to 0.962-0.968) and raised the abundance error on
+        two of the overlapping-band maps (2.0 to 2.6 and 3.1x the floor), so it is not the
+        default.
 
     Notes
     -----
