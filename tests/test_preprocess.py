@@ -316,6 +316,41 @@ def test_snr_of_a_known_spectrum():
     assert np.median(snr(y)) == pytest.approx(50, rel=0.1)
 
 
+@pytest.mark.parametrize("n", [2, 3, 4, 33, 1023, 1024])
+def test_compiled_noise_and_snr_equal_numpy_medians(n):
+    # reference: numpy.median (the middle value, or the mean of the two middle values for
+    # an even count), composed as the formula of noise_sd / snr; the compiled kernel must
+    # give the same float64 numbers, on ties (integer counts, constant runs), heavy tails,
+    # NaN / inf rows and every leading shape
+    from mapkit.preprocess.quality import noise_sd, snr
+
+    rng = np.random.default_rng(n)
+    blocks = [rng.normal(size=(70, n)),
+              rng.poisson(3.0, (70, n)).astype(float),                # many ties
+              np.round(rng.standard_cauchy((70, n)), 1),              # heavy tails, ties
+              np.repeat(rng.normal(size=(70, 1)), n, axis=1),         # constant: noise 0
+              rng.integers(0, 2, (70, n)) * 1e300 - 5e299]             # huge spread
+    odd = rng.normal(size=(70, n))
+    odd[3, n // 2] = np.nan
+    odd[5, 0] = np.inf
+    odd[6, -1] = -np.inf
+    blocks.append(odd)
+    for y in blocks:
+        d = np.diff(y, axis=-1)
+        with np.errstate(invalid="ignore"):
+            sd_ref = 1.4826 * np.median(np.abs(d - np.median(d, axis=-1, keepdims=True)),
+                                        axis=-1) / np.sqrt(2)
+            sig = y.max(axis=-1) - np.median(y, axis=-1)
+            snr_ref = np.zeros_like(sig)
+            np.divide(sig, sd_ref, out=snr_ref, where=sd_ref > 0)
+            for engine in ("numba", "numpy"):
+                np.testing.assert_array_equal(noise_sd(y, engine=engine), sd_ref)
+                np.testing.assert_array_equal(snr(y, engine=engine), snr_ref)
+            cube = y.reshape(7, 10, n)
+            np.testing.assert_array_equal(snr(cube, engine="numba"), snr_ref.reshape(7, 10))
+            np.testing.assert_array_equal(noise_sd(y[1], engine="numba"), sd_ref[1])
+
+
 # --- shift-axis calibration: ASTM E1840 polystyrene positions (from memory; see
 # mapkit/preprocess/axis_calibration.py) and a known, invented axis distortion
 def test_axis_calibration_recovers_a_known_distortion():
