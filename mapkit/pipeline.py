@@ -393,6 +393,9 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                         if not same:
                             sample_k.append(k.reshape(-1, ns)[pick].copy())
                     stage("cleaning")
+                    # this block's arrays go before the next one arrives (the compute ahead
+                    # holds the next block's: without this, one block more in memory)
+                    del c, k, sp, cv, flat
 
             one = plan.n_blocks == 1
             store_c = stream.BlockStore(one, write=False)   # multi-block: the results cube
