@@ -378,7 +378,7 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                     yield y0, c.astype(np.float32, copy=False)
                     flat = c.reshape(-1, ns)
                     snr_blk = np.full(g.size, np.nan)
-                    snr_blk[g] = snr(flat[g])
+                    snr_blk[g] = snr(flat)[g]   # every row (no copy of the good ones)
                     snr_img[y0:y0 + rows] = snr_blk.reshape((rows,) + grid[1:])
                     if cv is not None:
                         conv_img[y0:y0 + rows] = cv
