@@ -264,6 +264,7 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                     standards, notify, notices):
     """The analysis proper, for any number of blocks (see :func:`analyse`)."""
     import warnings
+    from concurrent.futures import ThreadPoolExecutor
 
     from tqdm.auto import tqdm
 
@@ -352,14 +353,32 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
         try:
             # pass 1: clean block by block; one writer stores the cube; keep a sample
             def cleaned():
-                for y0 in plan.starts:
-                    c, k, sp, cv = fetch(y0)
+                # several lazy blocks: the next block's Dask compute starts in a background
+                # thread before this block's main-thread work (SNR, writes, sample copies);
+                # the same blocks in the same order, so the same output
+                ahead = (ThreadPoolExecutor(1, thread_name_prefix="mapkit-fetch")
+                         if corrected.is_lazy and plan.n_blocks > 1 else None)
+                try:
+                    yield from cleaned_blocks(ahead)
+                finally:
+                    if ahead is not None:
+                        ahead.shutdown(wait=True, cancel_futures=True)
+
+            def cleaned_blocks(ahead):
+                nxt = ahead.submit(fetch, plan.starts[0]) if ahead is not None else None
+                for i, y0 in enumerate(plan.starts):
+                    if ahead is None:
+                        c, k, sp, cv = fetch(y0)
+                    else:
+                        c, k, sp, cv = nxt.result()
+                        nxt = (ahead.submit(fetch, plan.starts[i + 1])
+                               if i + 1 < plan.n_blocks else None)
                     rows = c.shape[0]
                     g = ~mask[y0:y0 + rows].ravel()
                     yield y0, c.astype(np.float32, copy=False)
                     flat = c.reshape(-1, ns)
                     snr_blk = np.full(g.size, np.nan)
-                    snr_blk[g] = snr(flat[g])
+                    snr_blk[g] = snr(flat)[g]   # every row (no copy of the good ones)
                     snr_img[y0:y0 + rows] = snr_blk.reshape((rows,) + grid[1:])
                     if cv is not None:
                         conv_img[y0:y0 + rows] = cv
@@ -374,6 +393,9 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                         if not same:
                             sample_k.append(k.reshape(-1, ns)[pick].copy())
                     stage("cleaning")
+                    # this block's arrays go before the next one arrives (the compute ahead
+                    # holds the next block's: without this, one block more in memory)
+                    del c, k, sp, cv, flat
 
             one = plan.n_blocks == 1
             store_c = stream.BlockStore(one, write=False)   # multi-block: the results cube

@@ -316,6 +316,41 @@ def test_snr_of_a_known_spectrum():
     assert np.median(snr(y)) == pytest.approx(50, rel=0.1)
 
 
+@pytest.mark.parametrize("n", [2, 3, 4, 33, 1023, 1024])
+def test_compiled_noise_and_snr_equal_numpy_medians(n):
+    # reference: numpy.median (the middle value, or the mean of the two middle values for
+    # an even count), composed as the formula of noise_sd / snr; the compiled kernel must
+    # give the same float64 numbers, on ties (integer counts, constant runs), heavy tails,
+    # NaN / inf rows and every leading shape
+    from mapkit.preprocess.quality import noise_sd, snr
+
+    rng = np.random.default_rng(n)
+    blocks = [rng.normal(size=(70, n)),
+              rng.poisson(3.0, (70, n)).astype(float),                # many ties
+              np.round(rng.standard_cauchy((70, n)), 1),              # heavy tails, ties
+              np.repeat(rng.normal(size=(70, 1)), n, axis=1),         # constant: noise 0
+              rng.integers(0, 2, (70, n)) * 1e300 - 5e299]             # huge spread
+    odd = rng.normal(size=(70, n))
+    odd[3, n // 2] = np.nan
+    odd[5, 0] = np.inf
+    odd[6, -1] = -np.inf
+    blocks.append(odd)
+    for y in blocks:
+        d = np.diff(y, axis=-1)
+        with np.errstate(invalid="ignore"):
+            sd_ref = 1.4826 * np.median(np.abs(d - np.median(d, axis=-1, keepdims=True)),
+                                        axis=-1) / np.sqrt(2)
+            sig = y.max(axis=-1) - np.median(y, axis=-1)
+            snr_ref = np.zeros_like(sig)
+            np.divide(sig, sd_ref, out=snr_ref, where=sd_ref > 0)
+            for engine in ("numba", "numpy"):
+                np.testing.assert_array_equal(noise_sd(y, engine=engine), sd_ref)
+                np.testing.assert_array_equal(snr(y, engine=engine), snr_ref)
+            cube = y.reshape(7, 10, n)
+            np.testing.assert_array_equal(snr(cube, engine="numba"), snr_ref.reshape(7, 10))
+            np.testing.assert_array_equal(noise_sd(y[1], engine="numba"), sd_ref[1])
+
+
 # --- shift-axis calibration: ASTM E1840 polystyrene positions (from memory; see
 # mapkit/preprocess/axis_calibration.py) and a known, invented axis distortion
 def test_axis_calibration_recovers_a_known_distortion():
@@ -416,6 +451,39 @@ def test_compiled_solvers_handle_partial_lane_blocks(rows):
         b = f(y, lam=1e3, engine="numpy", info=info_b, max_iter=8)
         np.testing.assert_allclose(a, b, rtol=1e-8, atol=1e-8 * np.abs(b).max(), err_msg=f.__name__)
         np.testing.assert_array_equal(info_a["converged"], info_b["converged"])
+
+
+def test_compiled_reweighting_gives_each_spectrum_its_own_result():
+    # the compiled loop refills a lane with the next spectrum as soon as its spectrum stops,
+    # so spectra share lanes at different iterations; each result must be exactly what the
+    # spectrum gets alone, and agree with the numpy loop (as above), over several parallel
+    # tasks of spectra (reference: the numpy recurrence; pybaselines checks it above)
+    from mapkit.preprocess.baseline import airpls_baseline, arpls_baseline
+
+    rng = np.random.default_rng(11)
+    n = 200
+    ch = np.arange(n)
+    rows = 600                     # > 2 tasks of spectra; convergence after 2 to 30+ solves
+    y = (rng.normal(size=(rows, 1)) * 0.02 * ch + rng.uniform(0, 30, (rows, 1))
+         * np.exp(-((ch - rng.uniform(40, 160, (rows, 1))) / 5.0) ** 2)
+         + rng.normal(0, rng.uniform(0.1, 3, (rows, 1)), (rows, n)))
+    mixed = 0
+    for f in (als_baseline, arpls_baseline, airpls_baseline):
+        for max_iter in (4, 30):
+            info = {}
+            batch = f(y, lam=1e3, engine="numba", info=info, max_iter=max_iter)
+            mixed += 0 < info["converged"].sum() < rows    # lanes stopping at different solves
+            for k in range(0, rows, 37):
+                one_info = {}
+                one = f(y[k:k + 1], lam=1e3, engine="numba", info=one_info, max_iter=max_iter)
+                np.testing.assert_array_equal(one[0], batch[k], err_msg=f"{f.__name__} row {k}")
+                assert one_info["converged"][0] == info["converged"][k]
+            ref_info = {}
+            ref = f(y, lam=1e3, engine="numpy", info=ref_info, max_iter=max_iter)
+            np.testing.assert_allclose(batch, ref, rtol=1e-8, atol=1e-8 * np.abs(ref).max(),
+                                       err_msg=f.__name__)
+            np.testing.assert_array_equal(info["converged"], ref_info["converged"])
+    assert mixed >= 2
 
 
 def test_lazy_despike_flags_match_in_memory(sample_map_path):

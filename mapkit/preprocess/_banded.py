@@ -163,9 +163,10 @@ if HAVE_NUMBA:
         return out
 
     @numba.njit(cache=True, nogil=True, inline="always")
-    def _new_weights(kind, it, p, Y, Z, W, q, change, stop, y_l1):  # pragma: no cover
+    def _new_weights(kind, its, p, Y, Z, W, q, E, change, stop, y_l1):  # pragma: no cover
         # the next weights into q, each lane's convergence measure and early stop, as
-        # baseline.py's numpy versions compute them (tests compare the two engines)
+        # baseline.py's numpy versions compute them (tests compare the two engines); its:
+        # each lane's iteration count (lanes hold spectra that started at different times)
         n, lanes = Y.shape
         num = np.zeros(lanes)
         den = np.zeros(lanes)
@@ -185,9 +186,9 @@ if HAVE_NUMBA:
         for i in range(n):
             for j in range(lanes):
                 r = Y[i, j] - Z[i, j]
-                if r < 0:
-                    cnt[j] += 1.0
-                    tot[j] += r
+                neg = r < 0
+                cnt[j] += 1.0 if neg else 0.0
+                tot[j] += r if neg else 0.0
         for j in range(lanes):
             stop[j] = cnt[j] < 2
         if kind == ARPLS:   # logistic in the residual, scaled by the negative residuals
@@ -196,16 +197,33 @@ if HAVE_NUMBA:
             for i in range(n):
                 for j in range(lanes):
                     r = Y[i, j] - Z[i, j]
-                    if r < 0:
-                        sd[j] += (r - mean[j]) ** 2
+                    sd[j] += (r - mean[j]) ** 2 if r < 0 else 0.0
+            scale = np.empty(lanes)
+            shift = np.empty(lanes)
             for j in range(lanes):
                 sd[j] = np.sqrt(sd[j] / max(cnt[j] - 1.0, 1.0))
                 if sd[j] == 0:
                     sd[j] = EPS
+                scale[j] = 2 / sd[j]
+                shift[j] = 2 * sd[j] - mean[j]
+            # weight 1 / (1 + exp(-x)), x = -(2 / sd)((y - z) - (2 sd - mean)) (scipy.special.
+            # expit's formula). The exponentials alone in one loop (scalar calls), the rest
+            # in another the compiler vectorises; -x is formed exactly as x then negated
+            # (negation is exact). exp(-x) < 2⁻⁵³ where -x < -40, so 1 + exp(-x) rounds to
+            # 1 and the weight is 1.0 without the call; above 709.79 exp overflows to inf
+            # (weight 0.0): the same float64 weights as calling exp everywhere
             for i in range(n):
                 for j in range(lanes):
-                    x = -(2 / sd[j]) * ((Y[i, j] - Z[i, j]) - (2 * sd[j] - mean[j]))
-                    new = 1.0 / (1.0 + np.exp(-x))     # scipy.special.expit's formula
+                    t = scale[j] * ((Y[i, j] - Z[i, j]) - shift[j])
+                    if t < -40.0:
+                        E[i, j] = 0.0
+                    elif t > 709.79:
+                        E[i, j] = np.inf
+                    else:
+                        E[i, j] = np.exp(t)
+            for i in range(n):
+                for j in range(lanes):
+                    new = 1.0 / (1.0 + E[i, j])
                     num[j] += (new - W[i, j]) ** 2
                     den[j] += W[i, j] * W[i, j]
                     q[i, j] = new
@@ -214,55 +232,81 @@ if HAVE_NUMBA:
             return
         # airPLS: exp(t·|r|/|Σr⁻|) below the baseline, 0 above; converged when |Σr⁻| is
         # below tol·Σ|y| (so the measure handed back is |Σr⁻| / Σ|y|)
-        t = min(it, 50)
+        tt = np.empty(lanes)
         for j in range(lanes):
+            tt[j] = min(its[j], 50)
             change[j] = abs(tot[j]) / y_l1[j] if y_l1[j] > 0 else 0.0
             if tot[j] == 0:
                 tot[j] = -1.0
         for i in range(n):
             for j in range(lanes):
                 r = Y[i, j] - Z[i, j]
-                q[i, j] = np.exp(min(max((t / tot[j]) * r, 0.0), LOG_CAP)) if r < 0 else 0.0
+                q[i, j] = np.exp(min(max((tt[j] / tot[j]) * r, 0.0), LOG_CAP)) if r < 0 else 0.0
+
+    @numba.njit(cache=True, nogil=True, inline="always")
+    def _start_lane(y, k, j, Y, W, y_l1):  # pragma: no cover - compiled
+        # spectrum k of y into lane j, its weights at 1
+        n = Y.shape[0]
+        s = 0.0
+        for i in range(n):
+            Y[i, j] = y[k, i]
+            W[i, j] = 1.0
+            s += abs(y[k, i])
+        y_l1[j] = s
+
+    #: spectra one parallel task works through (its lanes refilled as spectra finish)
+    TASK_SPECTRA = 16 * LANES
 
     @numba.njit(parallel=True, cache=True, nogil=True)
     def _reweighted_numba(y, d0, d1, d2, kind, p, max_iter, tol):  # pragma: no cover
-        # the whole reweighting loop per block of spectra: no array traffic between
-        # iterations; a lane that has stopped keeps computing (the block runs until its
-        # slowest lane stops) but its stored result is the one of the iteration it stopped at
+        # the whole reweighting loop per task of spectra: no array traffic between
+        # iterations. A lane whose spectrum stops (converged or at the iteration limit)
+        # stores that iteration's result and takes the task's next spectrum, so lanes do
+        # not idle while the slowest of 16 converges; every lane does its own spectrum's
+        # arithmetic only, so each result is what that spectrum alone would get
         m, n = y.shape
         out = np.empty((m, n))
         converged = np.zeros(m, np.bool_)
-        for b in numba.prange((m + LANES - 1) // LANES):
-            s0 = b * LANES
-            lanes = min(LANES, m - s0)
-            W = np.ones((n, LANES))
+        for b in numba.prange((m + TASK_SPECTRA - 1) // TASK_SPECTRA):
+            s0 = b * TASK_SPECTRA
+            s1 = min(m, s0 + TASK_SPECTRA)
+            W = np.empty((n, LANES))
             Y, Z, l1, l2, q, dm2, dm1, zm2, zm1 = _lane_scratch(n)
+            E = np.empty((n, LANES))
             change = np.empty(LANES)
             stop = np.zeros(LANES, np.bool_)
-            done = np.zeros(LANES, np.bool_)
-            _load_lanes(y, s0, Y)
             y_l1 = np.zeros(LANES)
-            for i in range(n):
+            its = np.zeros(LANES, np.int64)
+            held = np.full(LANES, -1, np.int64)     # the spectrum in each lane; -1: idle
+            nxt = s0
+            for j in range(LANES):   # idle lanes run on a copy of the first spectrum
+                _start_lane(y, min(nxt, s1 - 1), j, Y, W, y_l1)
+                if nxt < s1:
+                    held[j] = nxt
+                    nxt += 1
+            active = min(LANES, s1 - s0)
+            while active > 0:
                 for j in range(LANES):
-                    y_l1[j] += abs(Y[i, j])
-            for it in range(1, max_iter + 2):
+                    its[j] += 1
                 _solve_lanes(W, Y, d0, d1, d2, l1, l2, q, Z, dm2, dm1, zm2, zm1)
-                _new_weights(kind, it, p, Y, Z, W, q, change, stop, y_l1)
-                running = False
-                for j in range(lanes):
-                    if done[j]:
+                _new_weights(kind, its, p, Y, Z, W, q, E, change, stop, y_l1)
+                for j in range(LANES):
+                    k = held[j]
+                    if k < 0:
                         continue
                     finished = stop[j] or change[j] < tol
-                    if finished:
-                        converged[s0 + j] = True
-                    if finished or it == max_iter + 1:
-                        done[j] = True
+                    if finished or its[j] == max_iter + 1:
+                        converged[k] = finished
                         for i in range(n):
-                            out[s0 + j, i] = Z[i, j]
-                    else:
-                        running = True
-                if not running:
-                    break
+                            out[k, i] = Z[i, j]
+                        if nxt < s1:     # (its weights at 1 in q, copied to W below)
+                            _start_lane(y, nxt, j, Y, q, y_l1)
+                            held[j] = nxt
+                            its[j] = 0
+                            nxt += 1
+                        else:
+                            held[j] = -1
+                            active -= 1
                 W[:, :] = q
         return out, converged
 
