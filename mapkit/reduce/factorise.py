@@ -480,9 +480,12 @@ def least_area_lift(S, Q):
 ROTATION_LIMIT = 0.5
 
 #: Share of a pixel's Raman signal above which :func:`pure_pixel_rotation` counts it as pure,
-#: and how many such pixels a component needs before its images are corrected there.
-PURE_SHARE = 0.9
+#: how many such pixels a component needs before its partners are corrected there, and the
+#: passes (each finds more pure pixels; chosen on the scene family, benchmarks/RESULTS.md:
+#: 0.9 and one pass lost on broad bands, 0.95 and one pass stopped short on overlapping ones).
+PURE_SHARE = 0.95
 PURE_MIN_PIXELS = 10
+PURE_PASSES = 3
 
 
 def least_area_rotation(S, Q, limit=ROTATION_LIMIT):
@@ -518,7 +521,8 @@ def least_area_rotation(S, Q, limit=ROTATION_LIMIT):
     return out
 
 
-def pure_pixel_rotation(S, Xp, Q, share=PURE_SHARE, min_pixels=PURE_MIN_PIXELS):
+def pure_pixel_rotation(S, Xp, Q, share=PURE_SHARE, min_pixels=PURE_MIN_PIXELS,
+                        passes=PURE_PASSES):
     """Rotate spectra ``S`` (k, n) so that, in the pixels where one component holds at
     least ``share`` of the Raman signal, the other components' concentrations have median
     zero; ``Xp`` (m, n): the spectra with their polynomial part (columns of ``Q``) removed.
@@ -529,25 +533,30 @@ def pure_pixel_rotation(S, Xp, Q, share=PURE_SHARE, min_pixels=PURE_MIN_PIXELS):
     pure pixels, its partners' images must vanish there: the boundary of the feasible
     band on the concentration side (Lawton & Sylvestre 1971, Technometrics 13:617), which
     is the true solution when pure pixels exist. Components with fewer than
-    ``min_pixels`` pure pixels are left as they are. Returns the rotated spectra,
-    non-negative with the least area (:func:`least_area_lift`).
+    ``min_pixels`` pure pixels are left as they are; each of the ``passes`` finds the pure
+    pixels again with the rotated spectra. Returns the rotated spectra, non-negative with
+    the least area (:func:`least_area_lift`), unit maximum where rotated.
     """
     S = np.asarray(S, float)
-    Sp = S - (S @ Q) @ Q.T
-    C = np.linalg.lstsq(Sp.T, Xp.T, rcond=None)[0].T             # (m, k), unconstrained
-    signal = np.clip(C, 0, None) * S.sum(axis=1)
-    part = signal / np.maximum(signal.sum(axis=1, keepdims=True), 1e-300)
     k = len(S)
-    E = np.zeros((k, k))
-    for j in range(k):
-        pure = part[:, j] >= share
-        if pure.sum() >= min_pixels:
-            E[j] = np.median(C[pure] / C[pure, j:j + 1], axis=0)
-            E[j, j] = 0.0
-    if not E.any():
-        return S
-    # C'ᵢ = Cᵢ − Σⱼ Eⱼᵢ Cⱼ keeps C S = C' S' with S'ⱼ = Sⱼ + Σᵢ Eⱼᵢ Sᵢ
-    return least_area_lift(S + E @ S, Q)
+    for _ in range(passes):
+        Sp = S - (S @ Q) @ Q.T
+        C = np.linalg.lstsq(Sp.T, Xp.T, rcond=None)[0].T         # (m, k), unconstrained
+        signal = np.clip(C, 0, None) * S.sum(axis=1)
+        part = signal / np.maximum(signal.sum(axis=1, keepdims=True), 1e-300)
+        E = np.zeros((k, k))
+        for j in range(k):
+            pure = part[:, j] >= share
+            if pure.sum() >= min_pixels:
+                E[j] = np.median(C[pure] / C[pure, j:j + 1], axis=0)
+                E[j, j] = 0.0
+        if not E.any():
+            break
+        # C'ᵢ = Cᵢ − Σⱼ Eⱼᵢ Cⱼ keeps C S = C' S' with S'ⱼ = Sⱼ + Σᵢ Eⱼᵢ Sᵢ
+        S = least_area_lift(S + E @ S, Q)
+        scale = S.max(axis=1, keepdims=True)
+        S = S / np.where(scale > 0, scale, 1.0)
+    return S
 
 
 class BackgroundMCR(TransformerMixin, BaseEstimator):
