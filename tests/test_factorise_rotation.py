@@ -11,12 +11,13 @@ background removed).
 
 import numpy as np
 import pytest
-from scipy.optimize import linear_sum_assignment, nnls
+from scipy.optimize import nnls
 
 from mapkit import RamanMap
 from mapkit.reduce import BackgroundMCR
 from mapkit.reduce.factorise import least_area_lift, least_area_rotation, pure_pixel_rotation
 from mapkit.reduce.unmix import polynomial_basis
+from mapkit.scoring import match_spectra, scaled_rmse
 
 SHIFT = np.linspace(200, 1800, 600)
 SEEDS = (0, 1, 2)
@@ -38,20 +39,11 @@ def random_spectra(rng, k, shift=SHIFT):
 
 def cosines(est, true):
     """Cosine of each true spectrum with its partner in the best pairing (Hungarian method,
-    Kuhn 1955, via scipy), in the order of ``true``; also the pairing (rows of ``est``)."""
-    e = est / np.linalg.norm(est, axis=1, keepdims=True)
-    t = true / np.linalg.norm(true, axis=1, keepdims=True)
-    c = e @ t.T
-    rows, cols = linear_sum_assignment(-c)
+    Kuhn 1955; checked against an exhaustive search in tests/test_accuracy.py), in the
+    order of ``true``; also the pairing (rows of ``est``)."""
+    rows, cols, cos = match_spectra(est, true)
     order = np.argsort(cols)
-    return c[rows, cols][order], rows[order]
-
-
-def scaled_rmse(estimate, truth):
-    """RMSE after the one least-squares scale factor (a factorisation fixes images only up to
-    a scale)."""
-    scale = (estimate @ truth) / (estimate @ estimate)
-    return float(np.sqrt(np.mean((scale * estimate - truth) ** 2)))
+    return cos[order], rows[order]
 
 
 def random_map(seed, layout, shape=(30, 32), height=400.0):
