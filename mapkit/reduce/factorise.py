@@ -503,7 +503,10 @@ def least_area_rotation(S, Q, limit=ROTATION_LIMIT):
     (choosing within the band by an area or entropy criterion: common practice). Strongly
     overlapping bands (a dip hidden in a band's wing) are over-corrected, which
     :func:`pure_pixel_rotation` undoes where pure pixels exist. Rows where the programme
-    fails or leaves nothing are kept as they are.
+    fails, leaves nothing or takes a coefficient to its limit are kept as they are (at the
+    limit a row is nearly a combination of the others: a duplicated component, or one
+    fitting noise when there are more components than materials, whose least-area
+    rotation jumps with the sample).
     """
     from scipy.optimize import linprog
 
@@ -514,7 +517,9 @@ def least_area_rotation(S, Q, limit=ROTATION_LIMIT):
         A = np.concatenate([np.delete(S, j, axis=0).T, Q], axis=1)
         bounds = [(-limit, limit)] * (k - 1) + [(None, None)] * Q.shape[1]
         res = linprog(A.sum(axis=0), A_ub=-A, b_ub=S[j], bounds=bounds, method="highs")
-        if res.status == 0:
+        # at the limit the row is close to a combination of the others (a duplicated or
+        # noise component): the criterion does not identify it, so it is left alone
+        if res.status == 0 and np.all(np.abs(res.x[:k - 1]) < limit * (1 - 1e-6)):
             row = np.maximum(S[j] + A @ res.x, 0.0)
             if row.max() > 0:
                 out[j] = row
