@@ -264,7 +264,6 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                     standards, notify, notices):
     """The analysis proper, for any number of blocks (see :func:`analyse`)."""
     import warnings
-    from concurrent.futures import ThreadPoolExecutor
 
     from tqdm.auto import tqdm
 
@@ -353,26 +352,12 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
         try:
             # pass 1: clean block by block; one writer stores the cube; keep a sample
             def cleaned():
-                # several lazy blocks: the next block's Dask compute starts in a background
-                # thread before this block's main-thread work (SNR, writes, sample copies);
-                # the same blocks in the same order, so the same output
-                ahead = (ThreadPoolExecutor(1, thread_name_prefix="mapkit-fetch")
-                         if corrected.is_lazy and plan.n_blocks > 1 else None)
-                try:
-                    yield from cleaned_blocks(ahead)
-                finally:
-                    if ahead is not None:
-                        ahead.shutdown(wait=True, cancel_futures=True)
-
-            def cleaned_blocks(ahead):
-                nxt = ahead.submit(fetch, plan.starts[0]) if ahead is not None else None
-                for i, y0 in enumerate(plan.starts):
-                    if ahead is None:
-                        c, k, sp, cv = fetch(y0)
-                    else:
-                        c, k, sp, cv = nxt.result()
-                        nxt = (ahead.submit(fetch, plan.starts[i + 1])
-                               if i + 1 < plan.n_blocks else None)
+                # (computing the next block in a background thread while this one is
+                # written was measured: 1.8x on this stage on a saturated machine, but the
+                # whole run's peak RSS rose from 1.39 to 1.97 GiB at 1000 x 1000 x 1024;
+                # not kept, benchmarks/RESULTS.md)
+                for y0 in plan.starts:
+                    c, k, sp, cv = fetch(y0)
                     rows = c.shape[0]
                     g = ~mask[y0:y0 + rows].ravel()
                     yield y0, c.astype(np.float32, copy=False)
@@ -393,9 +378,7 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                         if not same:
                             sample_k.append(k.reshape(-1, ns)[pick].copy())
                     stage("cleaning")
-                    # this block's arrays go before the next one arrives (the compute ahead
-                    # holds the next block's: without this, one block more in memory)
-                    del c, k, sp, cv, flat
+                    del c, k, sp, cv, flat   # this block's arrays go before the next arrives
 
             one = plan.n_blocks == 1
             store_c = stream.BlockStore(one, write=False)   # multi-block: the results cube
