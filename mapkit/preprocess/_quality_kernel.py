@@ -25,29 +25,7 @@ except ImportError:  # pragma: no cover
 ROWS = 64
 
 if HAVE_NUMBA:
-    @numba.njit(cache=True, nogil=True, inline="always")
-    def _kth_inplace(v, m, k):  # pragma: no cover - compiled
-        # the k-th smallest of v[:m] by Hoare partitions (reorders v[:m]; v[:k] <= v[k])
-        lo, hi = 0, m - 1
-        while lo < hi:
-            pivot = v[(lo + hi) // 2]
-            i, j = lo, hi
-            while i <= j:
-                while v[i] < pivot:
-                    i += 1
-                while v[j] > pivot:
-                    j -= 1
-                if i <= j:
-                    v[i], v[j] = v[j], v[i]
-                    i += 1
-                    j -= 1
-            if k <= j:
-                hi = j
-            elif k >= i:
-                lo = i
-            else:
-                break
-        return v[k]
+    from ._spikes_kernel import _kth_inplace   # the one Hoare selection of the package
 
     @numba.njit(cache=True, nogil=True, inline="always")
     def _order_stats(v, n, k, lo, hi, buf, lower):  # pragma: no cover - compiled

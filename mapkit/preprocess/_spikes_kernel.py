@@ -62,15 +62,11 @@ if HAVE_NUMBA:
                 a[s] = min(x, y)
                 b[s] = max(x, y)
 
-    @numba.njit(cache=True, nogil=True)
-    def _median_inplace(v):  # pragma: no cover - compiled
-        # np.median's value (mean of the two middle values when even) by quickselect on a
-        # scratch buffer: np.median inside the kernel allocated a copy per call, and those
-        # allocations from parallel threads cost 4x the selection itself (measured)
-        n = v.size
-        half = n // 2
-        lo, hi = 0, n - 1
-        while lo < hi:                     # Hoare partition until v[half] is in place
+    @numba.njit(cache=True, nogil=True, inline="always")
+    def _kth_inplace(v, m, k):  # pragma: no cover - compiled
+        # the k-th smallest of v[:m] by Hoare partitions (reorders v[:m]; v[:k] <= v[k])
+        lo, hi = 0, m - 1
+        while lo < hi:
             pivot = v[(lo + hi) // 2]
             i, j = lo, hi
             while i <= j:
@@ -82,13 +78,22 @@ if HAVE_NUMBA:
                     v[i], v[j] = v[j], v[i]
                     i += 1
                     j -= 1
-            if half <= j:
+            if k <= j:
                 hi = j
-            elif half >= i:
+            elif k >= i:
                 lo = i
             else:
                 break
-        upper = v[half]
+        return v[k]
+
+    @numba.njit(cache=True, nogil=True)
+    def _median_inplace(v):  # pragma: no cover - compiled
+        # np.median's value (mean of the two middle values when even) by quickselect on a
+        # scratch buffer: np.median inside the kernel allocated a copy per call, and those
+        # allocations from parallel threads cost 4x the selection itself (measured)
+        n = v.size
+        half = n // 2
+        upper = _kth_inplace(v, n, half)
         if n % 2:
             return upper
         lower = v[0]                      # the largest value left of half
