@@ -28,6 +28,16 @@ if HAVE_NUMBA:
     from ._spikes_kernel import _kth_inplace   # the one Hoare selection of the package
 
     @numba.njit(cache=True, nogil=True, inline="always")
+    def _largest_below(v, n, limit, floor):  # pragma: no cover - compiled
+        # the largest of v[:n] below limit (floor when none is)
+        best = floor
+        for i in range(n):
+            x = v[i]
+            if x < limit and x > best:
+                best = x
+        return best
+
+    @numba.njit(cache=True, nogil=True, inline="always")
     def _order_stats(v, n, k, lo, hi, buf, lower):  # pragma: no cover - compiled
         # the k-th smallest of v[:n] (finite, minimum lo, maximum hi) and, when lower, the
         # (k-1)-th. The answer is narrowed to a value interval [a, b) by counting passes
@@ -39,11 +49,7 @@ if HAVE_NUMBA:
         if k >= c:                          # the maximum itself
             below = hi
             if lower and k - 1 < c:
-                below = lo
-                for i in range(n):
-                    x = v[i]
-                    if x < hi and x > below:
-                        below = x
+                below = _largest_below(v, n, hi, lo)
             return below, hi
         a, b, L, U = lo, hi, 0, c           # L = #(v < a) <= k < U = #(v < b)
         for it in range(16):
@@ -74,11 +80,7 @@ if HAVE_NUMBA:
                     if buf[i] > below:
                         below = buf[i]
             else:                           # the largest value below a
-                below = lo
-                for i in range(n):
-                    x = v[i]
-                    if x < a and x > below:
-                        below = x
+                below = _largest_below(v, n, a, lo)
         return below, kth
 
     @numba.njit(cache=True, nogil=True, inline="always")
