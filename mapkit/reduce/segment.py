@@ -299,23 +299,23 @@ class DominantClasses(_ClassMap):
     (a minor phase of one or two pixels) is kept. Spectra passed as rows have no grid:
     their class is the largest share.
 
-    Measured on the scene family (6 kinds × seeds 0-2, mapkit's own images; a
-    measurement, 2026-12-02, 2-core x86_64 VM, table in benchmarks/RESULTS.md), adjusted
-    Rand index against the largest fraction:
+    Measured on the scene family (6 kinds × seeds 0-2, the default command line's
+    background-MCR images after their rotation; a measurement, 2026-12-02, 2-core x86_64
+    VM, tables in benchmarks/RESULTS.md), adjusted Rand index against the largest fraction:
 
     =====================================  ==========  =========  ===========
     rule                                   median all  worst all  worst core
     =====================================  ==========  =========  ===========
-    purest level, per pixel (former rule)  0.871       0.358      0.348
-    purest level, ``neighbour_weight=1``   0.925       0.683      0.706
-    closure, per pixel                     0.945       0.683      0.767
-    closure, ``neighbour_weight=0.5``      0.943       0.709      0.905
+    purest level, per pixel                0.893       0.362      0.345
+    purest level, ``neighbour_weight=1``   0.916       0.676      0.704
+    closure, per pixel                     0.941       0.720      0.803
+    closure, ``neighbour_weight=1``        0.940       0.756      0.958
     =====================================  ==========  =========  ===========
 
-    The default (purest level with ``neighbour_weight=1``) is at least as good as the
-    former rule on every scene within 0.002; the closure scale is better on most scenes
-    but worse on two of three continuous gradients (by up to 0.08) and on one tablet
-    blend, where the collection efficiency happens to follow the composition.
+    The default is the purest level with ``neighbour_weight=1``. The closure scale is
+    better on 13 of those 18 maps but worse on 3 (a continuous gradient by 0.10), and on
+    maps built differently (6 held-out maps) it was worse on 2 of them, by up to 0.34 (a
+    low-count blend of gradients).
 
     Parameters
     ----------
