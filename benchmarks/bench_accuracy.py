@@ -7,9 +7,9 @@ plain script, both scored against the noise floor.
 For every scene kind (``mapkit.scenes.KINDS``) and seed, the scene is written as a map file
 plus a library of its true pure spectra, and run through
 
-- **mapkit**: ``mapkit analyse MAP --library LIB --components K`` with every other option
-  at its default (K = the scene's number of materials, as a user who knows
-  the sample would choose);
+- **mapkit**: ``mapkit analyse MAP --library LIB`` with every option at its default (the
+  number of components chosen from the data); ``--components true`` passes the scene's
+  number of materials instead, as a user who knows the sample would;
 - **plain script**: spikes replaced by a 5-channel running median where a channel stands
   more than 6 robust standard deviations above it (common practice), pybaselines ``asls``
   per spectrum (its defaults), then scikit-learn
@@ -47,11 +47,11 @@ HIGHER_IS_BETTER = {"cosine": True, "abund/floor": False, "ARI all": True, "ARI 
                     "unmix/floor": False}
 
 
-def run_mapkit(scene, folder, extra=()):
+def run_mapkit(scene, folder, extra=(), true_k=False):
     map_path, lib = scene.write(folder)
     out = Path(folder) / "out"
-    k = len(scene.names)
-    rc = mapkit_main(["analyse", str(map_path), "--library", str(lib), "--components", str(k),
+    k = ["--components", str(len(scene.names))] if true_k else []
+    rc = mapkit_main(["analyse", str(map_path), "--library", str(lib), *k,
                       "--out", str(out), "--no-figures", "--quiet",
                       "--overwrite", *extra])
     if rc != 0:
@@ -121,10 +121,10 @@ def score(out, scene, floor):
 
 
 def table(rows):
-    head = "| scene | seed | who | " + " | ".join(COLUMNS) + " |"
-    lines = [head, "|" + "---|" * (3 + len(COLUMNS))]
+    head = "| scene | seed | who | k | " + " | ".join(COLUMNS) + " |"
+    lines = [head, "|" + "---|" * (4 + len(COLUMNS))]
     for r in rows:
-        lines.append(f"| {r['kind']} | {r['seed']} | {r['who']} | " + " | ".join(
+        lines.append(f"| {r['kind']} | {r['seed']} | {r['who']} | {r.get('k', '')} | " + " | ".join(
             f"{r[c]:.3f}" for c in COLUMNS) + " |")
     return "\n".join(lines)
 
@@ -157,6 +157,9 @@ def main(argv=None):
     p.add_argument("--no-plain", action="store_true", help="skip the plain script")
     p.add_argument("--out", help="also write the tables to this Markdown file")
     p.add_argument("--mapkit-args", default="", help="extra options for mapkit analyse")
+    p.add_argument("--components", choices=("auto", "true"), default="auto",
+                   help="mapkit's number of components: auto (the default path) or the "
+                        "scene's true number of materials")
     a = p.parse_args(argv)
     rows = []
     t0 = time.perf_counter()
@@ -165,7 +168,8 @@ def main(argv=None):
             scene = make_scene(kind, seed)
             floor = noise_floor(scene)
             with tempfile.TemporaryDirectory() as tmp:
-                outs = {"mapkit": run_mapkit(scene, tmp, a.mapkit_args.split())}
+                outs = {"mapkit": run_mapkit(scene, tmp, a.mapkit_args.split(),
+                                             true_k=a.components == "true")}
             if not a.no_plain:
                 outs["plain"] = run_plain(scene)
             ari = floor_classes(scene)
@@ -173,7 +177,8 @@ def main(argv=None):
                          "abund/floor": 1.0, "ARI all": ari["all"], "ARI core": ari["core"],
                          "unmix/floor": 1.0})
             for who, out in outs.items():
-                rows.append({"kind": kind, "seed": seed, "who": who, **score(out, scene, floor)})
+                rows.append({"kind": kind, "seed": seed, "who": who, "k": len(out["spectra"]),
+                             **score(out, scene, floor)})
                 print(f"{kind:9s} {seed} {who:6s} " + "  ".join(
                     f"{c} {rows[-1][c]:.3f}" for c in COLUMNS), file=sys.stderr, flush=True)
     text = table(rows) + "\n\n" + (summary(rows) if not a.no_plain else "")

@@ -14,8 +14,8 @@ import numpy as np
 import sys
 from pathlib import Path
 
-from .cli_common import (_add_read_options, _band, _check_outputs, _formats, _map_files,
-                         _open_kwargs, _positive_int, _print_notes, _range_arg,
+from .cli_common import (_add_read_options, _band, _check_outputs, _count_or_auto, _formats,
+                         _map_files, _open_kwargs, _positive_int, _print_notes, _range_arg,
                          add_response_options)
 from .errors import MapkitError
 
@@ -27,8 +27,10 @@ def _add_analysis_options(p, default_out="mapkit-output"):
     p.add_argument("--analyte", help="reference to quantify (default: from the standards file)")
     p.add_argument("--band", action="append", type=_band, metavar="NAME:LO-HI",
                    help="band image to integrate, cm-1 (repeatable)")
-    p.add_argument("--components", type=_positive_int, default=4,
-                   help="number of components (default 4)")
+    p.add_argument("--components", type=_count_or_auto, default="auto",
+                   help="number of components, or auto (default): as many as stand above the "
+                        "shot noise of the despiked counts (biwhitened singular values; the "
+                        "summary says how many and why; spectra in counts)")
     p.add_argument("--component-method", choices=("mcr", "nmf"), default="mcr",
                    help="components: 'mcr' (default) is MCR-ALS on the despiked spectra with a "
                         "polynomial background per pixel, started from the purest pixels; "

@@ -34,6 +34,16 @@ def _positive_int(text: str) -> int:
     return v
 
 
+def _count_or_auto(text: str):
+    """A whole number >= 1, or 'auto'."""
+    if text.strip().lower() == "auto":
+        return "auto"
+    try:
+        return _positive_int(text)
+    except argparse.ArgumentTypeError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not auto or a whole number >= 1") from None
+
+
 def _range(text: str):
     m = re.fullmatch(r"\s*([\d.]+)\s*-\s*([\d.]+)\s*", text)
     if not m:

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import contextlib
 import time
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
@@ -30,7 +30,9 @@ class Settings:
 
     bands: list = field(default_factory=list)
     normalisation: str = "vector"
-    n_components: int = 4
+    #: a number, or "auto": as many as stand above the shot noise
+    #: (:func:`mapkit.reduce.choose_n_components`, on the spectra the fit sees)
+    n_components: int | str = "auto"
     #: "mcr": MCR-ALS with a polynomial background per pixel on the despiked spectra;
     #: "nmf": NMF of the baseline-corrected spectra
     component_method: str = "mcr"
@@ -140,6 +142,12 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     if s.class_method not in CLASS_METHODS:
         raise MapkitError(f"unknown class method {s.class_method!r}", field="class_method",
                           fix=f"use one of {', '.join(CLASS_METHODS)}")
+    if s.n_components != "auto" and (isinstance(s.n_components, bool) or not
+                                     isinstance(s.n_components, (int, np.integer))
+                                     or s.n_components < 1):
+        raise MapkitError(f"the number of components must be a whole number >= 1 or auto, "
+                          f"not {s.n_components!r}", field="--components",
+                          fix="give a number such as 4, or auto")
     if s.class_method == "dominant" and s.n_classes not in (None, s.n_components):
         raise MapkitError("dominant-component classes come one per component",
                           field="--classes", fix="drop --classes, or add --class-method kmeans")
@@ -174,7 +182,10 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
     # the axis alone, before the cube is read: a crop too narrow for NMF or unmixing, or a
     # library that does not cover what the recipe leaves, fails here with the recipe line
     label = {"mcr": "MCR-ALS", "nmf": "NMF"}[s.component_method]
-    need, why = s.n_components, f"{label} with {s.n_components} components"
+    from .reduce.factorise import AUTO_MIN
+
+    need = AUTO_MIN if s.n_components == "auto" else s.n_components
+    why = f"{label} with {need} components"
     if refs:
         from .reduce.unmix import baseline_terms
 
@@ -407,6 +418,8 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                 fit_c = stream.sample_map(corrected, Sc)
                 fit_k = fit_c if same else stream.sample_map(keep, Sk)
                 del Sc, Sk
+            if s.n_components == "auto":   # from the despiked spectra the fit sees
+                s = replace(s, n_components=_components_of(keep, fit_k, notices))
             lap("clean, write cube, sample")
             names = [f"component {i + 1}" for i in range(s.n_components)]
             if s.component_method == "mcr":   # fits the background itself: the despiked map
@@ -562,6 +575,27 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
         summary["optical"] = optical_summary(placed)
     summary["_provenance"] = final.provenance
     return summary, results, written
+
+
+#: At most this many spectra (strided) go into the choice of the number of components:
+#: enough for a component of 0.1 % of them to reach the noise edge, and seconds of work.
+GUIDANCE_SPECTRA = 50_000
+
+
+def _components_of(keep, fit_k, notices) -> int:
+    """``n_components="auto"``: the number from the spectra the fit sees (``fit_k``, the
+    map or its sample, before the baseline step), with a notice saying how it was found."""
+    from . import stream
+    from .reduce import choose_n_components
+    from .reduce._common import good_spectra
+
+    m = fit_k
+    X, _ = good_spectra(fit_k, what="the choice of the number of components")
+    if len(X) > GUIDANCE_SPECTRA:
+        m = stream.sample_map(keep, X[::-(-len(X) // GUIDANCE_SPECTRA)])
+    k, line = choose_n_components(m)
+    notices.append(line)
+    return k
 
 
 def open_map_axes(map_path, open_kwargs=None):

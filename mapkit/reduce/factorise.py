@@ -923,3 +923,55 @@ def component_number_guidance(m: RamanMap, max_components: int = 12, *, baseline
     ratios = sv[:max_components] / edge
     return {"ratios": [float(r) for r in ratios], "n_components": int(np.sum(ratios > margin)),
             "baseline_order": order, "margin": float(margin)}
+
+
+#: What ``n_components="auto"`` takes: at least AUTO_MIN and at most AUTO_MAX components
+#: above the noise, and AUTO_FALLBACK where the map's noise does not behave like counts.
+AUTO_MIN, AUTO_MAX, AUTO_FALLBACK = 2, 10, 4
+
+#: The range of the last reported ratio (12th singular value ÷ noise edge) for counts:
+#: pure Poisson noise puts it just below 1; a detector gain or read noise moves it by a
+#: factor, scaled data (units other than counts) by far more.
+COUNTS_NOISE_RANGE = (0.5, 2.0)
+
+
+def choose_n_components(m: RamanMap) -> tuple[int, str]:
+    """The number of components a factorisation of ``m`` (despiked, in counts, background
+    kept) should have, and a line saying how it was found.
+
+    The count of :func:`component_number_guidance`, with the noise level read from its
+    last reported singular value (well past the components: the top of the noise's own
+    spectrum), so that a detector gain or read noise does not count as components; a
+    threshold of ``GUIDANCE_MARGIN`` times the larger of that level and the Poisson edge.
+    Where the level lies outside ``COUNTS_NOISE_RANGE`` (data scaled away from counts),
+    the map says nothing and ``AUTO_FALLBACK`` is returned with a line telling the user
+    to give the number.
+
+    Examples
+    --------
+    >>> s = np.linspace(0, 1, 300)
+    >>> S = np.stack([np.exp(-0.5 * ((s - c) / 0.01) ** 2) for c in (0.2, 0.4, 0.6, 0.8, 0.9)])
+    >>> rng = np.random.default_rng(1)
+    >>> X = rng.poisson(rng.dirichlet(np.ones(5), 900) @ (60 * S) + 200).astype(float)
+    >>> m = RamanMap(X.reshape(30, 30, 300), raman_shift=400 + 1200 * s, x=np.arange(30.),
+    ...              y=np.arange(30.))
+    >>> choose_n_components(m)[0]
+    5
+    """
+    g = component_number_guidance(m)
+    ratios = np.asarray(g["ratios"])
+    noise = float(ratios[-1])
+    lo, hi = COUNTS_NOISE_RANGE
+    if not lo <= noise <= hi:
+        return AUTO_FALLBACK, (
+            f"components: {AUTO_FALLBACK}, the fixed default: the map's noise does not behave "
+            f"like counts (noise level {noise:.2g} of the shot-noise edge), so it cannot tell "
+            "how many components stand above it; give --components N")
+    above = int(np.sum(ratios > g["margin"] * max(noise, 1.0)))
+    k = int(min(max(above, AUTO_MIN), AUTO_MAX))
+    return k, (f"components: {k}, chosen from the data ({above} singular values of the "
+               f"biwhitened counts above {g['margin']:g} times the noise edge"
+               + (f"; at least {AUTO_MIN}" if above < AUTO_MIN else "")
+               + (f"; at most {AUTO_MAX}" if above > AUTO_MAX else "")
+               + "); a component hidden in the noise is not counted: give --components N "
+               "to override")
