@@ -100,3 +100,9 @@ def test_a_bad_component_count_is_one_line(tmp_path, capsys):
     assert exc.value.code == 2
     err = capsys.readouterr().err
     assert "--components" in err and "auto" in err and "Traceback" not in err
+
+
+def test_too_few_spectra_fall_back_with_a_notice():
+    # 9 spectra give 9 singular values: none past the components to read the noise from
+    n, line = choose_n_components(random_count_map(0, 3, shape=(3, 3)))
+    assert n == AUTO_FALLBACK and "too few" in line and "--components" in line

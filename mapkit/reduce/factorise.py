@@ -850,7 +850,13 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
 GUIDANCE_MARGIN = 1.1
 
 
-def component_number_guidance(m: RamanMap, max_components: int = 12, *, baseline_order: int = 10,
+#: Singular values the guidance reports by default (the last of them reads the noise level
+#: in :func:`choose_n_components`).
+GUIDANCE_VALUES = 12
+
+
+def component_number_guidance(m: RamanMap, max_components: int = GUIDANCE_VALUES, *,
+                              baseline_order: int = 10,
                               margin: float = GUIDANCE_MARGIN, n_iter: int = 200) -> dict:
     """How many components of a map in counts stand above the shot noise.
 
@@ -943,9 +949,9 @@ def choose_n_components(m: RamanMap) -> tuple[int, str]:
     last reported singular value (well past the components: the top of the noise's own
     spectrum), so that a detector gain or read noise does not count as components; a
     threshold of ``GUIDANCE_MARGIN`` times the larger of that level and the Poisson edge.
-    Where the level lies outside ``COUNTS_NOISE_RANGE`` (data scaled away from counts),
-    the map says nothing and ``AUTO_FALLBACK`` is returned with a line telling the user
-    to give the number.
+    Where the level lies outside ``COUNTS_NOISE_RANGE`` (data scaled away from counts), or
+    the map has fewer than ``GUIDANCE_VALUES`` spectra, the map says nothing and
+    ``AUTO_FALLBACK`` is returned with a line telling the user to give the number.
 
     Examples
     --------
@@ -960,6 +966,10 @@ def choose_n_components(m: RamanMap) -> tuple[int, str]:
     """
     g = component_number_guidance(m)
     ratios = np.asarray(g["ratios"])
+    if len(ratios) < GUIDANCE_VALUES:   # no value past the components to read the noise from
+        return AUTO_FALLBACK, (
+            f"components: {AUTO_FALLBACK}, the fixed default: {len(ratios)} spectra are too "
+            "few to tell how many components stand above the noise; give --components N")
     noise = float(ratios[-1])
     lo, hi = COUNTS_NOISE_RANGE
     if not lo <= noise <= hi:
