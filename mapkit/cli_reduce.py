@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .cli_common import _common, _prepare, _range, _write
+from .cli_common import _common, _count_or_auto, _prepare, _range, _write
 from .errors import MapkitError
 
 
@@ -30,27 +30,35 @@ def cmd_components(a):
                           fix="drop them, or choose --method mcr")
     m, library = _prepare(a, background=method in FITS_BACKGROUND)
     guide = []
-    if a.guide:   # on the despiked counts with their background, whatever the method
+    counts = None   # the despiked counts with their background, whatever the method
+    n = a.n
+    if a.guide or n == "auto":
+        counts = m if method in FITS_BACKGROUND else _prepare(a, background=True)[0]
+    if a.guide:
         from .reduce import component_number_guidance
 
-        g = component_number_guidance(m if method in FITS_BACKGROUND
-                                      else _prepare(a, background=True)[0])
+        g = component_number_guidance(counts)
         guide = ["singular value / noise edge: " + ", ".join(f"{i + 1}: {r:.2f}" for i, r in
                                                               enumerate(g["ratios"])),
                  f"components above the noise (ratio > {g['margin']:g}): {g['n_components']}"]
-    res = run_method(m, method, n=a.n, seed=a.seed, library=library, init=a.init,
+    if n == "auto":
+        from .reduce import choose_n_components
+
+        n, line = choose_n_components(counts)
+        guide.append(line)
+    res = run_method(m, method, n=n, seed=a.seed, library=library, init=a.init,
                      closure=a.closure, min_score=a.min_score)[0]
     s = res.summary
     if a.method == "pca":
         lines = ["PCA explained variance (cumulative %): " +
                  ", ".join(f"PC{i + 1} {v:.1f}" for i, v in enumerate(s["cumulative_pct"]))]
     elif a.method == "nmf":
-        lines = [f"NMF: {a.n} components, {s['n_iter']} iterations"]
+        lines = [f"NMF: {n} components, {s['n_iter']} iterations"]
     elif method == "mcr_background":
-        lines = [f"MCR-ALS with a background per pixel: {a.n} components, baseline order "
+        lines = [f"MCR-ALS with a background per pixel: {n} components, baseline order "
                  f"{s['baseline_order']}, lack of fit {s['lack_of_fit_pct']:.2f} %"]
     else:
-        lines = [f"MCR-ALS: {a.n} components, lack of fit {s['lack_of_fit_pct']:.2f} %, "
+        lines = [f"MCR-ALS: {n} components, lack of fit {s['lack_of_fit_pct']:.2f} %, "
                  f"explained variance {s['explained_variance_pct']:.2f} %, {s['n_iter']} "
                  "iterations"]
     return _write(a, m, [res], guide + lines + _identified(res))
@@ -185,7 +193,9 @@ def add_parsers(sub, add_read_options, band_type, positive_int):
                    help="factorisation: mcr-background (default; MCR-ALS on the despiked "
                         "spectra with a polynomial background per pixel, started from the "
                         "purest pixels), nmf or mcr of the baseline-corrected spectra, pca")
-    c.add_argument("--n", type=positive_int, default=4, help="number of components (default 4)")
+    c.add_argument("--n", type=_count_or_auto, default="auto",
+                   help="number of components, or auto (default): as many as stand above the "
+                        "shot noise of the despiked counts (see --guide)")
     c.add_argument("--init", choices=("nndsvda", "vca", "nmf"), default="nndsvda",
                    help="starting point (NMF: nndsvda or vca; MCR: vca or nmf)")
     c.add_argument("--closure", action="store_true", help="MCR: concentrations sum to one")

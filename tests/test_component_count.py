@@ -106,3 +106,15 @@ def test_too_few_spectra_fall_back_with_a_notice():
     # 9 spectra give 9 singular values: none past the components to read the noise from
     n, line = choose_n_components(random_count_map(0, 3, shape=(3, 3)))
     assert n == AUTO_FALLBACK and "too few" in line and "--components" in line
+
+
+def test_components_subcommand_chooses_the_count_too(tmp_path, capsys):
+    from mapkit.cli import main
+    from mapkit.read.nexus import read_results
+
+    path = _write(tmp_path, random_count_map(2, 3))
+    assert main(["components", str(path), "--out", str(tmp_path / "o"), "--no-figures",
+                 "--quiet"]) == 0
+    assert "components: 3, chosen from the data" in capsys.readouterr().out
+    spectra = read_results(tmp_path / "o" / "results.h5")["mcr"]["fields"]["spectra"]["data"]
+    assert len(spectra) == 3
