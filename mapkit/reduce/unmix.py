@@ -202,14 +202,26 @@ def unmix_spectra_poisson(R, X, shift, baseline_order: int | None = None, *,
     A = np.zeros((k, X.shape[0]))
     rms = np.zeros(X.shape[0])
     converged = np.zeros(X.shape[0], bool)
+    # the same products as written out plainly, with contiguous operands (a strided one
+    # makes numpy skip BLAS: 50x slower here) into three scratch arrays reused by every
+    # block (fresh (b, n) temporaries cost more in page faults than in arithmetic)
+    A0t = np.ascontiguousarray(A0.T)                                   # (m, k)
+    Qt = np.ascontiguousarray(Q.T)
+    b0 = min(WEIGHTED_BLOCK, X.shape[0])
+    raman_, w_, t_ = (np.empty((b0, n)) for _ in range(3))
     for start in range(0, X.shape[0], WEIGHTED_BLOCK):
         sl = slice(start, start + WEIGHTED_BLOCK)
         Xb = X[sl]
-        raman = A0[:, sl].T @ R
-        mu = raman + ((Xb - raman) @ Q) @ Q.T
-        w = 1.0 / np.maximum(mu, 1.0)                                   # (b, n)
+        b = Xb.shape[0]
+        raman, w, t = raman_[:b], w_[:b], t_[:b]
+        np.matmul(A0t[sl], R, out=raman)
+        np.subtract(Xb, raman, out=t)
+        np.matmul(t @ Q, Qt, out=w)
+        np.add(raman, w, out=w)                                         # mu
+        np.maximum(w, 1.0, out=w)
+        np.divide(1.0, w, out=w)                                        # (b, n)
         M = (w @ BB).reshape(-1, k + p, k + p)                          # B'WB per pixel
-        h = (w * Xb) @ B                                                # B'WX (b, k + p)
+        h = np.multiply(w, Xb, out=t) @ B                               # B'WX (b, k + p)
         G, H = M[:, :k, :k], h[:, :k]
         if p:
             T = np.linalg.solve(M[:, k:, k:], np.concatenate(
@@ -218,11 +230,12 @@ def unmix_spectra_poisson(R, X, shift, baseline_order: int | None = None, *,
             H = H - (M[:, :k, k:] @ T[:, :, k:])[:, :, 0]
         Ab, ok = nnls_gram(G, H.T, tol=tol, return_converged=True)
         A[:, sl], converged[sl] = Ab, ok
-        r = Xb - Ab.T @ R                                               # residual before the
-        if p:                                                           # weighted baseline
-            c = np.linalg.solve(M[:, k:, k:], ((w * r) @ Q)[:, :, None])[:, :, 0]
-            r = r - c @ Q.T
-        rms[sl] = np.sqrt(np.mean(r ** 2, axis=1))
+        r = np.subtract(Xb, np.matmul(np.ascontiguousarray(Ab.T), R, out=raman), out=raman)
+        if p:                                                           # residual before the
+            c = np.linalg.solve(M[:, k:, k:],                           # weighted baseline
+                                (np.multiply(w, r, out=t) @ Q)[:, :, None])[:, :, 0]
+            r = np.subtract(r, np.matmul(c, Qt, out=t), out=r)
+        rms[sl] = np.sqrt(np.mean(np.square(r, out=t), axis=1))
     return A, rms, converged
 
 
