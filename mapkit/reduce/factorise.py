@@ -791,10 +791,15 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
         # the Gram matrix's eigenvalue below the subspace against the smallest leading one
         if theta[0] <= START_TOLERANCE ** (1 / START_MAX_PASSES) * max(theta[-k], 0.0):
             Z = np.linalg.qr(Z[:, 1:] - Q @ (Q.T @ Z[:, 1:]))[0]   # ⟂ polynomials: X Z = Xp Z
+            buf = np.empty((0, n))   # one float64 copy of a block, reused
             for passes in range(2, START_MAX_PASSES + 2):
                 GZ, Y = np.zeros((n, width)), []
                 for X in blocks():
-                    Xb = np.asarray(X, np.float64)
+                    X = np.asarray(X)
+                    if len(X) > len(buf):
+                        buf = np.empty((len(X), n))
+                    Xb = buf[:len(X)]
+                    Xb[...] = X
                     Y.append(Xb @ Z)
                     GZ += Xb.T @ Y[-1]
                 GZ -= Q @ (Q.T @ GZ)                  # Xpᵀ Xp Z
