@@ -689,6 +689,8 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
     start_pixels_ : array of int
         Flat indices (among the good pixels) of the starting pure pixels (with ``start``:
         the pixels given).
+    start_passes_ : int
+        Passes over the blocks the last :meth:`start_from_blocks` took (set only by it).
     lack_of_fit_ : float
         100·‖D − C Sᵀ − B Pᵀ‖ / ‖D − B Pᵀ‖ in %.
 

@@ -195,10 +195,12 @@ def unmix_spectra_poisson(R, X, shift, baseline_order: int | None = None, *,
     A0 = nnls_gram(Rp.T @ Rp, np.ascontiguousarray((X @ Rp).T), tol=1e-6)
     k, p = R.shape[0], Q.shape[1]
     # the per-pixel weighted sums R'WR, R'WQ, Q'WQ as one product of the weights with the
-    # channel-wise products of the basis vectors (n x (k² + kp + p²)): the normal equations
+    # channel-wise products of the basis vectors: the normal equations
     # of the weighted fit, with the polynomials eliminated by their Schur complement
     B = np.concatenate([R.T, Q], axis=1)                                # (n, k + p)
-    BB = (B[:, :, None] * B[:, None, :]).reshape(n, (k + p) ** 2)
+    # (each sum once: the matrices are symmetric, so only their upper triangles)
+    iu = np.triu_indices(k + p)
+    BB = np.ascontiguousarray(B[:, iu[0]] * B[:, iu[1]])                # (n, (k+p)(k+p+1)/2)
     A = np.zeros((k, X.shape[0]))
     rms = np.zeros(X.shape[0])
     converged = np.zeros(X.shape[0], bool)
@@ -220,7 +222,8 @@ def unmix_spectra_poisson(R, X, shift, baseline_order: int | None = None, *,
         np.add(raman, w, out=w)                                         # mu
         np.maximum(w, 1.0, out=w)
         np.divide(1.0, w, out=w)                                        # (b, n)
-        M = (w @ BB).reshape(-1, k + p, k + p)                          # B'WB per pixel
+        M = np.empty((b, k + p, k + p))                                 # B'WB per pixel
+        M[:, iu[0], iu[1]] = M[:, iu[1], iu[0]] = w @ BB
         h = np.multiply(w, Xb, out=t) @ B                               # B'WX (b, k + p)
         G, H = M[:, :k, :k], h[:, :k]
         if p:
