@@ -147,13 +147,15 @@ def unmix_spectra(R, X, shift, baseline_order: int | None = None, *, sum_to_one:
     else:
         Q = polynomial_basis(shift, baseline_order)
         Rp = R.T - Q @ (Q.T @ R.T)
-        Xp = X - (X @ Q) @ Q.T
+        Xp = (X @ Q) @ Q.T
+        np.subtract(X, Xp, out=Xp)   # X - (X Q) Qᵀ (one (m, n) array, not two)
     if sum_to_one:
         A, converged = simplex_ls_batch(Rp, Xp.T, return_converged=True)
     else:
         A, converged = nnls_gram(Rp.T @ Rp, np.ascontiguousarray((Xp @ Rp).T), tol=tol,
                                  return_converged=True)
-    rms = np.sqrt(np.mean((Xp - A.T @ Rp.T) ** 2, axis=1))
+    r = A.T @ Rp.T
+    rms = np.sqrt(np.mean(np.square(np.subtract(Xp, r, out=r), out=r), axis=1))
     return (A, rms, converged) if return_converged else (A, rms)
 
 
