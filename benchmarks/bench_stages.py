@@ -131,7 +131,8 @@ def main():
     loads.append(os.getloadavg()[0])
     print(f"\n{cube.name}, --chunked, {a.runs} runs each, alternated old/new; "
           f"{thread_counts()}; load average (1 min) at the runs' starts "
-          f"{min(loads):.1f}-{max(loads):.1f}; {time.strftime('%Y-%m-%d %H:%M UTC', time.gmtime())}")
+          f"{min(loads):.1f}-{max(loads):.1f}; "
+          f"{time.strftime('%Y-%m-%d %H:%M UTC', time.gmtime())}")
     print("| stage | old wall s | new wall s | old / new | old CPU s | new CPU s | old / new |")
     print("|---|---|---|---|---|---|---|")
     names = list(got["new"][0])

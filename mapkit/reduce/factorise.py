@@ -758,9 +758,10 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
         every further pass multiplies its ``n_components + START_OVERSAMPLING`` leading
         eigenvectors by the whole Gram matrix block by block, until every leading Ritz
         pair's residual is below ``START_TOLERANCE`` of its value, and the last pass's
-        products are the scores (on 128 000 spectra of 1024 channels: 3 passes, the start's
-        spectra within 3e-8 of the eigenvectors' own, a third of the operations). Without
-        that gap (leading components down in the noise, where any small change swaps
+        products are the scores (on the 128 000 spectra of 1024 channels of the c128 bench
+        cube: 4 passes instead of 2, about a quarter of the operations, the same purest
+        rows, start spectra within 3e-8 of the whole matrix's; benchmarks/RESULTS.md).
+        Without that gap (leading components down in the noise, where any small change swaps
         near-tied purest pixels), or if the iteration has not converged after
         ``START_MAX_PASSES`` passes, the whole Gram matrix is formed in one pass and every
         spectrum scored in another. Per spectrum and per channel only: the same start for
@@ -788,7 +789,8 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
                 G += Xp.T @ Xp
             return G
 
-        theta, Z = scipy.linalg.eigh(gram(START_GRAM_STRIDE), subset_by_index=[n - width - 1, n - 1])
+        theta, Z = scipy.linalg.eigh(gram(START_GRAM_STRIDE),
+                                     subset_by_index=[n - width - 1, n - 1])
         passes, scores = 1, None
         # the Gram matrix's eigenvalue below the subspace against the smallest leading one
         if theta[0] <= START_TOLERANCE ** (1 / START_MAX_PASSES) * max(theta[-k], 0.0):
