@@ -758,14 +758,14 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
         every further pass multiplies its ``n_components + START_OVERSAMPLING`` leading
         eigenvectors by the whole Gram matrix block by block, until every leading Ritz
         pair's residual is below ``START_TOLERANCE`` of its value, and the last pass's
-        products are the scores (on the 128 000 spectra of 1024 channels of the c128 bench
-        cube: 4 passes instead of 2, about a quarter of the operations, the same purest
-        rows, start spectra within 3e-8 of the whole matrix's; benchmarks/RESULTS.md).
-        Without that gap (leading components down in the noise, where any small change swaps
-        near-tied purest pixels), or if the iteration has not converged after
-        ``START_MAX_PASSES`` passes, the whole Gram matrix is formed in one pass and every
-        spectrum scored in another. Per spectrum and per channel only: the same start for
-        any block size."""
+        products are the scores (measured 2026-12-02 on the 128 000 spectra of 1024
+        channels of the c128 bench cube: 4 passes instead of 2, about a quarter of the
+        operations, the same purest rows, start spectra within 3e-8 of the whole
+        matrix's; benchmarks/RESULTS.md). Without that gap (leading components down in
+        the noise, where any small change swaps near-tied purest pixels), or if the
+        iteration has not converged after ``START_MAX_PASSES`` passes, the whole Gram
+        matrix is formed in one pass and every spectrum scored in another. Per spectrum
+        and per channel only: the same start for any block size."""
         import scipy.linalg
 
         from .endmembers import successive_projections

@@ -206,9 +206,9 @@ def unmix_spectra_poisson(R, X, shift, baseline_order: int | None = None, *,
     A = np.zeros((k, X.shape[0]))
     rms = np.zeros(X.shape[0])
     converged = np.zeros(X.shape[0], bool)
-    # the same products as written out plainly, with contiguous operands (a strided one
-    # makes numpy skip BLAS: 50x slower here) into three scratch arrays reused by every
-    # block (fresh (b, n) temporaries cost more in page faults than in arithmetic)
+    # the same products as written out plainly, into three scratch arrays reused by every
+    # block instead of about ten fresh (b, n) arrays (with the upper triangles: 0.24-0.33
+    # against 0.33-0.44 CPU s per 16 000 spectra, 1 thread, 2026-12-02, benchmarks/RESULTS.md)
     A0t = np.ascontiguousarray(A0.T)                                   # (m, k)
     Qt = np.ascontiguousarray(Q.T)
     b0 = min(WEIGHTED_BLOCK, X.shape[0])
