@@ -789,11 +789,13 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
                 G += Xp.T @ Xp
             return G
 
-        theta, Z = scipy.linalg.eigh(gram(START_GRAM_STRIDE),
-                                     subset_by_index=[n - width - 1, n - 1])
-        passes, scores = 1, None
+        passes, scores = 0, None
+        if width >= k:   # (else too few channels beside the polynomials to iterate on)
+            theta, Z = scipy.linalg.eigh(gram(START_GRAM_STRIDE),
+                                         subset_by_index=[n - width - 1, n - 1])
+            passes = 1
         # the Gram matrix's eigenvalue below the subspace against the smallest leading one
-        if theta[0] <= START_TOLERANCE ** (1 / START_MAX_PASSES) * max(theta[-k], 0.0):
+        if passes and theta[0] <= START_TOLERANCE ** (1 / START_MAX_PASSES) * max(theta[-k], 0):
             Z = np.linalg.qr(Z[:, 1:] - Q @ (Q.T @ Z[:, 1:]))[0]   # ⟂ polynomials: X Z = Xp Z
             buf = np.empty((0, n))   # one float64 copy of a block, reused
             for passes in range(2, START_MAX_PASSES + 2):
