@@ -418,3 +418,21 @@ def test_background_mcr_start_from_blocks_matches_the_whole_gram_matrix(noise, m
         assert 200 in sizes and len(calls) >= 3
         np.testing.assert_array_equal(rows, rows0)
         np.testing.assert_allclose(S, S0, rtol=0, atol=1e-12 * np.abs(S0).max())
+
+
+def test_background_mcr_start_from_blocks_with_few_channels_beside_the_background():
+    """Four components on 15 channels with an order-10 background leave four channels
+    beside the polynomials, too few for the subspace and the one below it: the start comes
+    from the whole Gram matrix (LAPACK through numpy.linalg.eigh, as in the test above) in
+    two passes."""
+    from mapkit.reduce import BackgroundMCR
+
+    rng = np.random.default_rng(2)
+    s = np.linspace(0, 1, 15)
+    X = rng.random((300, 4)) @ rng.random((4, 15)) + rng.normal(0, 0.01, (300, 15))
+    est = BackgroundMCR(n_components=4, baseline_order=10)
+    S, rows = est.start_from_blocks(lambda: (X[i:i + 100] for i in range(0, 300, 100)), s)
+    S0, rows0 = _start_from_gram(X, s, 4, 10)
+    assert est.start_passes_ == 2
+    np.testing.assert_array_equal(rows, rows0)
+    np.testing.assert_allclose(S, S0, rtol=0, atol=1e-9 * np.abs(S0).max())
