@@ -358,3 +358,81 @@ def test_background_mcr_start_from_blocks_finds_the_pure_pixels():
                                                                 start=(S, rows))
     assert sorted(fit.start_pixels_.tolist()) == [37, 180, 333]
     assert _match(fit.components_, E)[2].min() > 0.99
+
+
+def _start_from_gram(X, s, k, order):
+    """The block start from the whole channel Gram matrix's leading eigenvectors (LAPACK
+    through numpy.linalg.eigh) and the successive projections on every spectrum's scores."""
+    from mapkit.reduce.endmembers import successive_projections
+    from mapkit.reduce.factorise import least_area_lift
+    from mapkit.reduce.unmix import polynomial_basis
+
+    Q = polynomial_basis(s, order)
+    Xp = X - (X @ Q) @ Q.T
+    V = np.linalg.eigh(Xp.T @ Xp)[1][:, ::-1][:, :k].T
+    idx = successive_projections(Xp @ V.T, k)
+    return least_area_lift((Xp @ V.T)[idx] @ V, Q), idx
+
+
+@pytest.mark.parametrize("noise", [1e-2, 0.3])
+def test_background_mcr_start_from_blocks_matches_the_whole_gram_matrix(noise, monkeypatch):
+    """The block start's subspace iteration (Halko, Martinsson & Tropp 2011, SIAM Rev.
+    53:217, algorithm 4.4) against the eigenvectors of the whole Gram matrix from LAPACK
+    (numpy.linalg.eigh): with a clear gap below three strong components (noise 0.01) it
+    iterates (no eigendecomposition of a whole channel Gram matrix, at most 3 passes) and
+    picks the same purest rows, spectra within 1e-6 of their largest value; with a weak
+    third component at the noise level (0.3: no gap) it forms the whole matrix and gives
+    the same start (to rounding, 1e-12)."""
+    from mapkit.reduce import BackgroundMCR
+
+    eigh, sizes = np.linalg.eigh, []
+
+    def recording_eigh(a, *args, **kw):
+        sizes.append(a.shape[0])
+        return eigh(a, *args, **kw)
+
+    rng = np.random.default_rng(5)
+    s = np.linspace(0, 1, 200)
+    E = np.stack([np.exp(-0.5 * ((s - c) / 0.03) ** 2) for c in (0.2, 0.5, 0.8)])
+    E[2] *= 1 if noise < 0.1 else 0.05
+    F = rng.dirichlet(np.ones(3), 3000)
+    X = F @ E * 50 + rng.uniform(5, 10, (3000, 1)) + rng.uniform(-2, 2, (3000, 1)) * s \
+        + rng.normal(0, noise, (3000, 200))
+    calls = []
+
+    def blocks():
+        calls.append(1)
+        return (X[i:i + 700] for i in range(0, 3000, 700))
+
+    est = BackgroundMCR(n_components=3, baseline_order=1)
+    monkeypatch.setattr(np.linalg, "eigh", recording_eigh)
+    S, rows = est.start_from_blocks(blocks, s)
+    monkeypatch.undo()
+    S0, rows0 = _start_from_gram(X, s, 3, 1)
+    assert est.start_passes_ == len(calls)
+    if noise < 0.1:
+        assert max(sizes) < 200 and len(calls) <= 3, (sizes, len(calls))
+        assert sorted(rows.tolist()) == sorted(rows0.tolist())
+        assert np.abs(S - S0).max() <= 1e-6 * np.abs(S0).max()
+    else:
+        assert 200 in sizes and len(calls) >= 3
+        np.testing.assert_array_equal(rows, rows0)
+        np.testing.assert_allclose(S, S0, rtol=0, atol=1e-12 * np.abs(S0).max())
+
+
+def test_background_mcr_start_from_blocks_with_few_channels_beside_the_background():
+    """Four components on 15 channels with an order-10 background leave four channels
+    beside the polynomials, too few for the subspace and the one below it: the start comes
+    from the whole Gram matrix (LAPACK through numpy.linalg.eigh, as in the test above) in
+    two passes."""
+    from mapkit.reduce import BackgroundMCR
+
+    rng = np.random.default_rng(2)
+    s = np.linspace(0, 1, 15)
+    X = rng.random((300, 4)) @ rng.random((4, 15)) + rng.normal(0, 0.01, (300, 15))
+    est = BackgroundMCR(n_components=4, baseline_order=10)
+    S, rows = est.start_from_blocks(lambda: (X[i:i + 100] for i in range(0, 300, 100)), s)
+    S0, rows0 = _start_from_gram(X, s, 4, 10)
+    assert est.start_passes_ == 2
+    np.testing.assert_array_equal(rows, rows0)
+    np.testing.assert_allclose(S, S0, rtol=0, atol=1e-9 * np.abs(S0).max())

@@ -24,7 +24,8 @@ def good_spectra(m: RamanMap, *, what: str) -> tuple[np.ndarray, np.ndarray]:
     if good.size == 0:
         raise MapkitError(f"every pixel is masked; {what} has nothing to work on",
                           file=m.source, field="mask", fix="check the map's bad-pixel mask")
-    return flat[good], good
+    # every pixel good (most blocks): the float64 copy itself, not a second one
+    return (flat if good.size == flat.shape[0] else flat[good]), good
 
 
 def to_images(m: RamanMap, values: np.ndarray, good: np.ndarray, fill=np.nan) -> np.ndarray:
