@@ -34,17 +34,20 @@ def cmd_components(a):
     n = a.n
     if a.guide or n == "auto":
         counts = m if method in FITS_BACKGROUND else _prepare(a, background=True)[0]
+    g = None
     if a.guide:
         from .reduce import component_number_guidance
 
         g = component_number_guidance(counts)
         guide = ["singular value / noise edge: " + ", ".join(f"{i + 1}: {r:.2f}" for i, r in
                                                               enumerate(g["ratios"])),
-                 f"components above the noise (ratio > {g['margin']:g}): {g['n_components']}"]
-    if n == "auto":
+                 f"components above the noise (ratio > {g['margin']:g} x noise level "
+                 f"{g['noise_level']:.2f}): {g['n_components']}"]
+    if a.guide or n == "auto":   # the same choice as analyse, with its reason or its warning
         from .reduce import choose_n_components
 
-        n, line = choose_n_components(counts)
+        chosen, line = choose_n_components(counts, g, option="--n")
+        n = chosen if n == "auto" else n
         guide.append(line)
     res = run_method(m, method, n=n, seed=a.seed, library=library, init=a.init,
                      closure=a.closure, min_score=a.min_score)[0]

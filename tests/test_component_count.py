@@ -50,10 +50,17 @@ def test_the_count_is_the_number_of_materials(k):
 
 
 def test_a_detector_gain_does_not_change_the_count():
-    # counts read through a gain of 2 or 0.5 electrons per unit: the noise level moves by
-    # a factor sqrt(2); the count, read against that level, stays
-    for gain in (2.0, 0.5):
-        assert choose_n_components(random_count_map(0, 3, gain=gain))[0] == 3, gain
+    # counts read through a gain of 0.5-10 electrons per unit: the noise level moves to
+    # 1/sqrt(gain) of the Poisson edge; the count, read against that level, stays, and the
+    # guidance the components subcommand prints agrees
+    from mapkit.reduce import component_number_guidance
+
+    for gain in (0.5, 2.0, 10.0):
+        m = random_count_map(0, 3, gain=gain)
+        assert choose_n_components(m)[0] == 3, gain
+        g = component_number_guidance(m)
+        assert g["n_components"] == 3, gain
+        assert g["noise_level"] == pytest.approx(gain ** -0.5, rel=0.15), gain
 
 
 def test_data_that_are_not_counts_fall_back_with_a_notice():

@@ -173,9 +173,10 @@ def _overview(map_name, summary, res):
         lines.append(f"The map holds {shape[0]} × {shape[1]} spectra of {shape[2]} channels.")
     comp = res.get("mcr") or res.get("nmf")
     ident = comp.summary.get("identification", []) if comp is not None else []
-    found = sorted({i["match"] for i in ident if i["match"] != "unmatched"})
-    if found:
-        lines.append("Its components were identified as " + ", ".join(found) + ".")
+    if ident:   # in the components' order, the unmatched ones said as such
+        named = [f"{i['spectrum']} as {i['match']}" if i["match"] != "unmatched"
+                 else f"{i['spectrum']} not identified" for i in ident]
+        lines.append(f"It has {len(ident)} components: " + "; ".join(named) + ".")
     classes = res.get("classes") or res.get("kmeans")
     if classes is not None:
         names = {i["spectrum"]: i["match"] for i in classes.summary.get("identification", [])}

@@ -936,7 +936,10 @@ def component_number_guidance(m: RamanMap, max_components: int = GUIDANCE_VALUES
     out, pure noise has singular values no larger than √m + √n (m pixels, n channels less
     the background terms: the edge of the Marchenko-Pastur law, Marchenko & Pastur 1967,
     Math. USSR Sb. 1:457); each singular value above ``margin`` times that edge is a
-    component the data can resolve. Diagonal scaling keeps the rank of the signal, so the
+    component the data can resolve. The edge is scaled by the noise level read from the
+    last value reported (``max_components`` values, past the components), so that counts
+    read through a detector gain, whose noise sits at 1/√gain of the Poisson edge, are
+    counted alike. Diagonal scaling keeps the rank of the signal, so the
     count is that of the Raman components plus any background the polynomials miss
     (too low a ``baseline_order`` shows up as extra components).
 
@@ -957,8 +960,9 @@ def component_number_guidance(m: RamanMap, max_components: int = GUIDANCE_VALUES
 
     Returns
     -------
-    dict with ``ratios`` (the leading singular values ÷ the noise edge, descending) and
-    ``n_components`` (how many exceed ``margin``).
+    dict with ``ratios`` (the leading singular values ÷ the noise edge, descending),
+    ``noise_level`` (the last of them; 1 when fewer were available) and ``n_components``
+    (how many exceed ``margin`` times ``noise_level``).
 
     Examples
     --------
@@ -995,7 +999,11 @@ def component_number_guidance(m: RamanMap, max_components: int = GUIDANCE_VALUES
     sv = np.linalg.svd(Y, compute_uv=False)
     edge = np.sqrt(Y.shape[0]) + np.sqrt(Y.shape[1] - n_terms)
     ratios = sv[:max_components] / edge
-    return {"ratios": [float(r) for r in ratios], "n_components": int(np.sum(ratios > margin)),
+    # the noise level: the last value reported, past the components (1 for pure Poisson
+    # counts; a detector gain of g electrons per unit moves it to 1/sqrt(g))
+    noise = float(ratios[-1]) if len(ratios) == max_components else 1.0
+    return {"ratios": [float(r) for r in ratios],
+            "n_components": int(np.sum(ratios > margin * noise)), "noise_level": noise,
             "baseline_order": order, "margin": float(margin)}
 
 
@@ -1003,20 +1011,24 @@ def component_number_guidance(m: RamanMap, max_components: int = GUIDANCE_VALUES
 #: above the noise, and AUTO_FALLBACK where the map's noise does not behave like counts.
 AUTO_MIN, AUTO_MAX, AUTO_FALLBACK = 2, 10, 4
 
-#: The range of the last reported ratio (12th singular value ÷ noise edge) for counts:
-#: pure Poisson noise puts it just below 1; a detector gain or read noise moves it by a
-#: factor, scaled data (units other than counts) by far more.
-COUNTS_NOISE_RANGE = (0.5, 2.0)
+#: The range of the noise level (12th singular value ÷ Poisson noise edge) for counts:
+#: pure Poisson noise puts it just below 1; a detector gain of g electrons per unit at
+#: 1/sqrt(g) (0.2: g = 25; 5: g = 0.04) and read noise above it; data scaled away from
+#: counts (fractions, normalised spectra) fall outside.
+COUNTS_NOISE_RANGE = (0.2, 5.0)
 
 
-def choose_n_components(m: RamanMap) -> tuple[int, str]:
+def choose_n_components(m: RamanMap, guidance: dict | None = None,
+                        option: str = "--components") -> tuple[int, str]:
     """The number of components a factorisation of ``m`` (despiked, in counts, background
-    kept) should have, and a line saying how it was found.
+    kept) should have, and a line saying how it was found (``guidance``: the result of
+    :func:`component_number_guidance` on ``m`` where it is at hand; ``option``: the
+    command-line option the line tells the user to set).
 
-    The count of :func:`component_number_guidance`, with the noise level read from its
-    last reported singular value (well past the components: the top of the noise's own
-    spectrum), so that a detector gain or read noise does not count as components; a
-    threshold of ``GUIDANCE_MARGIN`` times the larger of that level and the Poisson edge.
+    The count of :func:`component_number_guidance`, whose threshold is ``margin`` times the
+    noise level read from its last reported singular value (well past the components: the
+    top of the noise's own spectrum), so that a detector gain or read noise neither counts
+    as components nor hides them.
     Where the level lies outside ``COUNTS_NOISE_RANGE`` (data scaled away from counts), or
     the map has fewer than ``GUIDANCE_VALUES`` spectra, the map says nothing and
     ``AUTO_FALLBACK`` is returned with a line telling the user to give the number.
@@ -1032,24 +1044,25 @@ def choose_n_components(m: RamanMap) -> tuple[int, str]:
     >>> choose_n_components(m)[0]
     5
     """
-    g = component_number_guidance(m)
+    g = component_number_guidance(m) if guidance is None else guidance
     ratios = np.asarray(g["ratios"])
     if len(ratios) < GUIDANCE_VALUES:   # no value past the components to read the noise from
         return AUTO_FALLBACK, (
             f"components: {AUTO_FALLBACK}, the fixed default: {len(ratios)} spectra are too "
-            "few to tell how many components stand above the noise; give --components N")
-    noise = float(ratios[-1])
+            f"few to tell how many components stand above the noise; give {option} N")
+    noise = g["noise_level"]
     lo, hi = COUNTS_NOISE_RANGE
     if not lo <= noise <= hi:
         return AUTO_FALLBACK, (
-            f"components: {AUTO_FALLBACK}, the fixed default: the map's noise does not behave "
-            f"like counts (noise level {noise:.2g} of the shot-noise edge), so it cannot tell "
-            "how many components stand above it; give --components N")
-    above = int(np.sum(ratios > g["margin"] * max(noise, 1.0)))
+            f"components: {AUTO_FALLBACK}, the fixed default: the intensities do not look like "
+            f"detector counts (their noise is {noise:.2g} times what counts would carry: "
+            "scaled or normalised data?), so the map cannot tell how many components stand "
+            f"above its noise; give {option} N")
+    above = g["n_components"]
     k = int(min(max(above, AUTO_MIN), AUTO_MAX))
     return k, (f"components: {k}, chosen from the data ({above} singular values of the "
                f"biwhitened counts above {g['margin']:g} times the noise edge"
                + (f"; at least {AUTO_MIN}" if above < AUTO_MIN else "")
                + (f"; at most {AUTO_MAX}" if above > AUTO_MAX else "")
-               + "); a component hidden in the noise is not counted: give --components N "
+               + f"); a component hidden in the noise is not counted: give {option} N "
                "to override")
