@@ -125,3 +125,18 @@ def test_components_subcommand_chooses_the_count_too(tmp_path, capsys):
     assert "components: 3, chosen from the data" in capsys.readouterr().out
     spectra = read_results(tmp_path / "o" / "results.h5")["mcr"]["fields"]["spectra"]["data"]
     assert len(spectra) == 3
+
+
+def test_report_overview_names_every_component_in_order():
+    # the report's first lines: every component in its own order, an unmatched one said as
+    # such (not dropped, not sorted away)
+    from mapkit.core.result import Result
+    from mapkit.export.report import _overview
+
+    ident = [{"spectrum": "component 1", "match": "hematite"},
+             {"spectrum": "component 2", "match": "unmatched"},
+             {"spectrum": "component 3", "match": "goethite"}]
+    res = {"mcr": Result("mcr", "mcr_als_background", {}, {}, {"identification": ident})}
+    text = _overview("m.h5", {"shape": [4, 5, 100]}, res)
+    assert ("3 components: component 1 as hematite; component 2 not identified; "
+            "component 3 as goethite.") in text
