@@ -35,8 +35,10 @@ def _scale_bar(ax, extent):
     bx, by = x0 + pad, y0 + pad if y0 < y1 else y0 - pad
     ax.add_patch(Rectangle((bx, by), length, h, color="white", ec="black", lw=0.6))
     label = f"{length:g} µm"
-    ax.text(bx + length / 2, by + 2.5 * h, label, ha="center", va="top" if y0 > y1 else "bottom",
-            color="white", fontsize=8,
+    # the label sits above the bar on screen, inside the image (below it, it ran over the
+    # frame and the tick labels); y runs downwards on screen where y0 > y1
+    ty = by - 0.6 * h if y0 > y1 else by + 1.6 * h
+    ax.text(bx + length / 2, ty, label, ha="center", va="bottom", color="white", fontsize=8,
             path_effects=[withStroke(linewidth=2, foreground="black")])
 
 
@@ -210,7 +212,7 @@ def save_image_figure(path, field: Field, index: int | None = None, *, title: st
         _scale_bar(ax, extent)
     ax.set_title(title, fontsize=10)
     with atomic_path(path, overwrite=overwrite) as tmp:
-        fig.savefig(tmp, dpi=dpi, format=str(path).rsplit(".", 1)[-1])
+        fig.savefig(tmp, dpi=dpi, format=str(path).rsplit(".", 1)[-1], bbox_inches="tight")
     return path
 
 
