@@ -140,3 +140,19 @@ def test_report_overview_names_every_component_in_order():
     text = _overview("m.h5", {"shape": [4, 5, 100]}, res)
     assert ("3 components: component 1 as hematite; component 2 not identified; "
             "component 3 as goethite.") in text
+
+
+def test_intensity_units_other_than_counts_are_said(tmp_path):
+    # a map whose intensity is labelled a.u. is read as given, with a notice in the summary
+    import h5py
+
+    from mapkit.read import open_map
+    from mapkit.read.dispatch import read_notes
+
+    path = _write(tmp_path, random_count_map(1, 2, shape=(6, 6)))
+    with h5py.File(path, "a") as f:
+        f["entry/map/intensity"].attrs["units"] = "a.u."
+    notes = read_notes(open_map(path))
+    assert any("'a.u.', not counts" in n for n in notes), notes
+    assert not read_notes(open_map(_write(tmp_path, random_count_map(1, 2, shape=(6, 6)),
+                                          "counts.h5")))

@@ -72,6 +72,15 @@ def _read_nexus(f, path, block_bytes=None):
     if f"{layout.PROVENANCE}/steps" in f:
         raw = f[f"{layout.PROVENANCE}/steps"][...]
         steps = tuple(Step.from_json(s.decode() if isinstance(s, bytes) else s) for s in raw)
+    units = cube_ds.attrs.get("units")
+    units = units.decode() if isinstance(units, bytes) else units
+    if units is not None and str(units).strip().lower() != "counts":
+        # read as given, but said: the noise model (shot-noise weights, SNR, the number of
+        # components) assumes detector counts, and the outputs label the intensity counts
+        steps = steps + (Step("read", {"source": str(path), "note": (
+            f"intensity units are {units!r}, not counts: the shot-noise weights, the SNR and "
+            "the choice of the number of components assume counts, and the outputs label "
+            "the values counts; give --components N, or convert the data to counts")}),)
     from ..core.ramanmap import check_axis
     sizes = dict(zip(dims, cube.shape))
     shift = check_axis(axis("raman_shift"), name="raman_shift", length=sizes["raman_shift"],
