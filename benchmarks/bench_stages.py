@@ -94,16 +94,6 @@ def compare(a, b):
     return worst
 
 
-def thread_counts():
-    from threadpoolctl import threadpool_info
-
-    import numba
-
-    blas = ", ".join(f"{i['internal_api']} {i['num_threads']}" for i in threadpool_info())
-    return (f"{os.cpu_count()} CPUs; Dask threads {os.cpu_count()} (default); numba "
-            f"{numba.config.NUMBA_NUM_THREADS}; BLAS/OpenMP: {blas or 'none'}")
-
-
 def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--old", required=True, help="the other checkout (its folder)")
@@ -111,12 +101,12 @@ def main():
     ap.add_argument("--runs", type=int, default=3)
     a = ap.parse_args()
     sys.path.insert(0, str(ROOT))
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    from bench_large import make_cube, thread_counts   # one place for both
     folder = Path(os.environ.get("MAPKIT_BENCH_DIR", Path(tempfile.gettempdir()) / "mapkit-bench"))
     folder.mkdir(parents=True, exist_ok=True)
     cube = Path(a.cube) if a.cube else folder / "cube_128x1000x1024.h5"
     if not cube.exists():
-        from bench_large import make_cube
-
         make_cube(cube, 128, 1000, 1024)
     trees = {"old": Path(a.old).resolve(), "new": ROOT}
     got = {"old": [], "new": []}
