@@ -358,7 +358,7 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
 
     with results_file(outdir / "results.h5", final, overwrite=overwrite, inputs=inputs,
                       optical=placed) as f, \
-            (h5py.File(scratch, "w") if plan.n_blocks > 1 and not same else contextlib.nullcontext(None)) \
+            (h5py.File(scratch, "w") if plan.n_blocks > 1 else contextlib.nullcontext(None)) \
             as scratch_file:
         try:
             # pass 1: clean block by block; one writer stores the cube; keep a sample
@@ -450,18 +450,25 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
             del fit_c, fit_k
             stage("fit")
             lap("fit")
-            # pass 2: apply the fitted estimators block by block
+            # pass 2: apply the fitted estimators block by block; the per-pixel results of
+            # several blocks wait in the scratch file, not in memory (peak memory stays
+            # flat as the map grows)
             images = np.full((s.n_components, *grid), np.nan)
             labels = np.full(grid, -1, np.int16)
-            band_parts = {name: [] for name, _, _ in s.bands}
-            unmix_parts, conc_parts = [], []
+
+            def parts(name):
+                return stream.BlockParts(corrected, None if scratch_file is None
+                                         else scratch_file.create_group(name))
+
+            band_parts = {name: parts(f"band {i}") for i, (name, _, _) in enumerate(s.bands)}
+            unmix_parts, conc_parts = parts("unmixing"), parts("concentration")
             for y0 in plan.starts:
                 bc = stream.block_map(corrected, store_c.get(y0, plan.rows), y0)
                 bk = bc if same else stream.block_map(keep, store_k.get(y0, plan.rows), y0)
                 rows = bc.shape[0]
                 for name, lo, hi in s.bands:
                     try:
-                        band_parts[name].append(band_image(bc, lo, hi, name=name))
+                        band_parts[name].add(y0, band_image(bc, lo, hi, name=name))
                     except MapkitError as exc:
                         raise MapkitError(exc.problem, file=map_path,
                                           field=f"--band {name}:{lo:g}-{hi:g}",
@@ -470,12 +477,13 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                 if s.class_method != "dominant":
                     labels[y0:y0 + rows] = km.predict(normalise_map(bc, method=s.normalisation))
                 if unmix is not None:
-                    unmix_parts.append(unmix.result(bk))
+                    unmix_parts.add(y0, unmix.result(bk))
                 if model is not None:
-                    conc_parts.append(model.apply(bc, refs))
+                    conc_parts.add(y0, model.apply(bc, refs))
                 stage("images")
+            del bc, bk
             lap("apply by blocks")
-            results = [stream.stitch(band_parts[name], corrected) for name, _, _ in s.bands]
+            results = [band_parts.pop(name).stitched() for name, _, _ in s.bands]
             comp_result = comp.result(corrected, images)
             _identify(comp_result.summary, comp.components_, corrected.raman_shift, refs, names,
                       s.min_score)
@@ -490,9 +498,7 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                 lab = np.full(n_pixels, -1, np.int16)
                 lab[good] = cls.labels_of(shares, good, grid)
                 labels = lab.reshape(grid)
-                sh = np.full((s.n_components, n_pixels), np.nan)
-                sh[:, good] = shares
-                cls.shares_ = sh.reshape(s.n_components, *grid)
+                del shares   # only the labels are written (no shares_ image kept)
             else:
                 cls = km
             stats = stream.ClassStats(n_cls, ns)
@@ -504,6 +510,7 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                 lab = labels[y0:y0 + bc.shape[0]].ravel()[g]
                 stats.add(np.asarray(bc.intensity, float).reshape(-1, ns)[g], lab)
                 stage("classes")
+            del bc
             stats.store(cls, labels, corrected)
             km_result = cls.result(corrected, name="classes")
             _identify(km_result.summary, comp.components_ if s.class_method == "dominant"
@@ -511,12 +518,14 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                       list(km_result.summary["areas"]), s.min_score)
             results.append(km_result)
             if unmix is not None:
-                results.append(stream.stitch(unmix_parts, corrected, sum_keys=("not_converged",)))
+                results.append(unmix_parts.stitched(sum_keys=("not_converged",)))
+            del unmix_parts
             if model is not None:
-                x0 = np.concatenate([p.fields["concentration"].data for p in conc_parts])
-                sx0 = np.concatenate([p.fields["concentration"].errors for p in conc_parts])
-                conc = concentration_map(x0, sx0, model.calibration, image_axes(corrected),
-                                         mask=mask)
+                x0 = conc_parts.stitched().fields["concentration"]
+                del conc_parts
+                conc = concentration_map(x0.data, x0.errors, model.calibration,
+                                         image_axes(corrected), mask=mask)
+                del x0
                 conc.summary["response"] = model.response.to_dict()
                 region_masks = class_regions(labels, list(km_result.summary["areas"]))
                 for name, verts in (regions or {}).items():

@@ -294,3 +294,92 @@ def test_depth_maps_chunkwise_give_the_in_memory_numbers(tmp_path, kind):
     a = _assert_same_numbers(tmp_path / "mem" / "results.h5", tmp_path / "chunk" / "results.h5")
     labels = next(n for n in a if n.endswith("classes/labels/labels"))
     assert a[labels].shape == m.shape[:-1]
+
+
+def _block_results(m, rows, seed=0):
+    """Results of the row blocks of map ``m`` as a block-wise method returns them: a stack
+    of images with errors, an image of flags, a spectrum field and a count in the summary."""
+    from mapkit.core.result import Axis, Field, Result
+    from mapkit.reduce._common import image_axes, shift_axis
+    from mapkit.stream import block_map
+
+    rng = np.random.default_rng(seed)
+    comp = Axis("component", np.array(["a", "b", "c"]))
+    for y0 in range(0, m.shape[0], rows):
+        b = block_map(m, np.asarray(m.intensity[y0:y0 + rows]), y0)
+        grid = b.shape[:-1]
+        yield y0, Result("part", "test", {"k": 3}, {
+            "abundance": Field("abundance", rng.random((3, *grid)), (comp, *image_axes(b)),
+                               "a.u.", errors=rng.random((3, *grid)), long_name="share"),
+            "flags": Field("flags", rng.integers(0, 4, grid).astype(np.uint8),
+                           image_axes(b), ""),
+            "references": Field("reference", np.ones((3, m.shape[-1])), (comp, shift_axis(b)),
+                                "a.u.")},
+            {"not_converged": int(rng.integers(0, 5)), "note": "first block's"})
+
+
+def test_block_parts_through_a_scratch_file_join_like_numpy(tmp_path):
+    """Per-block results written into a scratch HDF5 file and read back: every image field
+    equals numpy's concatenation of the blocks along y (the reference: np.concatenate),
+    dtypes kept, the other fields the first block's, counts summed; and the same Result
+    :func:`mapkit.stream.stitch` makes from the parts held in memory."""
+    from mapkit.core.ramanmap import RamanMap
+    from mapkit.stream import BlockParts, stitch
+
+    m = RamanMap(np.zeros((10, 6, 5)), raman_shift=np.arange(5.0), x=np.arange(6.0),
+                 y=np.arange(10.0) * 2)
+    blocks = list(_block_results(m, rows=4))    # blocks of 4, 4 and 2 rows
+    with h5py.File(tmp_path / "scratch.h5", "w") as f:
+        gathered = BlockParts(m, f.create_group("parts"))
+        for y0, part in blocks:
+            gathered.add(y0, part)
+        got = gathered.stitched(sum_keys=("not_converged",))
+    parts = [p for _, p in blocks]
+    ab = np.concatenate([p.fields["abundance"].data for p in parts], axis=1)
+    np.testing.assert_array_equal(got.fields["abundance"].data, ab)
+    np.testing.assert_array_equal(got.fields["abundance"].errors, np.concatenate(
+        [p.fields["abundance"].errors for p in parts], axis=1))
+    assert got.fields["flags"].data.dtype == np.uint8
+    np.testing.assert_array_equal(got.fields["flags"].data,
+                                  np.concatenate([p.fields["flags"].data for p in parts]))
+    np.testing.assert_array_equal(got.fields["abundance"].axes[1].values, m.y)
+    assert got.fields["references"] is parts[0].fields["references"]
+    assert got.summary == {"not_converged": sum(p.summary["not_converged"] for p in parts),
+                           "note": "first block's"}
+    joined = stitch(parts, m, sum_keys=("not_converged",))
+    assert got.summary == joined.summary and set(got.fields) == set(joined.fields)
+    for name, fld in joined.fields.items():
+        np.testing.assert_array_equal(got.fields[name].data, fld.data)
+        assert got.fields[name].axis_names == fld.axis_names
+        assert got.fields[name].long_name == fld.long_name
+
+
+def test_block_parts_hold_one_block_not_the_map(tmp_path):
+    """What the gathered parts keep in memory does not grow with the number of blocks
+    (traced by tracemalloc, which numpy reports its arrays to): through a scratch file
+    about one block however many arrive; held in memory, every block (the contrast that
+    shows the measurement can tell). Common practice (out-of-core accumulation)."""
+    import tracemalloc
+
+    from mapkit.core.ramanmap import RamanMap
+    from mapkit.stream import BlockParts
+
+    m = RamanMap(np.zeros((64, 400, 5)), raman_shift=np.arange(5.0), x=np.arange(400.0),
+                 y=np.arange(64.0))
+    first = next(_block_results(m, rows=4))[1]  # 16 blocks of 4 rows
+    block_bytes = sum(f.data.nbytes + (0 if f.errors is None else f.errors.nbytes)
+                      for f in first.fields.values())
+    del first
+    kept = {}
+    with h5py.File(tmp_path / "scratch.h5", "w") as f:
+        for how, group in (("scratch", f.create_group("parts")), ("memory", None)):
+            tracemalloc.start()
+            gathered = BlockParts(m, group)
+            base = tracemalloc.get_traced_memory()[0]
+            for y0, part in _block_results(m, rows=4):    # each block made here, then dropped
+                gathered.add(y0, part)
+            del part
+            kept[how] = (tracemalloc.get_traced_memory()[0] - base) / block_bytes
+            tracemalloc.stop()
+    assert kept["scratch"] < 2.5, kept
+    assert kept["memory"] > 12, kept
