@@ -353,6 +353,10 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
     record = stream.SpikeRecord(grid)
     rng = np.random.default_rng(s.seed)
     sample_c, sample_k = [], []
+    # the cleaned spectra's sample enters a fit only with NMF or clustered classes (the
+    # default background MCR, dominant classes and unmixing fit the spectra before the
+    # baseline step): otherwise it is not gathered, and the fits' peak memory is lower
+    need_c = same or s.component_method != "mcr" or s.class_method != "dominant"
     scratch = outdir / f".{Path(map_path).stem}.background.part.h5"
     import h5py
 
@@ -385,7 +389,8 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                         store_k.put(y0, k)
                     if stride > 1:
                         pick = np.flatnonzero(g)[int(rng.integers(stride))::stride]
-                        sample_c.append(flat[pick].copy())
+                        if need_c:
+                            sample_c.append(flat[pick].copy())
                         if not same:
                             sample_k.append(k.reshape(-1, ns)[pick].copy())
                     stage("cleaning")
@@ -406,16 +411,17 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
             else:
                 if stride == 1:        # every good spectrum, in order: the same fit
                     Sc = np.concatenate([store_c.get(y0, plan.rows).reshape(-1, ns)[
-                        ~mask[y0:y0 + plan.rows].ravel()] for y0 in plan.starts])
+                        ~mask[y0:y0 + plan.rows].ravel()] for y0 in plan.starts]) \
+                        if need_c else None
                     Sk = Sc if same else np.concatenate(
                         [store_k.get(y0, plan.rows).reshape(-1, ns)[
                             ~mask[y0:y0 + plan.rows].ravel()] for y0 in plan.starts])
                 else:
-                    Sc = np.concatenate(sample_c)
+                    Sc = np.concatenate(sample_c) if need_c else None
                     Sk = Sc if same else np.concatenate(sample_k)
                 sample_c.clear()
                 sample_k.clear()
-                fit_c = stream.sample_map(corrected, Sc)
+                fit_c = stream.sample_map(corrected, Sc) if need_c else None
                 fit_k = fit_c if same else stream.sample_map(keep, Sk)
                 del Sc, Sk
             if s.n_components == "auto":   # from the despiked spectra the fit sees
