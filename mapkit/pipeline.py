@@ -424,6 +424,7 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                 fit_c = stream.sample_map(corrected, Sc) if need_c else None
                 fit_k = fit_c if same else stream.sample_map(keep, Sk)
                 del Sc, Sk
+                stream.release_freed_memory()   # before the fits, the run's peak
             if s.n_components == "auto":   # from the despiked spectra the fit sees
                 s = replace(s, n_components=_components_of(keep, fit_k, notices))
             lap("clean, write cube, sample")

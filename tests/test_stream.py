@@ -444,3 +444,29 @@ def test_chunkwise_results_wait_on_disk_not_in_memory(sample_dir, recipe, tmp_pa
     per_pixel = (kept[4][0] - kept[2][0]) / (kept[4][1] - kept[2][1])
     assert per_pixel < 10 * 8, per_pixel      # bytes per pixel: under ten float64 planes
 
+
+def _rss_bytes():
+    with open("/proc/self/status") as fh:
+        for line in fh:
+            if line.startswith("VmRSS:"):
+                return int(line.split()[1]) * 1024
+    return 0
+
+
+@pytest.mark.skipif(not __import__("sys").platform.startswith("linux"), reason="glibc only")
+def test_freed_memory_goes_back_to_the_system():
+    """Blocks freed below the top of glibc's heap stay in the resident set until
+    ``malloc_trim`` hands their pages back (the GNU C Library manual, "Memory Allocation"
+    and malloc_trim(3), glibc 2.8 and later): 2000 arrays of 64 KiB (below the 128 KiB
+    mmap threshold, so on the heap) freed under one kept array."""
+    from mapkit.stream import release_freed_memory
+
+    release_freed_memory()
+    blocks = [np.ones(8192) for _ in range(2000)]      # 128 MiB on the heap
+    kept = blocks[-1]                                  # pins the top of the heap
+    del blocks
+    before = _rss_bytes()
+    assert release_freed_memory()
+    after = _rss_bytes()
+    assert before - after > 64 << 20, (before, after)
+    assert kept.sum() == 8192
