@@ -353,12 +353,16 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
     record = stream.SpikeRecord(grid)
     rng = np.random.default_rng(s.seed)
     sample_c, sample_k = [], []
+    # the cleaned spectra's sample enters a fit only with NMF or clustered classes (the
+    # default background MCR, dominant classes and unmixing fit the spectra before the
+    # baseline step): otherwise it is not gathered, and the fits' peak memory is lower
+    need_c = same or s.component_method != "mcr" or s.class_method != "dominant"
     scratch = outdir / f".{Path(map_path).stem}.background.part.h5"
     import h5py
 
     with results_file(outdir / "results.h5", final, overwrite=overwrite, inputs=inputs,
                       optical=placed) as f, \
-            (h5py.File(scratch, "w") if plan.n_blocks > 1 and not same else contextlib.nullcontext(None)) \
+            (h5py.File(scratch, "w") if plan.n_blocks > 1 else contextlib.nullcontext(None)) \
             as scratch_file:
         try:
             # pass 1: clean block by block; one writer stores the cube; keep a sample
@@ -385,7 +389,8 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                         store_k.put(y0, k)
                     if stride > 1:
                         pick = np.flatnonzero(g)[int(rng.integers(stride))::stride]
-                        sample_c.append(flat[pick].copy())
+                        if need_c:
+                            sample_c.append(flat[pick].copy())
                         if not same:
                             sample_k.append(k.reshape(-1, ns)[pick].copy())
                     stage("cleaning")
@@ -406,18 +411,20 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
             else:
                 if stride == 1:        # every good spectrum, in order: the same fit
                     Sc = np.concatenate([store_c.get(y0, plan.rows).reshape(-1, ns)[
-                        ~mask[y0:y0 + plan.rows].ravel()] for y0 in plan.starts])
+                        ~mask[y0:y0 + plan.rows].ravel()] for y0 in plan.starts]) \
+                        if need_c else None
                     Sk = Sc if same else np.concatenate(
                         [store_k.get(y0, plan.rows).reshape(-1, ns)[
                             ~mask[y0:y0 + plan.rows].ravel()] for y0 in plan.starts])
                 else:
-                    Sc = np.concatenate(sample_c)
+                    Sc = np.concatenate(sample_c) if need_c else None
                     Sk = Sc if same else np.concatenate(sample_k)
                 sample_c.clear()
                 sample_k.clear()
-                fit_c = stream.sample_map(corrected, Sc)
+                fit_c = stream.sample_map(corrected, Sc) if need_c else None
                 fit_k = fit_c if same else stream.sample_map(keep, Sk)
                 del Sc, Sk
+                stream.release_freed_memory()   # before the fits, the run's peak
             if s.n_components == "auto":   # from the despiked spectra the fit sees
                 s = replace(s, n_components=_components_of(keep, fit_k, notices))
             lap("clean, write cube, sample")
@@ -450,18 +457,25 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
             del fit_c, fit_k
             stage("fit")
             lap("fit")
-            # pass 2: apply the fitted estimators block by block
+            # pass 2: apply the fitted estimators block by block; the per-pixel results of
+            # several blocks wait in the scratch file, not in memory (peak memory stays
+            # flat as the map grows)
             images = np.full((s.n_components, *grid), np.nan)
             labels = np.full(grid, -1, np.int16)
-            band_parts = {name: [] for name, _, _ in s.bands}
-            unmix_parts, conc_parts = [], []
+
+            def parts(name):
+                return stream.BlockParts(corrected, None if scratch_file is None
+                                         else scratch_file.create_group(name))
+
+            band_parts = {name: parts(f"band {i}") for i, (name, _, _) in enumerate(s.bands)}
+            unmix_parts, conc_parts = parts("unmixing"), parts("concentration")
             for y0 in plan.starts:
                 bc = stream.block_map(corrected, store_c.get(y0, plan.rows), y0)
                 bk = bc if same else stream.block_map(keep, store_k.get(y0, plan.rows), y0)
                 rows = bc.shape[0]
                 for name, lo, hi in s.bands:
                     try:
-                        band_parts[name].append(band_image(bc, lo, hi, name=name))
+                        band_parts[name].add(y0, band_image(bc, lo, hi, name=name))
                     except MapkitError as exc:
                         raise MapkitError(exc.problem, file=map_path,
                                           field=f"--band {name}:{lo:g}-{hi:g}",
@@ -470,12 +484,13 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                 if s.class_method != "dominant":
                     labels[y0:y0 + rows] = km.predict(normalise_map(bc, method=s.normalisation))
                 if unmix is not None:
-                    unmix_parts.append(unmix.result(bk))
+                    unmix_parts.add(y0, unmix.result(bk))
                 if model is not None:
-                    conc_parts.append(model.apply(bc, refs))
+                    conc_parts.add(y0, model.apply(bc, refs))
                 stage("images")
+            del bc, bk
             lap("apply by blocks")
-            results = [stream.stitch(band_parts[name], corrected) for name, _, _ in s.bands]
+            results = [band_parts.pop(name).stitched() for name, _, _ in s.bands]
             comp_result = comp.result(corrected, images)
             _identify(comp_result.summary, comp.components_, corrected.raman_shift, refs, names,
                       s.min_score)
@@ -490,9 +505,7 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                 lab = np.full(n_pixels, -1, np.int16)
                 lab[good] = cls.labels_of(shares, good, grid)
                 labels = lab.reshape(grid)
-                sh = np.full((s.n_components, n_pixels), np.nan)
-                sh[:, good] = shares
-                cls.shares_ = sh.reshape(s.n_components, *grid)
+                del shares   # only the labels are written (no shares_ image kept)
             else:
                 cls = km
             stats = stream.ClassStats(n_cls, ns)
@@ -504,6 +517,7 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                 lab = labels[y0:y0 + bc.shape[0]].ravel()[g]
                 stats.add(np.asarray(bc.intensity, float).reshape(-1, ns)[g], lab)
                 stage("classes")
+            del bc
             stats.store(cls, labels, corrected)
             km_result = cls.result(corrected, name="classes")
             _identify(km_result.summary, comp.components_ if s.class_method == "dominant"
@@ -511,12 +525,14 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                       list(km_result.summary["areas"]), s.min_score)
             results.append(km_result)
             if unmix is not None:
-                results.append(stream.stitch(unmix_parts, corrected, sum_keys=("not_converged",)))
+                results.append(unmix_parts.stitched(sum_keys=("not_converged",)))
+            del unmix_parts
             if model is not None:
-                x0 = np.concatenate([p.fields["concentration"].data for p in conc_parts])
-                sx0 = np.concatenate([p.fields["concentration"].errors for p in conc_parts])
-                conc = concentration_map(x0, sx0, model.calibration, image_axes(corrected),
-                                         mask=mask)
+                x0 = conc_parts.stitched().fields["concentration"]
+                del conc_parts
+                conc = concentration_map(x0.data, x0.errors, model.calibration,
+                                         image_axes(corrected), mask=mask)
+                del x0
                 conc.summary["response"] = model.response.to_dict()
                 region_masks = class_regions(labels, list(km_result.summary["areas"]))
                 for name, verts in (regions or {}).items():

@@ -52,6 +52,23 @@ def band_rows(m, band_bytes: int = BAND_BYTES) -> int:
     return int(max(tile, (rows // tile) * tile)) if rows >= tile else int(rows)
 
 
+def release_freed_memory() -> bool:
+    """Hand memory the process has freed back to the system (glibc's ``malloc_trim``; a
+    no-op elsewhere). Freed blocks of the cleaning threads' allocations otherwise stay
+    counted in the resident set and raise the next stage's peak. True when trimmed."""
+    import ctypes
+    import ctypes.util
+    import sys
+
+    if not sys.platform.startswith("linux"):
+        return False
+    try:
+        libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6")
+        return bool(libc.malloc_trim(0))
+    except (OSError, AttributeError):   # not glibc (musl has no malloc_trim)
+        return False
+
+
 @contextlib.contextmanager
 def dask_scheduler(workers: int | None = None, address: str | None = None):
     """Run Dask work on a LocalCluster of ``workers`` processes, an existing scheduler at
@@ -204,6 +221,78 @@ def stitch(parts, m, *, sum_keys=()):
         if key in summary:
             summary[key] = sum(p.summary[key] for p in parts)
     return dataclasses.replace(first, fields=fields, summary=summary)
+
+
+class BlockParts:
+    """The results of consecutive row blocks of map ``m``, gathered into the one result
+    :func:`stitch` would join them into, without holding every block's images at once.
+
+    With an HDF5 ``group`` (a scratch file's) each image field (data and errors) goes into
+    a dataset of the whole map's size as its block arrives, and :meth:`stitched` reads it
+    back: memory holds one block, not the map. Without one (a single block) the parts stay
+    in memory and :meth:`stitched` is :func:`stitch`. The other fields are the first
+    block's; ``sum_keys`` of the summary are summed over the blocks.
+    """
+
+    def __init__(self, m, group=None):
+        self.m, self.group = m, group
+        self.parts, self.first, self.summaries = [], None, []
+
+    def _rows(self, ndim, y0, y1):
+        """Index of rows y0:y1 along the first spatial axis of an ``ndim``-D image field."""
+        at = ndim - len(self.m.spatial_dims)
+        return (slice(None),) * at + (slice(y0, y1),)
+
+    def add(self, y0, part):
+        """Add the result of the block whose first row is ``y0``."""
+        if self.group is None:
+            self.parts.append(part)
+            return
+        if self.first is None:
+            self.first = part
+            for name, fld in part.fields.items():
+                if not fld.is_image:
+                    continue
+                for key, arr in (("data", fld.data), ("errors", fld.errors)):
+                    if arr is None:
+                        continue
+                    shape = list(arr.shape)
+                    shape[arr.ndim - len(self.m.spatial_dims)] = self.m.shape[0]
+                    self.group.create_dataset(f"{name}/{key}", shape=tuple(shape),
+                                              dtype=arr.dtype)
+        for name, fld in part.fields.items():
+            if not fld.is_image:
+                continue
+            rows = fld.data.shape[fld.data.ndim - len(self.m.spatial_dims)]
+            for key, arr in (("data", fld.data), ("errors", fld.errors)):
+                if arr is not None:
+                    self.group[f"{name}/{key}"][self._rows(arr.ndim, y0, y0 + rows)] = arr
+        self.summaries.append({k: v for k, v in part.summary.items()   # the counts only
+                               if isinstance(v, (int, float, np.number))})
+
+    def stitched(self, *, sum_keys=()):
+        """The result for the whole map (the same fields and values as :func:`stitch`)."""
+        import dataclasses
+
+        if self.group is None:
+            return stitch(self.parts, self.m, sum_keys=sum_keys)
+        first, dims = self.first, self.m.spatial_dims
+        lead = Axis(dims[0], self.m.coords(dims[0]), "um")
+        at = -len(dims)
+        fields = {}
+        for name, fld in first.fields.items():
+            if not fld.is_image:
+                fields[name] = fld
+                continue
+            data = self.group[f"{name}/data"][()]
+            errors = None if fld.errors is None else self.group[f"{name}/errors"][()]
+            axes = fld.axes[:at] + (lead,) + fld.axes[at + 1:]
+            fields[name] = dataclasses.replace(fld, data=data, errors=errors, axes=axes)
+        summary = dict(first.summary)
+        for key in sum_keys:
+            if key in summary:
+                summary[key] = sum(s[key] for s in self.summaries)
+        return dataclasses.replace(first, fields=fields, summary=summary)
 
 
 class ClassStats:
