@@ -198,12 +198,27 @@ def stitch(parts, m, *, sum_keys=()):
     """One result from the results of consecutive row blocks of map ``m``: image fields
     are joined along the map's first spatial axis (y, or z of a depth map); the others (spectra, references) are the
     first block's; ``sum_keys`` of the summary are summed over the blocks."""
-    import dataclasses
-
     first = parts[0]
     if len(parts) == 1:       # one block: the whole map, whatever its spatial axes
         return first
-    dims = m.spatial_dims     # blocks run along the first: y of a map, z of a depth map
+    at = -len(m.spatial_dims)
+
+    def joined(name, fld):
+        return (np.concatenate([p.fields[name].data for p in parts], axis=at),
+                None if fld.errors is None else np.concatenate(
+                    [p.fields[name].errors for p in parts], axis=at))
+
+    return _whole_map(first, m, joined, [p.summary for p in parts], sum_keys)
+
+
+def _whole_map(first, m, arrays, summaries, sum_keys):
+    """The first block's result ``first`` with each image field replaced by the whole
+    map's ``arrays(name, field)`` -> (data, errors), along the map's first spatial axis
+    (blocks run along it: y of a map, z of a depth map), and ``sum_keys`` of the blocks'
+    ``summaries`` summed."""
+    import dataclasses
+
+    dims = m.spatial_dims
     lead = Axis(dims[0], m.coords(dims[0]), "um")
     at = -len(dims)
     fields = {}
@@ -211,15 +226,13 @@ def stitch(parts, m, *, sum_keys=()):
         if not fld.is_image:
             fields[name] = fld
             continue
-        data = np.concatenate([p.fields[name].data for p in parts], axis=at)
-        errors = None if fld.errors is None else np.concatenate(
-            [p.fields[name].errors for p in parts], axis=at)
+        data, errors = arrays(name, fld)
         axes = fld.axes[:at] + (lead,) + fld.axes[at + 1:]
         fields[name] = dataclasses.replace(fld, data=data, errors=errors, axes=axes)
     summary = dict(first.summary)
     for key in sum_keys:
         if key in summary:
-            summary[key] = sum(p.summary[key] for p in parts)
+            summary[key] = sum(s[key] for s in summaries)
     return dataclasses.replace(first, fields=fields, summary=summary)
 
 
@@ -272,27 +285,14 @@ class BlockParts:
 
     def stitched(self, *, sum_keys=()):
         """The result for the whole map (the same fields and values as :func:`stitch`)."""
-        import dataclasses
-
         if self.group is None:
             return stitch(self.parts, self.m, sum_keys=sum_keys)
-        first, dims = self.first, self.m.spatial_dims
-        lead = Axis(dims[0], self.m.coords(dims[0]), "um")
-        at = -len(dims)
-        fields = {}
-        for name, fld in first.fields.items():
-            if not fld.is_image:
-                fields[name] = fld
-                continue
-            data = self.group[f"{name}/data"][()]
-            errors = None if fld.errors is None else self.group[f"{name}/errors"][()]
-            axes = fld.axes[:at] + (lead,) + fld.axes[at + 1:]
-            fields[name] = dataclasses.replace(fld, data=data, errors=errors, axes=axes)
-        summary = dict(first.summary)
-        for key in sum_keys:
-            if key in summary:
-                summary[key] = sum(s[key] for s in self.summaries)
-        return dataclasses.replace(first, fields=fields, summary=summary)
+
+        def stored(name, fld):
+            return (self.group[f"{name}/data"][()],
+                    None if fld.errors is None else self.group[f"{name}/errors"][()])
+
+        return _whole_map(self.first, self.m, stored, self.summaries, sum_keys)
 
 
 class ClassStats:
