@@ -606,9 +606,10 @@ def _components_of(keep, fit_k, notices) -> int:
     from .reduce._common import good_spectra
 
     m = fit_k
-    X, _ = good_spectra(fit_k, what="the choice of the number of components")
-    if len(X) > GUIDANCE_SPECTRA:
-        m = stream.sample_map(keep, X[::-(-len(X) // GUIDANCE_SPECTRA)])
+    n_good = int((~np.asarray(fit_k.mask)).sum())
+    if n_good > GUIDANCE_SPECTRA:   # (the guidance copies its spectra itself otherwise)
+        X, _ = good_spectra(fit_k, what="the choice of the number of components")
+        m = stream.sample_map(keep, X[::-(-n_good // GUIDANCE_SPECTRA)])
     k, line = choose_n_components(m)
     notices.append(line)
     return k

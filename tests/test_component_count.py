@@ -61,6 +61,9 @@ def test_a_detector_gain_does_not_change_the_count():
         g = component_number_guidance(m)
         assert g["n_components"] == 3, gain
         assert g["noise_level"] == pytest.approx(gain ** -0.5, rel=0.15), gain
+        # fewer values reported: the noise is still read past the components
+        assert component_number_guidance(m, max_components=3)["noise_level"] == \
+            pytest.approx(g["noise_level"]), gain
 
 
 def test_data_that_are_not_counts_fall_back_with_a_notice():

@@ -937,9 +937,9 @@ def component_number_guidance(m: RamanMap, max_components: int = GUIDANCE_VALUES
     the background terms: the edge of the Marchenko-Pastur law, Marchenko & Pastur 1967,
     Math. USSR Sb. 1:457); each singular value above ``margin`` times that edge is a
     component the data can resolve. The edge is scaled by the noise level read from the
-    last value reported (``max_components`` values, past the components), so that counts
-    read through a detector gain, whose noise sits at 1/√gain of the Poisson edge, are
-    counted alike. Diagonal scaling keeps the rank of the signal, so the
+    ``GUIDANCE_VALUES``-th value (past the components, whatever ``max_components``), so
+    that counts read through a detector gain, whose noise sits at 1/√gain of the Poisson
+    edge, are counted alike. Diagonal scaling keeps the rank of the signal, so the
     count is that of the Raman components plus any background the polynomials miss
     (too low a ``baseline_order`` shows up as extra components).
 
@@ -961,7 +961,7 @@ def component_number_guidance(m: RamanMap, max_components: int = GUIDANCE_VALUES
     Returns
     -------
     dict with ``ratios`` (the leading singular values ÷ the noise edge, descending),
-    ``noise_level`` (the last of them; 1 when fewer were available) and ``n_components``
+    ``noise_level`` (the ``GUIDANCE_VALUES``-th; 1 when the map has fewer) and ``n_components``
     (how many exceed ``margin`` times ``noise_level``).
 
     Examples
@@ -999,9 +999,10 @@ def component_number_guidance(m: RamanMap, max_components: int = GUIDANCE_VALUES
     sv = np.linalg.svd(Y, compute_uv=False)
     edge = np.sqrt(Y.shape[0]) + np.sqrt(Y.shape[1] - n_terms)
     ratios = sv[:max_components] / edge
-    # the noise level: the last value reported, past the components (1 for pure Poisson
-    # counts; a detector gain of g electrons per unit moves it to 1/sqrt(g))
-    noise = float(ratios[-1]) if len(ratios) == max_components else 1.0
+    # the noise level: the GUIDANCE_VALUES-th value, past the components whatever number
+    # is reported (1 for pure Poisson counts; a detector gain of g electrons per unit
+    # moves it to 1/sqrt(g))
+    noise = float(sv[GUIDANCE_VALUES - 1] / edge) if len(sv) >= GUIDANCE_VALUES else 1.0
     return {"ratios": [float(r) for r in ratios],
             "n_components": int(np.sum(ratios > margin * noise)), "noise_level": noise,
             "baseline_order": order, "margin": float(margin)}
