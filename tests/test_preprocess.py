@@ -104,6 +104,29 @@ def test_compiled_and_numpy_solvers_agree():
                                als_baseline(y, lam=1e4, engine="numpy"), rtol=1e-9, atol=1e-9)
 
 
+def test_vectorised_exp_of_the_compiled_weights_matches_numpy():
+    # the arPLS/airPLS weights use a hand-written exp that vectorises (Cody & Waite 1980
+    # range reduction, Taylor polynomial): within 1 ulp of numpy's exp (reference library)
+    # over the range the weights use, and exact at 0
+    numba = pytest.importorskip("numba")
+    from mapkit.preprocess._banded import _exp_lanes
+
+    @numba.njit
+    def run(T):
+        E = np.empty_like(T)
+        _exp_lanes(T, E, np.empty(T.shape, np.int64))
+        return E
+
+    rng = np.random.default_rng(5)
+    T = np.concatenate([rng.uniform(-700, 708, 64_000), rng.uniform(-1, 1, 64_000),
+                        np.linspace(-40, 40, 64_000), [0.0] * 32]).reshape(-1, 32)
+    E, ref = run(T), np.exp(T)
+    assert np.max(np.abs(E - ref) / ref) <= np.finfo(float).eps
+    assert np.all(E[-1] == 1.0)
+    # outside the range the value is that of the range's end (callers decide there)
+    assert run(np.full((1, 32), 750.0))[0, 0] == run(np.full((1, 32), 708.0))[0, 0]
+
+
 def test_als_rejects_bad_parameters():
     with pytest.raises(MapkitError, match="p = 2"):
         als_baseline(np.ones(10), p=2)

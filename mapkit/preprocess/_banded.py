@@ -80,16 +80,17 @@ def _weighted_numpy(w, y, d0, d1, d2):
 #: weighting schemes of the compiled reweighting loop
 ALS, ARPLS, AIRPLS = 0, 1, 2
 EPS = np.finfo(np.float64).eps
-LOG_CAP = np.log(np.finfo(float).max) - np.spacing(np.log(np.finfo(float).max))
 
 
 #: spectra solved side by side by the compiled kernels. The LDLᵀ recurrence is sequential
 #: along the channels, so one spectrum at a time is bound by the latency of its divisions;
-#: interleaving 16 spectra ((n, 16) blocks) lets the CPU's vector units run them together.
+#: interleaving spectra ((n, LANES) blocks) lets the CPU's vector units run them together.
 #: Each lane does exactly the scalar arithmetic, so results are bit-identical to one spectrum
-#: at a time (tested); measured 3.3x faster than one at a time for ALS on 1024 channels
-#: (4 and 8 lanes: 1.4-1.6x, 32: 2.7x; benchmarks/bench_preprocess.py).
-LANES = 16
+#: at a time (tested). 16 lanes were 3.3x faster than one at a time for ALS on 1024
+#: channels; with the arPLS/airPLS weights vectorised (`_exp_lanes`), 32 lanes run an arPLS
+#: iteration 2.3x faster than 16 did with the scalar exp, ALS and airPLS within the
+#: run-to-run spread (1 thread, 1024 channels; benchmarks/RESULTS.md, "Vectorised weights")
+LANES = 32
 
 if HAVE_NUMBA:
     # inlined into the callers, whose freshly allocated blocks LLVM then knows not to
@@ -162,8 +163,46 @@ if HAVE_NUMBA:
                     out[s0 + j, i] = Z[i, j]
         return out
 
+    # exp(t) = 2^k · exp(r), k = round(t / ln 2), r = t - k ln 2 with ln 2 split in a high
+    # part exact in k·ln2_hi and a low part (Cody & Waite 1980, "Software Manual for the
+    # Elementary Functions"; the split constants are those of fdlibm's e_exp.c, from
+    # memory), exp(r) on |r| <= ln2 / 2 by its Taylor series to r^13 (truncation < 1e-17
+    # relative), 2^k added to the exponent bits. Written by hand because the compiled loops
+    # call libm's scalar exp once per channel and iteration (no vector math library with
+    # this numba build): 1 ulp from numpy's exp at most (tests/test_preprocess.py), and it
+    # vectorises.
     @numba.njit(cache=True, nogil=True, inline="always")
-    def _new_weights(kind, its, p, Y, Z, W, q, E, change, stop, y_l1):  # pragma: no cover
+    def _exp_lanes(T, E, K):  # pragma: no cover - compiled
+        # E = exp(T) where -700 <= T <= 708 (T clamped to that range; K: scratch)
+        n, lanes = T.shape
+        for i in range(n):
+            for j in range(lanes):
+                t = min(max(T[i, j], -700.0), 708.0)
+                kf = np.floor(t * 1.4426950408889634 + 0.5)
+                r = (t - kf * 6.93147180369123816490e-01) - kf * 1.90821492927058770002e-10
+                pz = 1.0 / 6227020800.0
+                pz = pz * r + 1.0 / 479001600.0
+                pz = pz * r + 1.0 / 39916800.0
+                pz = pz * r + 1.0 / 3628800.0
+                pz = pz * r + 1.0 / 362880.0
+                pz = pz * r + 1.0 / 40320.0
+                pz = pz * r + 1.0 / 5040.0
+                pz = pz * r + 1.0 / 720.0
+                pz = pz * r + 1.0 / 120.0
+                pz = pz * r + 1.0 / 24.0
+                pz = pz * r + 1.0 / 6.0
+                pz = pz * r + 0.5
+                pz = pz * r + 1.0
+                pz = pz * r + 1.0
+                E[i, j] = pz
+                K[i, j] = np.int64(kf) << 52   # 2^k: k added to the exponent field
+        bits = E.view(np.int64)
+        for i in range(n):
+            for j in range(lanes):
+                bits[i, j] += K[i, j]
+
+    @numba.njit(cache=True, nogil=True, inline="always")
+    def _new_weights(kind, its, p, Y, Z, W, q, E, T, K, change, stop, y_l1):  # pragma: no cover
         # the next weights into q, each lane's convergence measure and early stop, as
         # baseline.py's numpy versions compute them (tests compare the two engines); its:
         # each lane's iteration count (lanes hold spectra that started at different times)
@@ -207,23 +246,17 @@ if HAVE_NUMBA:
                 scale[j] = 2 / sd[j]
                 shift[j] = 2 * sd[j] - mean[j]
             # weight 1 / (1 + exp(-x)), x = -(2 / sd)((y - z) - (2 sd - mean)) (scipy.special.
-            # expit's formula). The exponentials alone in one loop (scalar calls), the rest
-            # in another the compiler vectorises; -x is formed exactly as x then negated
-            # (negation is exact). exp(-x) < 2⁻⁵³ where -x < -40, so 1 + exp(-x) rounds to
-            # 1 and the weight is 1.0 without the call; above 709.79 exp overflows to inf
-            # (weight 0.0): the same float64 weights as calling exp everywhere
+            # expit's formula), -x formed exactly as x then negated. exp(-x) < 2⁻⁵³ where
+            # -x < -40, so 1 + exp(-x) rounds to 1: weight 1.0; above 708 the weight is
+            # below 1e-307 and taken as 0.0 (numpy's exp gives 0.0 from 709.79 on)
             for i in range(n):
                 for j in range(lanes):
-                    t = scale[j] * ((Y[i, j] - Z[i, j]) - shift[j])
-                    if t < -40.0:
-                        E[i, j] = 0.0
-                    elif t > 709.79:
-                        E[i, j] = np.inf
-                    else:
-                        E[i, j] = np.exp(t)
+                    T[i, j] = scale[j] * ((Y[i, j] - Z[i, j]) - shift[j])
+            _exp_lanes(T, E, K)
             for i in range(n):
                 for j in range(lanes):
-                    new = 1.0 / (1.0 + E[i, j])
+                    t = T[i, j]
+                    new = 1.0 if t < -40.0 else (0.0 if t > 708.0 else 1.0 / (1.0 + E[i, j]))
                     num[j] += (new - W[i, j]) ** 2
                     den[j] += W[i, j] * W[i, j]
                     q[i, j] = new
@@ -240,8 +273,11 @@ if HAVE_NUMBA:
                 tot[j] = -1.0
         for i in range(n):
             for j in range(lanes):
-                r = Y[i, j] - Z[i, j]
-                q[i, j] = np.exp(min(max((tt[j] / tot[j]) * r, 0.0), LOG_CAP)) if r < 0 else 0.0
+                T[i, j] = (tt[j] / tot[j]) * (Y[i, j] - Z[i, j])
+        _exp_lanes(T, E, K)
+        for i in range(n):
+            for j in range(lanes):
+                q[i, j] = E[i, j] if Y[i, j] - Z[i, j] < 0 else 0.0
 
     @numba.njit(cache=True, nogil=True, inline="always")
     def _start_lane(y, k, j, Y, W, y_l1):  # pragma: no cover - compiled
@@ -273,6 +309,8 @@ if HAVE_NUMBA:
             W = np.empty((n, LANES))
             Y, Z, l1, l2, q, dm2, dm1, zm2, zm1 = _lane_scratch(n)
             E = np.empty((n, LANES))
+            T = np.empty((n, LANES))
+            K = np.empty((n, LANES), np.int64)
             change = np.empty(LANES)
             stop = np.zeros(LANES, np.bool_)
             y_l1 = np.zeros(LANES)
@@ -289,7 +327,7 @@ if HAVE_NUMBA:
                 for j in range(LANES):
                     its[j] += 1
                 _solve_lanes(W, Y, d0, d1, d2, l1, l2, q, Z, dm2, dm1, zm2, zm1)
-                _new_weights(kind, its, p, Y, Z, W, q, E, change, stop, y_l1)
+                _new_weights(kind, its, p, Y, Z, W, q, E, T, K, change, stop, y_l1)
                 for j in range(LANES):
                     k = held[j]
                     if k < 0:
