@@ -233,6 +233,38 @@ def test_bad_pixel_kinds():
     assert flags["dead"].tolist() == [False, True, False, False]
 
 
+def test_bad_pixel_kinds_chunkwise_as_whole_map():
+    # the chunk-wise mask reads each chunk once and takes the map's ceiling from the chunks'
+    # tops: the same flags as the whole map (common practice: clipping shows as a flat top
+    # at the detector's ceiling, so a flat top below the map's ceiling is not saturation)
+    import dask.array as da
+    from dataclasses import replace
+
+    from mapkit import RamanMap
+    from mapkit.preprocess.registry import run_step
+
+    rng = np.random.default_rng(2)
+    cube = rng.poisson(200.0, (6, 8, 50)).astype(np.float64)
+    cube[0, 1, 7] = np.nan                     # non-finite
+    cube[5, 6] = 17.0                          # dead (constant)
+    cube[1, 1, 10:14] = 65535.0                # clipped at the map's ceiling (first chunk)
+    cube[4, 7, 20:25] = 900.0                  # a flat top below the ceiling (last chunk)
+    m = RamanMap(cube, raman_shift=np.linspace(200, 1800, 50), x=np.arange(8.0),
+                 y=np.arange(6.0))
+    whole, extra = run_step(m, "mask_bad_pixels", {})
+    lazy = replace(m, intensity=da.from_array(cube, chunks=(3, 4, 50)))
+    chunked, extra_c = run_step(lazy, "mask_bad_pixels", {})
+    assert extra["report"] == extra_c["report"] == {"nonfinite": 1, "dead": 1, "saturated": 1}
+    expected = np.zeros((6, 8), bool)
+    expected[0, 1] = expected[5, 6] = expected[1, 1] = True
+    np.testing.assert_array_equal(whole.mask, expected)
+    np.testing.assert_array_equal(chunked.mask, expected)
+    # a given detector ceiling flags every spectrum reaching it, chunk-wise as whole
+    _, given = run_step(m, "mask_bad_pixels", {"saturation": 900.0})
+    _, given_c = run_step(lazy, "mask_bad_pixels", {"saturation": 900.0})
+    assert given["report"] == given_c["report"] and given["report"]["saturated"] == 2
+
+
 def test_normalise_methods():
     # definitions: vector = unit L2 norm, max = unit maximum (common practice); SNV = zero
     # mean, unit sd per spectrum (Barnes, Dhanoa & Lister 1989, Appl. Spectrosc. 43:772);

@@ -10,21 +10,39 @@ def bad_pixel_mask(block, *, saturation: float | None = None,
     """Flag non-finite, dead and saturated spectra in a block ``(n_pixels, n_shift)``.
 
     Returns boolean vectors ``nonfinite``, ``dead`` (constant spectrum: a dead
-    or blocked detector row) and ``saturated`` (channels at channels at the
-    detector's ceiling). Without ``saturation``, the ceiling is the block's
+    or blocked detector row) and ``saturated`` (channels at the detector's
+    ceiling). Without ``saturation``, the ceiling is the block's
     maximum when three or more channels sit exactly on it: a flat top is how clipping shows.
     """
+    return bad_pixels_from_tops(pixel_tops(block), saturation=saturation, ceiling=ceiling)
+
+
+def pixel_tops(block) -> dict[str, np.ndarray]:
+    """What :func:`bad_pixel_mask` needs of each spectrum, in one pass over a block:
+    ``nonfinite``, ``dead`` (constant), ``top`` (the largest value, non-finite values read
+    as 0) and ``at_top`` (how many channels equal it). A map's flags then follow from the
+    tops of its chunks and the map's ceiling, the largest ``top``, without a second pass."""
     b = np.asarray(block)
-    nonfinite = ~np.all(np.isfinite(b), axis=-1)
-    safe = np.where(np.isfinite(b), b, 0.0)
-    dead = np.ptp(safe, axis=-1) == 0
+    finite = np.isfinite(b)
+    nonfinite = ~np.all(finite, axis=-1)
+    safe = b if not nonfinite.any() else np.where(finite, b, 0.0)
+    top = safe.max(axis=-1) if b.shape[-1] else np.zeros(b.shape[:-1])
+    dead = (top == safe.min(axis=-1)) if b.shape[-1] else np.ones(b.shape[:-1], bool)
+    at_top = (safe == top[..., None]).sum(axis=-1)
+    return {"nonfinite": nonfinite, "dead": dead, "top": top, "at_top": at_top}
+
+
+def bad_pixels_from_tops(tops, *, saturation: float | None = None,
+                         ceiling: float | None = None) -> dict[str, np.ndarray]:
+    """:func:`bad_pixel_mask`'s flags from :func:`pixel_tops` (``ceiling``: the map's,
+    when the tops are those of one chunk)."""
+    nonfinite, dead, top = tops["nonfinite"], tops["dead"], tops["top"]
     if saturation is None:
         # the ceiling of the whole map when known (chunk-wise use), else of this block
-        top = ceiling if ceiling is not None else (float(safe.max()) if safe.size else 0.0)
-        at_top = (safe == top).sum(axis=-1)
-        saturated = (at_top >= 3) & (top > 0)
+        c = ceiling if ceiling is not None else (float(top.max()) if top.size else 0.0)
+        saturated = (top == c) & (tops["at_top"] >= 3) & (c > 0)
     else:
-        saturated = (safe >= saturation).any(axis=-1)
+        saturated = top >= saturation
     return {"nonfinite": nonfinite, "dead": dead & ~nonfinite, "saturated": saturated & ~dead}
 
 

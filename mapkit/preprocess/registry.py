@@ -179,22 +179,19 @@ def _mask_bad_pixels(m, saturation, max_fraction):
     """Mask non-finite, dead (constant) and saturated pixels; their values become 0."""
     ny, nx, ns = m.shape
     kinds = ("nonfinite", "dead", "saturated")
-    if m.is_lazy:  # two passes: the map's ceiling, then per-chunk flags (a small 2-D result)
-        import dask.array as da
-
+    if m.is_lazy:  # one pass: each chunk's tops (small 2-D results), then the map's ceiling
         data = m.intensity.rechunk({2: -1})
-        ceiling = None
-        if not saturation:
-            ceiling = float(da.where(da.isfinite(data), data, -np.inf).max().compute())
+        fields = ("nonfinite", "dead", "top", "at_top")
 
         def on_chunk(b):
-            f = _quality.bad_pixel_mask(np.asarray(b).reshape(-1, b.shape[2]),
-                                        saturation=saturation or None, ceiling=ceiling)
-            return np.stack([f[k] for k in kinds], axis=-1).reshape(b.shape[0], b.shape[1], 3)
+            t = _quality.pixel_tops(np.asarray(b))
+            return np.stack([t[k].astype(np.float64) for k in fields], axis=-1)
 
-        stacked = data.map_blocks(on_chunk, chunks=data.chunks[:2] + ((3,),),
-                                  dtype=bool).compute()
-        flags = {k: stacked[..., i].ravel() for i, k in enumerate(kinds)}
+        stacked = data.map_blocks(on_chunk, chunks=data.chunks[:2] + ((4,),),
+                                  dtype=np.float64).compute().reshape(-1, 4)
+        tops = {k: stacked[:, i] if k in ("top", "at_top") else stacked[:, i] > 0.5
+                for i, k in enumerate(fields)}
+        flags = _quality.bad_pixels_from_tops(tops, saturation=saturation or None)
     else:
         cube = np.asarray(m.intensity)
         flags = _quality.bad_pixel_mask(cube.reshape(-1, ns), saturation=saturation or None)
