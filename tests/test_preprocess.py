@@ -404,6 +404,13 @@ def test_compiled_noise_and_snr_equal_numpy_medians(n):
             cube = y.reshape(7, 10, n)
             np.testing.assert_array_equal(snr(cube, engine="numba"), snr_ref.reshape(7, 10))
             np.testing.assert_array_equal(noise_sd(y[1], engine="numba"), sd_ref[1])
+    # float32 spectra are read as they are: the numbers of their float64 copy, either engine
+    y32 = (rng.poisson(40.0, (70, n)) + rng.normal(size=(70, n))).astype(np.float32)
+    y32[2, 0] = np.nan
+    for engine in ("numba", "numpy"):
+        np.testing.assert_array_equal(snr(y32, engine=engine), snr(y32.astype(float)))
+        np.testing.assert_array_equal(noise_sd(y32, engine=engine),
+                                      noise_sd(y32.astype(float)))
 
 
 # --- shift-axis calibration: ASTM E1840 polystyrene positions (from memory; see
@@ -462,6 +469,32 @@ def test_spike_removal_engines_and_dtypes_agree(cleaned):
         np.testing.assert_allclose(got, want, rtol=1e-6)
     assert remove_spatial_spikes(raw.astype(np.int32), m.mask)[0].dtype == np.float32
     assert np.array_equal(np.asarray(m.intensity), raw)        # input untouched
+    # into a given array (the chunk-wise step writes a view of its output block)
+    for engine in ("numba", "numpy"):
+        both = np.full(raw.shape[:-1] + (2 * raw.shape[-1],), -1.0, np.float32)
+        got, flags = remove_spatial_spikes(raw.astype(np.float32), m.mask, engine=engine,
+                                           out=both[..., :raw.shape[-1]])
+        np.testing.assert_array_equal(flags, want_flags)
+        np.testing.assert_allclose(both[..., :raw.shape[-1]], want, rtol=1e-6)
+        assert np.all(both[..., raw.shape[-1]:] == -1.0)
+
+
+def test_reweighted_baselines_read_float32_as_their_float64_copy():
+    # the compiled ALS/arPLS/airPLS loops read float32 spectra without a float64 copy: the
+    # baselines must be bit-identical to those of the float64 copy (the conversion is exact)
+    from mapkit.preprocess.baseline import METHODS, READS_FLOAT32
+
+    rng = np.random.default_rng(8)
+    ch = np.arange(300)
+    y = (200 + 0.3 * ch + 80 * np.exp(-((ch - 150) / 6.0) ** 2)
+         + rng.normal(0, 3, (40, 300))).astype(np.float32)
+    for name in READS_FLOAT32:
+        info32, info64 = {}, {}
+        a = METHODS[name](y, lam=1e5, info=info32)
+        b = METHODS[name](y.astype(float), lam=1e5, info=info64)
+        assert a.dtype == np.float64
+        np.testing.assert_array_equal(a, b, err_msg=name)
+        np.testing.assert_array_equal(info32["converged"], info64["converged"])
 
 
 def test_sorting_network_sorts_every_input():

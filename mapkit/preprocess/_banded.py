@@ -356,8 +356,10 @@ def reweighted_solve(y, lam: float, kind: int, *, p: float = 0.01, max_iter: int
     if not HAVE_NUMBA:
         return None
     d0, d1, d2 = penalty_diagonals(y.shape[1], lam)
-    return _reweighted_numba(np.ascontiguousarray(y, dtype=np.float64), d0, d1, d2, int(kind),
-                             float(p), int(max_iter), float(tol))
+    y = np.ascontiguousarray(y)
+    if y.dtype != np.float32:     # float32 is read as it is: each value converted exactly
+        y = y.astype(np.float64, copy=False)
+    return _reweighted_numba(y, d0, d1, d2, int(kind), float(p), int(max_iter), float(tol))
 
 
 def weighted_whittaker(w, y, lam: float, *, engine: str = "auto"):

@@ -95,7 +95,9 @@ if HAVE_NUMBA:
     def spectrum_stats(b, with_signal):  # pragma: no cover - compiled
         # per row of b (m, n), n >= 2: the median absolute deviation of the first
         # differences; with_signal: also the maximum and the median of the row; finite:
-        # False where the row holds a non-finite value (its other outputs are undefined)
+        # False where the row holds a non-finite value (its other outputs are undefined).
+        # b may be float32: each row is copied into a float64 scratch row first (exact), so
+        # every operation is the float64 one numpy does on the converted block
         m, n = b.shape
         mad = np.empty(m)
         top = np.empty(m)
@@ -104,8 +106,10 @@ if HAVE_NUMBA:
         for t in numba.prange((m + ROWS - 1) // ROWS):
             d = np.empty(n - 1)
             buf = np.empty(n)
+            row = np.empty(n)
             for r in range(t * ROWS, min(m, (t + 1) * ROWS)):
-                row = b[r]
+                for i in range(n):
+                    row[i] = b[r, i]
                 lo = row[0]
                 hi = row[0]
                 bad = 0.0

@@ -19,8 +19,12 @@ from ._banded import AIRPLS, ALS, ARPLS, reweighted_solve, weighted_whittaker
 _EPS = np.finfo(float).eps
 
 
-def _prepare(block):
-    y = np.asarray(block, dtype=np.float64)
+def _prepare(block, keep_float32=False):
+    # float64, or a float32 block as it is where the compiled loop reads it (converting
+    # each value exactly as the float64 copy would)
+    y = np.asarray(block)
+    if not (keep_float32 and y.dtype == np.float32):
+        y = y.astype(np.float64, copy=False)
     single = y.ndim == 1
     y = np.atleast_2d(y)
     if y.shape[-1] < 3:
@@ -115,10 +119,11 @@ def als_baseline(block, shift=None, *, lam: float = 1e5, p: float = 0.01, max_it
     if not 0 < p < 1:
         raise MapkitError(f"p = {p} is outside (0, 1)", field="p", fix="use 0.001-0.1")
     _check_lam(lam)
-    y, single = _prepare(block)
+    y, single = _prepare(block, keep_float32=True)
     solved = _compiled(y, lam, ALS, engine, info, p=p, max_iter=max_iter, tol=tol)
     if solved is not None:
         return solved[0] if single else solved
+    y = y.astype(np.float64, copy=False)
 
     def weigh(ya, za, wa, it):
         new = np.where(ya > za, p, 1 - p)
@@ -145,10 +150,11 @@ def arpls_baseline(block, shift=None, *, lam: float = 1e5, max_iter: int = 50,
     True
     """
     _check_lam(lam)
-    y, single = _prepare(block)
+    y, single = _prepare(block, keep_float32=True)
     solved = _compiled(y, lam, ARPLS, engine, info, max_iter=max_iter, tol=tol)
     if solved is not None:
         return solved[0] if single else solved
+    y = y.astype(np.float64, copy=False)
 
     def weigh(ya, za, wa, it):
         r = ya - za
@@ -175,10 +181,11 @@ def airpls_baseline(block, shift=None, *, lam: float = 1e6, max_iter: int = 50,
     iteration t (capped at 50), and iteration stops when |Σr⁻| < tol·Σ|y|.
     """
     _check_lam(lam)
-    y, single = _prepare(block)
+    y, single = _prepare(block, keep_float32=True)
     solved = _compiled(y, lam, AIRPLS, engine, info, max_iter=max_iter, tol=tol)
     if solved is not None:
         return solved[0] if single else solved
+    y = y.astype(np.float64, copy=False)
     y_l1 = np.abs(y).sum(axis=1)
     log_max = np.log(np.finfo(float).max)
     z = np.empty_like(y)
@@ -251,6 +258,9 @@ def rolling_baseline(block, shift=None, *, half_window: int = 25, info: dict | N
     _report(info, np.ones(y.shape[0], bool))   # not iterative: always converged
     return base[0] if single else base
 
+
+#: the methods whose compiled loop takes float32 spectra without a float64 copy
+READS_FLOAT32 = ("als", "arpls", "airpls")
 
 METHODS = {"als": als_baseline, "arpls": arpls_baseline, "airpls": airpls_baseline,
            "modpoly": modpoly_baseline, "rolling": rolling_baseline}

@@ -16,8 +16,13 @@ from ..core.ramanmap import RamanMap
 BLOCK_PIXELS = 4096
 
 
-def map_spectra(m: RamanMap, func, n_out: int | None = None, *, block_pixels: int = BLOCK_PIXELS):
-    """Apply ``func`` to every spectrum of ``m``; returns a numpy or Dask cube (float32)."""
+def map_spectra(m: RamanMap, func, n_out: int | None = None, *, block_pixels: int = BLOCK_PIXELS,
+                float32_in: bool = False):
+    """Apply ``func`` to every spectrum of ``m``; returns a numpy or Dask cube (float32).
+
+    ``float32_in``: ``func`` takes float32 blocks as they are (it computes in float64 from
+    them, so its results are those of the float64 copy); the copy is then not made.
+    """
     ny, nx, ns = m.shape
     n_out = ns if n_out is None else n_out
     if m.is_lazy:
@@ -25,13 +30,20 @@ def map_spectra(m: RamanMap, func, n_out: int | None = None, *, block_pixels: in
 
         data = m.intensity.rechunk({2: -1})
 
-        def on_chunk(b):
-            flat = np.asarray(b, dtype=np.float64).reshape(-1, b.shape[2])
-            return func(flat).reshape(b.shape[0], b.shape[1], n_out).astype(np.float32)
+        def on_chunk(b, bad):
+            b = np.asarray(b)
+            keep = float32_in and b.dtype == np.float32
+            flat = (b if keep else b.astype(np.float64)).reshape(-1, b.shape[2])
+            out = func(flat).reshape(b.shape[0], b.shape[1], n_out).astype(np.float32,
+                                                                         copy=False)
+            if np.shares_memory(out, b):      # never write into the input's chunk
+                out = out.copy()
+            out[bad[..., 0]] = 0.0            # masked pixels at zero, in place
+            return out
 
-        out = data.map_blocks(on_chunk, chunks=data.chunks[:2] + ((n_out,),), dtype=np.float32)
-        mask = da.from_array(m.mask[..., None], chunks=out.chunks[:2] + ((1,),))
-        return da.where(mask, np.float32(0), out)
+        bad = da.from_array(m.mask[..., None], chunks=data.chunks[:2] + ((1,),))
+        return data.map_blocks(on_chunk, bad, chunks=data.chunks[:2] + ((n_out,),),
+                               dtype=np.float32)
     flat = np.asarray(m.intensity).reshape(-1, ns)
     out = np.zeros((ny * nx, n_out), np.float32)
     good = np.flatnonzero(~m.mask.ravel())

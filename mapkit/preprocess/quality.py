@@ -55,7 +55,9 @@ def _stats(block, with_signal: bool, engine: str):
         raise ValueError(f"engine must be 'auto', 'numba' or 'numpy', not {engine!r}")
     if engine == "numba" and not HAVE_NUMBA:
         raise RuntimeError("numba is not installed")
-    b = np.asarray(block, dtype=np.float64)
+    b = np.asarray(block)
+    if b.dtype != np.float32:     # the kernel reads float32 as it is (converting exactly)
+        b = b.astype(np.float64, copy=False)
     if engine == "numpy" or not HAVE_NUMBA or b.ndim == 0 or b.shape[-1] < 2 or b.size == 0:
         return None
     from ._quality_kernel import spectrum_stats
@@ -64,9 +66,10 @@ def _stats(block, with_signal: bool, engine: str):
     mad, top, med, finite = spectrum_stats(flat, with_signal)
     if not finite.all():          # NaN and inf propagate as numpy propagates them
         bad = ~finite
-        mad[bad] = _mad_numpy(flat[bad])
-        top[bad] = flat[bad].max(axis=-1)
-        med[bad] = np.median(flat[bad], axis=-1)
+        rows = flat[bad].astype(np.float64)
+        mad[bad] = _mad_numpy(rows)
+        top[bad] = rows.max(axis=-1)
+        med[bad] = np.median(rows, axis=-1)
     lead = b.shape[:-1]
     return mad.reshape(lead), top.reshape(lead), med.reshape(lead)
 
@@ -94,9 +97,9 @@ def snr(block, *, engine: str = "auto"):
 
     ``engine`` as in :func:`noise_sd`.
     """
-    b = np.asarray(block, dtype=np.float64)
-    stats = _stats(b, True, engine)
+    stats = _stats(block, True, engine)
     if stats is None:
+        b = np.asarray(block, dtype=np.float64)
         signal = b.max(axis=-1) - np.median(b, axis=-1)
         sd = noise_sd(b, engine="numpy")
     else:

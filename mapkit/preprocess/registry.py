@@ -244,9 +244,11 @@ def _despike(m, method, threshold, grow=3.0, width=2):
         cube = m.intensity.rechunk({last: -1})
 
         def on_chunk(c, mk):   # the cleaned cube and, as more channels, the spike flags
-            out, fl = _spikes.remove_spatial_spikes(c, mk[..., 0], threshold=threshold,
-                                                    grow=grow)
-            return np.concatenate([out.astype(np.float32), fl.astype(np.float32)], axis=-1)
+            both = np.empty(c.shape[:-1] + (2 * ns,), np.float32)   # written once, no copies
+            _, fl = _spikes.remove_spatial_spikes(c, mk[..., 0], threshold=threshold,
+                                                  grow=grow, out=both[..., :ns])
+            both[..., ns:] = fl
+            return both
 
         # each chunk sees a one-pixel halo of its neighbours, so results match the whole map;
         # cube and flags come from one run of the kernel per chunk
@@ -298,12 +300,15 @@ def _baseline_step(m, method, **params):
 
         def sub(block):   # one more channel carries the converged flag: one run gives both
             info = {}
-            out = np.empty((block.shape[0], ns + 1))
-            out[:, :ns] = block - func(block, shift, info=info, **params)
+            out = np.empty((block.shape[0], ns + 1), np.float32)
+            # computed in float64 (a float32 block is promoted), written as float32
+            np.subtract(block, func(block, shift, info=info, **params), out=out[:, :ns],
+                        casting="unsafe")
             out[:, ns] = info["converged"]
             return out
 
-        both = map_spectra(m, sub, ns + 1)
+        # the reweighted methods read float32 spectra as they are (solving in float64)
+        both = map_spectra(m, sub, ns + 1, float32_in=method in _baseline.READS_FLOAT32)
         mask = da.from_array(m.mask, chunks=both.chunks[:2])
         return (m.derive(both[..., :ns], Step("baseline", {"method": method, **params})),
                 {"converged": (both[..., ns] > 0.5) | mask})
@@ -311,7 +316,9 @@ def _baseline_step(m, method, **params):
     ny, nx, ns = m.shape
     converged = np.ones(ny * nx, bool)
     good = np.flatnonzero(~m.mask.ravel())
-    flat = np.asarray(m.intensity, np.float64).reshape(-1, ns)
+    flat = np.asarray(m.intensity).reshape(-1, ns)
+    if not (method in _baseline.READS_FLOAT32 and flat.dtype == np.float32):
+        flat = flat.astype(np.float64, copy=False)
     out = np.zeros((ny * nx, ns), np.float32)
     for start in range(0, good.size, 4096):
         idx = good[start:start + 4096]

@@ -130,12 +130,13 @@ def spatial_spike_mask(cube, mask=None, *, threshold: float = 8.0, grow: float =
 
 
 def remove_spatial_spikes(cube, mask=None, *, threshold: float = 8.0, grow: float = 3.0,
-                          engine: str = "auto"):
+                          engine: str = "auto", out=None):
     """Replace the spikes :func:`spatial_spike_mask` finds by the scaled neighbour median.
 
     Returns ``(cleaned, spikes)``: a float32 cube and the boolean spike mask. The compiled
     engine reads float32 or float64 input as it is (every comparison is made in float64
-    either way) and writes the replacements straight into the float32 copy.
+    either way) and writes the replacements straight into the float32 copy. ``out``: a
+    float32 array of the cube's shape (a view is fine) to hold the cleaned cube.
 
     Examples
     --------
@@ -158,7 +159,11 @@ def remove_spatial_spikes(cube, mask=None, *, threshold: float = 8.0, grow: floa
             src = src.astype(np.float64)
         src = np.ascontiguousarray(src)
         idx = sampled_channels(n)
-        cleaned = src.astype(np.float32)
+        if out is None:
+            cleaned = src.astype(np.float32)
+        else:
+            cleaned = out
+            cleaned[...] = src
         spikes = np.zeros(src.shape, bool)
         values, level = sampled_levels(src, idx)
         spatial_spikes_into(src, mask, values, level, float(threshold), float(grow), idx,
@@ -166,7 +171,11 @@ def remove_spatial_spikes(cube, mask=None, *, threshold: float = 8.0, grow: floa
         return cleaned, spikes
     spikes, replacement = spatial_spike_mask(cube, mask, threshold=threshold, grow=grow,
                                              engine="numpy")
-    return np.where(spikes, replacement, cube).astype(np.float32), spikes
+    cleaned = np.where(spikes, replacement, cube).astype(np.float32)
+    if out is not None:
+        out[...] = cleaned
+        cleaned = out
+    return cleaned, spikes
 
 
 def _spatial(cube, mask, nb, level, nb_level, threshold, grow):
