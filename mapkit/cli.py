@@ -17,7 +17,9 @@ from pathlib import Path
 from .cli_common import (_add_read_options, _band, _check_outputs, _count_or_auto, _formats,
                          _map_files, _open_kwargs, _positive_int, _print_notes, _range_arg,
                          add_response_options)
-from .errors import MapkitError
+from .errors import MapkitError, environment_error
+from .export.atomic import STAGING_PREFIX
+
 
 def _add_analysis_options(p, default_out="mapkit-output"):
     p.add_argument("--out", default=default_out,
@@ -577,14 +579,24 @@ def main(argv=None) -> int:
     except KeyboardInterrupt:
         print("mapkit: interrupted", file=sys.stderr)
         return 130
+    except OSError as exc:    # a full disk or a refused write: the user can act on it
+        told = environment_error(exc, staging=STAGING_PREFIX)
+        if told is None:
+            return _internal(exc)
+        print(f"mapkit: error: {told}", file=sys.stderr)
+        return 2
     except Exception as exc:  # a bug, not a user mistake
-        if os.environ.get("MAPKIT_DEBUG"):
-            raise
-        first = str(exc).splitlines()[0] if str(exc) else ""
-        print(f"mapkit: internal error: {type(exc).__name__}: {first} "
-              "(rerun with MAPKIT_DEBUG=1 for the traceback and report it)", file=sys.stderr)
-        return 1
+        return _internal(exc)
     return 0
+
+
+def _internal(exc) -> int:
+    if os.environ.get("MAPKIT_DEBUG"):
+        raise exc
+    first = str(exc).splitlines()[0] if str(exc) else ""
+    print(f"mapkit: internal error: {type(exc).__name__}: {first} "
+          "(rerun with MAPKIT_DEBUG=1 for the traceback and report it)", file=sys.stderr)
+    return 1
 
 
 def _silence_stdout():

@@ -60,3 +60,45 @@ class DataError(MapkitError, ValueError):
     >>> isinstance(DataError("too few spectra", field="X"), (MapkitError, ValueError))
     True
     """
+
+
+#: what a full disk, a quota, a read-only disk or missing permission means for the user
+_ENVIRONMENT = {"ENOSPC": ("no space left on the device", "free space there or write the "
+                           "results to another disk (--out)"),
+                "EDQUOT": ("the disk quota is exhausted", "free space there or write the "
+                           "results to another disk (--out)"),
+                "EROFS": ("the disk is read-only", "write the results elsewhere (--out)"),
+                "EACCES": ("permission denied", "write the results where you may (--out), "
+                           "or check the file's permissions")}
+
+
+def environment_error(exc: OSError, *, staging: str | None = None) -> MapkitError | None:
+    """The :class:`MapkitError` for an operating-system refusal the user can act on (full
+    disk, quota, read-only disk, permission), naming the file; None for anything else.
+    ``staging``: the name prefix of the folder outputs are finished in; a path inside one
+    is reported as the output folder it belongs to.
+
+    Examples
+    --------
+    >>> import errno
+    >>> str(environment_error(OSError(errno.ENOSPC, "No space left", "out/results.h5")))
+    'out/results.h5: no space left on the device; free space there or write the results to another disk (--out)'
+    """
+    import errno
+    import re
+
+    code = getattr(exc, "errno", None)
+    if code is None:          # HDF5 reports the error number in its message only
+        found = re.search(r"errno = (\d+)", str(exc))
+        code = int(found.group(1)) if found else None
+    name = errno.errorcode.get(code) if code is not None else None
+    if name not in _ENVIRONMENT:
+        return None
+    path = getattr(exc, "filename", None)
+    if path is None:
+        found = re.search(r"filename = '([^']+)'", str(exc))
+        path = found.group(1) if found else None
+    if path is not None and staging:   # an output being finished: name its folder
+        path = re.sub("/" + re.escape(staging) + r"[^/]*/.*$", "", str(path))
+    problem, fix = _ENVIRONMENT[name]
+    return MapkitError(problem, file=path, fix=fix)

@@ -280,7 +280,7 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
 
     from . import stream
     from .export.bundle import safe_name, write_bundle
-    from .export.nexus import _write_cube_from, _write_result, results_file
+    from .export.nexus import _write_cube_from, _write_result, hash_in_background, results_file
     from .preprocess import normalise_map
     from .preprocess.quality import snr
     from .quantify import class_regions, polygon_mask, region_statistics
@@ -348,6 +348,8 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                                 **({"optical": optical} if optical is not None else {})})
     final = corrected.derive(corrected.intensity, run_step)
     inputs = _inputs(map_path, standards, optical, placed)
+    if plan.n_blocks > 1:    # a long run: its inputs are hashed while it cleans, once
+        hash_in_background(list(inputs.values()))
     snr_img = np.full(grid, np.nan)
     conv_img = np.ones(grid, bool)
     record = stream.SpikeRecord(grid)

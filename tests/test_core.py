@@ -68,3 +68,38 @@ def test_versions_are_recorded():
 def test_step_parameters_become_plain_json():
     s = Step("x", {"a": np.float32(1.5), "b": np.arange(3), "c": (1, 2)})
     assert s.parameters == {"a": 1.5, "b": [0, 1, 2], "c": [1, 2]}
+
+
+def test_input_digest_is_sha256_read_once_and_renewed_when_the_file_changes(tmp_path,
+                                                                           monkeypatch):
+    # SHA-256 as FIPS 180-4 defines it (reference: Python's hashlib over the bytes); a map of
+    # several GB is read once per run for it (the results file and the report both name it,
+    # a background reading may run ahead), and a changed file gets its new digest
+    import hashlib
+    import os
+
+    import mapkit.export.nexus as nexus
+
+    path = tmp_path / "map.bin"
+    path.write_bytes(b"abc" * 100_000)
+    opened = []
+    real_open = open
+
+    def counting_open(p, *a, **k):
+        opened.append(str(p))
+        return real_open(p, *a, **k)
+
+    monkeypatch.setattr(nexus, "open", counting_open, raising=False)
+    nexus.hash_in_background([path]).join()
+    first = nexus.file_sha256(path)
+    assert first == hashlib.sha256(path.read_bytes()).hexdigest()
+    assert nexus.file_sha256(str(path)) == first and len(opened) == 1
+    path.write_bytes(b"abd" * 100_000)
+    st = path.stat()
+    os.utime(path, ns=(st.st_atime_ns, st.st_mtime_ns + 10**9))   # a later modification
+    assert nexus.file_sha256(path) == hashlib.sha256(path.read_bytes()).hexdigest() != first
+    assert len(opened) == 2
+    missing = tmp_path / "gone.bin"
+    nexus.hash_in_background([missing]).join()        # the background reading stays quiet
+    with pytest.raises(FileNotFoundError):
+        nexus.file_sha256(missing)

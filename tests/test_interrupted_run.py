@@ -83,6 +83,32 @@ def test_failed_overwrite_leaves_the_previous_bundle(previous, sample_map_path, 
         assert f["/entry/map/intensity"].shape[0] > 0
 
 
+@pytest.mark.parametrize("style", ["posix", "hdf5"])
+def test_full_disk_is_told_in_one_line_and_leaves_the_previous_bundle(
+        previous, sample_map_path, tmp_path, monkeypatch, capsys, style):
+    """A full disk is not a bug: one line naming the output folder (not the staging file)
+    and what to do, status 2, the previous outputs kept. HDF5 reports the error number and
+    the file in its message only (``errno = 28``, ``filename = '...'``)."""
+    import errno
+
+    import mapkit.export.bundle as bundle
+
+    old, before = previous
+    out = tmp_path / "out"
+    shutil.copytree(old, out)
+    part = out / f"{STAGING_PREFIX}x1" / "cube_classes_labels.tif.part"
+    exc = (OSError(errno.ENOSPC, "No space left on device", str(part)) if style == "posix"
+           else OSError(f"Can't close file (file write failed: filename = '{part}', "
+                        "errno = 28, error message = 'No space left on device')"))
+    monkeypatch.setattr(bundle, "write_tiff", _FailOnThirdTiff(bundle.write_tiff, out, exc))
+    assert main(_analyse_args(sample_map_path, out)) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1, err
+    assert err[0].startswith(f"mapkit: error: {out}: no space left on the device; "), err[0]
+    assert STAGING_PREFIX not in err[0] and "--out" in err[0]
+    assert _digests(out) == before
+
+
 def test_killed_run_leaves_the_previous_bundle(previous, sample_map_path, tmp_path):
     """SIGKILL (an out-of-memory kill) after the new results file is finished: no cleanup
     runs, and the previous outputs are still the ones in place."""

@@ -136,7 +136,7 @@ def test_library_with_duplicate_names(tmp_path):
             (tmp_path / name).write_text("100,1\n200,2\n")
         else:
             write_jcamp(tmp_path / name, "a", np.array([100.0, 200.0]), np.array([1.0, 2.0]))
-    with pytest.raises(MapkitError, match="more than once"):
+    with pytest.raises(MapkitError, match=r"more than once \(in a.txt and b.jdx\)"):
         read_library(tmp_path)
 
 

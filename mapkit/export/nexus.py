@@ -2,9 +2,12 @@
 
 from __future__ import annotations
 
+import concurrent.futures
 import contextlib
 import hashlib
 import json
+import os
+import threading
 from pathlib import Path
 
 import numpy as np
@@ -40,13 +43,63 @@ def _write_provenance(f, steps, extra: dict | None = None):
         g.attrs[k] = json.dumps(v, sort_keys=True) if not isinstance(v, str) else v
 
 
+#: digests already computed (or being computed) in this process, by file identity and
+#: state: a map of several GB is read once for its digest, not once per output naming it
+_DIGESTS: dict = {}
+_DIGESTS_LOCK = threading.Lock()
+_DIGESTS_KEPT = 64
+
+
+def _identity(path):
+    st = os.stat(path)
+    return (str(Path(path).resolve()), st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns)
+
+
 def file_sha256(path) -> str:
-    """SHA-256 of a file, read in blocks (recorded so a result names its exact input)."""
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 20), b""):
-            h.update(block)
-    return h.hexdigest()
+    """SHA-256 of a file, read in blocks (recorded so a result names its exact input).
+
+    Remembered for the file as it is (path, inode, size, modification time): asked again in
+    the same process, and the file unchanged, the digest is not read again; asked while
+    :func:`hash_in_background` is reading it, the call waits for that reading.
+    """
+    key = _identity(path)
+    with _DIGESTS_LOCK:
+        pending = _DIGESTS.get(key)
+        mine = pending is None
+        if mine:
+            while len(_DIGESTS) >= _DIGESTS_KEPT:
+                _DIGESTS.pop(next(iter(_DIGESTS)))
+            pending = _DIGESTS[key] = concurrent.futures.Future()
+    if not mine:
+        return pending.result()
+    try:
+        h = hashlib.sha256()
+        with open(path, "rb") as fh:
+            for block in iter(lambda: fh.read(1 << 20), b""):
+                h.update(block)    # (hashlib releases the GIL on large blocks)
+        pending.set_result(h.hexdigest())
+    except BaseException as exc:
+        with _DIGESTS_LOCK:
+            _DIGESTS.pop(key, None)
+        pending.set_exception(exc)
+        raise
+    return pending.result()
+
+
+def hash_in_background(paths) -> threading.Thread:
+    """Start reading the digests of ``paths`` in a daemon thread (errors are left for the
+    caller's own :func:`file_sha256` to meet), so a long run's input is hashed while it
+    works instead of after."""
+    def run():
+        for p in paths:
+            try:
+                file_sha256(p)
+            except Exception:      # (e.g. the file vanished): the caller will say so
+                pass
+
+    t = threading.Thread(target=run, name="mapkit-digests", daemon=True)
+    t.start()
+    return t
 
 
 def _write_cube_from(f, m: RamanMap, bands, compression=None):
@@ -228,8 +281,6 @@ def results_file(path, m: RamanMap, *, overwrite=False, inputs: dict | None = No
     leaves any previous file at ``path`` intact."""
     import h5py
 
-    recorded = {role: {"path": Path(p).name, "sha256": file_sha256(p)}
-                for role, p in (inputs or {}).items()}
     with atomic_path(path, overwrite=overwrite) as tmp:
         with h5py.File(tmp, "w") as f:
             f.attrs["default"] = "entry"
@@ -240,6 +291,9 @@ def results_file(path, m: RamanMap, *, overwrite=False, inputs: dict | None = No
             yield f
             if optical is not None:
                 write_optical(f, optical)
+            # the inputs' digests at the end: a long run has read them in the background
+            recorded = {role: {"path": Path(p).name, "sha256": file_sha256(p)}
+                        for role, p in (inputs or {}).items()}
             _write_provenance(f, m.provenance, {"inputs": recorded} if recorded else None)
 
 

@@ -182,10 +182,13 @@ def read_library(path) -> list[Spectrum]:
                               file=path, fix="put one spectrum per file in it")
         library = [read_reference(p) for p in files]
     else:
+        files = [path]
         library = [read_reference(path)]
     names = [s.name for s in library]
     dup = sorted({n for n in names if names.count(n) > 1})
     if dup:
-        raise MapkitError(f"the library holds the name {dup[0]!r} more than once", file=path,
-                          field="TITLE", fix="give every reference a unique name")
+        holders = [f.name for f, n in zip(files, names) if n == dup[0]]
+        raise MapkitError(f"the library holds the name {dup[0]!r} more than once (in "
+                          f"{' and '.join(holders)})", file=path, field="TITLE",
+                          fix="give every reference a unique name")
     return library
