@@ -267,6 +267,33 @@ def test_fcls_sums_to_one_and_matches_constrained_optimum():
     np.testing.assert_allclose(A[:, 0], ref.x, atol=1e-3)
 
 
+def test_unmixing_with_baseline_terms_matches_scipy_and_skips_the_residual_on_request():
+    # reference: scipy.optimize.nnls on the design [R' Q] with the polynomial terms' signs
+    # left free (they are split into + and - columns, both non-negative: the usual
+    # reduction of a free variable to two non-negative ones, common practice); without the
+    # residual the same abundances come from R_p'X (R_p orthogonal to the polynomials)
+    from scipy.optimize import nnls
+
+    from mapkit.reduce import unmix_spectra
+    from mapkit.reduce.unmix import polynomial_basis
+
+    rng = np.random.default_rng(6)
+    shift = np.linspace(300, 1700, 120)
+    R = np.stack([np.exp(-0.5 * ((shift - c) / 12) ** 2) for c in (600, 1000, 1400)]) * 100
+    X = (rng.uniform(0, 3, (25, 3)) @ R + 200 + 0.1 * (shift - 300)
+         + rng.normal(0, 2, (25, 120)))
+    A, rms = unmix_spectra(R, X, shift, 2)
+    A2, none = unmix_spectra(R, X, shift, 2, residual=False)
+    assert none is None
+    np.testing.assert_allclose(A2, A, rtol=1e-9, atol=1e-9 * np.abs(A).max())
+    Q = polynomial_basis(shift, 2)
+    D = np.concatenate([R.T, Q, -Q], axis=1)
+    for j in (0, 7, 24):
+        ref, norm = nnls(D, X[j])
+        np.testing.assert_allclose(A[:, j], ref[:3], rtol=1e-6, atol=1e-6)
+        assert rms[j] == pytest.approx(norm / np.sqrt(120), rel=1e-6)
+
+
 def test_library_matching_names_components(cleaned, sample_dir):
     # the hit-quality index (squared cosine, common practice in spectral library search)
     # names each NMF component after the library entry it was generated from (invented

@@ -65,7 +65,7 @@ class Response:
 
         refs = self._references(library)
         R = np.stack([r.on_axis(shift) for r in refs])
-        A, _ = unmix_spectra(R, X, shift, self.baseline_order)
+        A, _ = unmix_spectra(R, X, shift, self.baseline_order, residual=False)
         return response_fraction(A, [r.name for r in refs], self.analyte)
 
     def _references(self, library):

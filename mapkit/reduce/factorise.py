@@ -291,7 +291,8 @@ class NMFComponents(TransformerMixin, BaseEstimator):
         check_is_fitted(self)
         X, good, mp = spectra_in(self, m, what="NMF", reset=False)
         shift = self.raman_shift_ if mp is None else mp.raman_shift
-        A, _ = unmix_spectra(self.components_, X, shift, self.image_baseline_order)
+        A, _ = unmix_spectra(self.components_, X, shift, self.image_baseline_order,
+                             residual=False)
         return rows_out(A.T, good, mp)
 
     def result(self, m: RamanMap, images=None, name: str = "nmf") -> Result:
@@ -900,7 +901,8 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
         """Concentrations (k, m): with the automatic order weighted for shot noise."""
         if self.baseline_order == "auto":
             return unmix_spectra_poisson(self.components_, X, shift, self.baseline_order_)[0]
-        return unmix_spectra(self.components_, X, shift, self.baseline_order_)[0]
+        return unmix_spectra(self.components_, X, shift, self.baseline_order_,
+                             residual=False)[0]
 
     def result(self, m: RamanMap, images=None, name: str = "mcr") -> Result:
         comp = _component_axis(self.n_components)

@@ -123,7 +123,7 @@ def simplex_ls_batch(A, Y, *, max_iter: int = 5000, tol: float = 1e-12,
 
 
 def unmix_spectra(R, X, shift, baseline_order: int | None = None, *, sum_to_one: bool = False,
-                  tol: float = 1e-10, return_converged: bool = False):
+                  tol: float = 1e-10, return_converged: bool = False, residual: bool = True):
     """Non-negative abundances of the rows of ``R`` (k, n) in each spectrum of ``X`` (m, n).
 
     Polynomial baseline terms of ``baseline_order`` (None: none) are fitted jointly and
@@ -136,7 +136,8 @@ def unmix_spectra(R, X, shift, baseline_order: int | None = None, *, sum_to_one:
     tolerance (relative; 1e-6 is about 3x faster and changes abundances by ~1e-8 relative,
     measured on the bundled sample map). Returns (abundances (k, m), residual RMS (m,)),
     and with ``return_converged`` also a flag per spectrum: False where the solver stopped
-    at its iteration limit.
+    at its iteration limit. ``residual=False``: the residual RMS is not computed (None in
+    its place), and the projected spectra are not formed.
     """
     R = np.asarray(R, float)
     X = np.asarray(X, float)
@@ -147,13 +148,18 @@ def unmix_spectra(R, X, shift, baseline_order: int | None = None, *, sum_to_one:
     else:
         Q = polynomial_basis(shift, baseline_order)
         Rp = R.T - Q @ (Q.T @ R.T)
-        Xp = (X @ Q) @ Q.T
-        np.subtract(X, Xp, out=Xp)   # X - (X Q) Qᵀ (one (m, n) array, not two)
+        if residual:
+            Xp = (X @ Q) @ Q.T
+            np.subtract(X, Xp, out=Xp)   # X - (X Q) Qᵀ (one (m, n) array, not two)
+        else:   # the projected references are orthogonal to the polynomials: R_p'X_p = R_p'X
+            Xp = X
     if sum_to_one:
         A, converged = simplex_ls_batch(Rp, Xp.T, return_converged=True)
     else:
         A, converged = nnls_gram(Rp.T @ Rp, np.ascontiguousarray((Xp @ Rp).T), tol=tol,
                                  return_converged=True)
+    if not residual:
+        return (A, None, converged) if return_converged else (A, None)
     r = A.T @ Rp.T
     rms = np.sqrt(np.mean(np.square(np.subtract(Xp, r, out=r), out=r), axis=1))
     return (A, rms, converged) if return_converged else (A, rms)
