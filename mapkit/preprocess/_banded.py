@@ -89,7 +89,7 @@ EPS = np.finfo(np.float64).eps
 #: at a time (tested). 16 lanes were 3.3x faster than one at a time for ALS on 1024
 #: channels; with the arPLS/airPLS weights vectorised (`_exp_lanes`), 32 lanes run an arPLS
 #: iteration 2.3x faster than 16 did with the scalar exp, ALS and airPLS within the
-#: run-to-run spread (1 thread, 1024 channels; benchmarks/RESULTS.md, "Vectorised weights")
+#: run-to-run spread (1 thread, 1024 channels; benchmarks/RESULTS.md, "Vectorised arPLS weights")
 LANES = 32
 
 if HAVE_NUMBA:
