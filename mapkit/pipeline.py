@@ -427,9 +427,10 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                 fit_k = fit_c if same else stream.sample_map(keep, Sk)
                 del Sc, Sk
                 stream.release_freed_memory()   # before the fits, the run's peak
+            lap("clean, write cube, sample")
             if s.n_components == "auto":   # from the despiked spectra the fit sees
                 s = replace(s, n_components=_components_of(keep, fit_k, notices))
-            lap("clean, write cube, sample")
+                lap("number of components")
             names = [f"component {i + 1}" for i in range(s.n_components)]
             if s.component_method == "mcr":   # fits the background itself: the despiked map
                 comp = BackgroundMCR(n_components=s.n_components, random_state=s.seed)

@@ -54,6 +54,31 @@ def test_demo_results_file_layout(demo_out):
         assert any('"despike"' in s for s in steps) and any('"baseline"' in s for s in steps)
 
 
+def test_report_gives_the_unmixing_numbers_of_the_results_file(demo_out):
+    # the report's unmixing table states, per reference, the mean and median abundance
+    # over the fitted pixels and the share of pixels where it is found; they must be the
+    # numbers of the results file it describes (reference: numpy over the stored images)
+    import re
+
+    _, out, *_ = demo_out
+    page = (out / "report.html").read_text()
+    section = page.split("<h2>Unmixing against the reference spectra</h2>")[1].split("<h2>")[0]
+    with h5py.File(out / "results.h5", "r") as f:
+        g = f["/entry/results/unmixing/abundance"]
+        data = g["abundance"][()]
+        names = [n.decode() if isinstance(n, bytes) else str(n) for n in g["component"][()]]
+        rms = f["/entry/results/unmixing/residual"]["residual_rms"][()]
+    good = np.all(np.isfinite(data), axis=0)
+    assert "weighted for shot noise" in section and "baseline terms of order" in section
+    for k, name in enumerate(names):
+        v = data[k][good]
+        row = re.search(rf"<tr><td>{re.escape(name)}</td>(.*?)</tr>", section).group(1)
+        cells = re.findall(r"<td>(.*?)</td>", row)
+        assert cells[:2] == [f"{v.mean():.4g}", f"{np.median(v):.4g}"], (name, cells)
+        assert cells[3] == f"{100 * (v > 0).mean():.4g}"
+    assert f"<td>{np.median(rms[np.isfinite(rms)]):.4g}</td>" in section
+
+
 def test_tiff_has_physical_pixel_size(demo_out):
     import tifffile
 

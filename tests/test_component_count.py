@@ -92,6 +92,7 @@ def test_analyse_chooses_the_count_and_says_so(tmp_path, capsys):
     summary = json.loads((tmp_path / "auto" / "summary.json").read_text())
     assert summary["settings"]["n_components"] == 3
     assert any("chosen from the data" in n for n in summary["notices"])
+    assert summary["timings_s"]["number of components"] >= 0   # a stage of its own
     assert "chosen from the data" in capsys.readouterr().out
     # a number given is a number kept
     assert main(["analyse", str(path), "--components", "5", "--out", str(tmp_path / "five"),
@@ -99,6 +100,7 @@ def test_analyse_chooses_the_count_and_says_so(tmp_path, capsys):
     summary = json.loads((tmp_path / "five" / "summary.json").read_text())
     assert summary["settings"]["n_components"] == 5
     assert not any("chosen from the data" in n for n in summary["notices"])
+    assert "number of components" not in summary["timings_s"]
 
 
 def test_a_bad_component_count_is_one_line(tmp_path, capsys):

@@ -8,6 +8,7 @@ import html
 import tempfile
 from pathlib import Path
 
+import numpy as np
 
 from ..core.provenance import library_versions
 from .atomic import atomic_path
@@ -121,12 +122,7 @@ def write_report(path, *, map_name: str, summary: dict, results, model=None, rec
                            title="class mean ± sd", names=identified_names(r)), "wide")
                 + "</div>")
         if "unmixing" in res:
-            ab = res["unmixing"].fields["abundance"]
-            figs = [_img(fig(save_image_figure, ab, k, title=str(lbl)))
-                    for k, lbl in enumerate(ab.axes[0].values)]
-            parts.append("<h2>Unmixing against the reference spectra</h2><p>Non-negative "
-                         "least squares with polynomial baseline terms.</p>"
-                         f'<div class="figs">{"".join(figs)}</div>')
+            parts.append(_unmixing(res["unmixing"], fig))
         if model is not None:
             parts.append(_calibration(model, fig))
         if "concentration" in res:
@@ -269,6 +265,50 @@ def _on_micrograph(placed, results, fig):
     return ("<h2>On the micrograph</h2><p>Each map drawn over the optical image of the "
             "sample surface, in stage coordinates.</p>" + _table(rows, ["quantity", "value"])
             + table + wide + f'<div class="figs">{"".join(figs)}</div>')
+
+
+def _unmixing(r, fig):
+    """The unmixing section: how it was fitted, each reference's abundance over the good
+    pixels (mean, median, 95th percentile, share of pixels where it is found), the residual
+    and what did not converge, then the images."""
+    ab = r.fields["abundance"]
+    p = r.parameters
+    data = np.asarray(ab.data, float)
+    good = np.all(np.isfinite(data), axis=0)
+    rows = []
+    for k, name in enumerate(ab.axes[0].values):
+        v = data[k][good]
+        rows.append((str(name), float(v.mean()) if v.size else None,
+                     float(np.median(v)) if v.size else None,
+                     float(np.percentile(v, 95)) if v.size else None,
+                     100.0 * float((v > 0).mean()) if v.size else None))
+    rms = np.asarray(r.fields["residual"].data, float)
+    rms = rms[np.isfinite(rms)]
+    how = {"nnls": "non-negative least squares", "fcls": "fully constrained least squares "
+           "(shares sum to 1, scale fitted)"}.get(p.get("method"), str(p.get("method")))
+    weights = " weighted for shot noise (Poisson counts)" if p.get("weights") == "poisson" \
+        else ""
+    order = p.get("baseline_order")
+    base = ("no baseline terms" if order is None else
+            f"polynomial baseline terms of order {order}"
+            + (" (chosen from the data)" if p.get("baseline_order_requested") == "auto" else ""))
+    text = (f"{how.capitalize()}{weights}, with {base}. Abundances are in "
+            f"{html.escape(ab.units or 'reference units')}: one unit is one reference "
+            "spectrum as stored in the library, so they compare within a reference, across "
+            "pixels, not between references unless the library shares one scale.")
+    stats = [("pixels fitted", int(good.sum())),
+             ("median residual RMS (counts)", float(np.median(rms)) if rms.size else None),
+             ("not converged", r.summary.get("not_converged", 0))]
+    for c in r.summary.get("collinear_references", []):
+        stats.append((f"collinear: {c['pair'][0]} / {c['pair'][1]}", c["r"]))
+    figs = [_img(fig(save_image_figure, ab, k, title=str(lbl)))
+            for k, lbl in enumerate(ab.axes[0].values)]
+    return ("<h2>Unmixing against the reference spectra</h2>"
+            f"<p>{html.escape(text)}</p>"
+            + _table(rows, ["reference", "mean", "median", "95th percentile",
+                            "pixels where found %"])
+            + _table(stats, ["fit", "value"])
+            + f'<div class="figs">{"".join(figs)}</div>')
 
 
 def _concentration(r, fig):
