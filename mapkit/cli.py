@@ -580,7 +580,9 @@ def main(argv=None) -> int:
         print("mapkit: interrupted", file=sys.stderr)
         return 130
     except OSError as exc:    # a full disk or a refused write: the user can act on it
-        told = environment_error(exc, staging=STAGING_PREFIX)
+        # a failed write or close names no file: then the output folder of the command
+        told = environment_error(exc, staging=STAGING_PREFIX,
+                                 where=getattr(args, "out", None))
         if told is None:
             return _internal(exc)
         print(f"mapkit: error: {told}", file=sys.stderr)

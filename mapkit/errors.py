@@ -63,42 +63,57 @@ class DataError(MapkitError, ValueError):
 
 
 #: what a full disk, a quota, a read-only disk or missing permission means for the user
-_ENVIRONMENT = {"ENOSPC": ("no space left on the device", "free space there or write the "
-                           "results to another disk (--out)"),
-                "EDQUOT": ("the disk quota is exhausted", "free space there or write the "
-                           "results to another disk (--out)"),
+_SPACE_FIX = "free space there or write the results to another disk (--out)"
+_ENVIRONMENT = {"ENOSPC": ("no space left on the device", _SPACE_FIX),
+                "EDQUOT": ("the disk quota is exhausted", _SPACE_FIX),
                 "EROFS": ("the disk is read-only", "write the results elsewhere (--out)"),
-                "EACCES": ("permission denied", "write the results where you may (--out), "
-                           "or check the file's permissions")}
+                "EACCES": ("permission denied", "check the file's permissions, or write the "
+                           "results where you may (--out)"),
+                "EPERM": ("the operation is not permitted", "check the file's permissions, or "
+                          "write the results where you may (--out)")}
 
 
-def environment_error(exc: OSError, *, staging: str | None = None) -> MapkitError | None:
+def environment_error(exc: OSError, *, staging: str | None = None,
+                      where=None) -> MapkitError | None:
     """The :class:`MapkitError` for an operating-system refusal the user can act on (full
     disk, quota, read-only disk, permission), naming the file; None for anything else.
-    ``staging``: the name prefix of the folder outputs are finished in; a path inside one
-    is reported as the output folder it belongs to.
+
+    ``staging``: the name prefix of the folder outputs are finished in; a path inside one is
+    reported as the output folder it belongs to, and a hidden ``.NAME.xxxx.part`` file as
+    ``NAME``. ``where``: the file or folder to name when the error names none (a failed
+    write or close carries no file name).
 
     Examples
     --------
     >>> import errno
     >>> str(environment_error(OSError(errno.ENOSPC, "No space left", "out/results.h5")))
     'out/results.h5: no space left on the device; free space there or write the results to another disk (--out)'
+    >>> str(environment_error(OSError(errno.ENOSPC, "No space left"), where="out"))
+    'out: no space left on the device; free space there or write the results to another disk (--out)'
     """
     import errno
     import re
 
+    text = str(exc)
     code = getattr(exc, "errno", None)
     if code is None:          # HDF5 reports the error number in its message only
-        found = re.search(r"errno = (\d+)", str(exc))
+        found = re.search(r"errno = (\d+)", text)
         code = int(found.group(1)) if found else None
     name = errno.errorcode.get(code) if code is not None else None
     if name not in _ENVIRONMENT:
         return None
     path = getattr(exc, "filename", None)
-    if path is None:
-        found = re.search(r"filename = '([^']+)'", str(exc))
+    if path is None:          # HDF5: "filename = '...', file descriptor" or "name = '...', errno"
+        found = (re.search(r"filename = '(.+?)', file descriptor", text)
+                 or re.search(r"\bname = '(.+?)', errno", text)
+                 or re.search(r"filename = '([^']+)'", text))
         path = found.group(1) if found else None
-    if path is not None and staging:   # an output being finished: name its folder
-        path = re.sub("/" + re.escape(staging) + r"[^/]*/.*$", "", str(path))
+    if path is not None:
+        path = str(path)
+        if staging:           # an output being finished: name its folder
+            path = re.sub("/" + re.escape(staging) + r"[^/]*/.*$", "", path)
+        path = re.sub(r"(^|/)\.([^/]+)\.[^./]+\.part$", r"\1\2", path)   # .NAME.xxxx.part
+    elif where is not None:
+        path = str(where)
     problem, fix = _ENVIRONMENT[name]
     return MapkitError(problem, file=path, fix=fix)

@@ -83,7 +83,7 @@ def test_failed_overwrite_leaves_the_previous_bundle(previous, sample_map_path, 
         assert f["/entry/map/intensity"].shape[0] > 0
 
 
-@pytest.mark.parametrize("style", ["posix", "hdf5"])
+@pytest.mark.parametrize("style", ["posix", "hdf5", "unnamed"])
 def test_full_disk_is_told_in_one_line_and_leaves_the_previous_bundle(
         previous, sample_map_path, tmp_path, monkeypatch, capsys, style):
     """A full disk is not a bug: one line naming the output folder (not the staging file)
@@ -97,9 +97,13 @@ def test_full_disk_is_told_in_one_line_and_leaves_the_previous_bundle(
     out = tmp_path / "out"
     shutil.copytree(old, out)
     part = out / f"{STAGING_PREFIX}x1" / "cube_classes_labels.tif.part"
-    exc = (OSError(errno.ENOSPC, "No space left on device", str(part)) if style == "posix"
-           else OSError(f"Can't close file (file write failed: filename = '{part}', "
-                        "errno = 28, error message = 'No space left on device')"))
+    # a write() or close() that fails names no file (style "unnamed", as writing to a full
+    # disk raises it): the command's output folder is named then
+    exc = {"posix": OSError(errno.ENOSPC, "No space left on device", str(part)),
+           "hdf5": OSError(f"Can't close file (file write failed: filename = '{part}', "
+                           "file descriptor = 3, errno = 28, error message = 'No space left "
+                           "on device')"),
+           "unnamed": OSError(errno.ENOSPC, "No space left on device")}[style]
     monkeypatch.setattr(bundle, "write_tiff", _FailOnThirdTiff(bundle.write_tiff, out, exc))
     assert main(_analyse_args(sample_map_path, out)) == 2
     err = capsys.readouterr().err.strip().splitlines()

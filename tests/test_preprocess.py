@@ -7,7 +7,8 @@ from mapkit import MapkitError
 from mapkit.preprocess import (air_to_vacuum, als_baseline, bad_pixel_mask, normalise, savgol,
                                shift_to_wavelength, spectral_spike_mask, vacuum_to_air,
                                wavelength_to_shift)
-from mapkit.preprocess._banded import penalty_diagonals, solve_pentadiagonal, weighted_whittaker
+from mapkit.preprocess._banded import (LANES, TASK_SPECTRA, penalty_diagonals,
+                                       solve_pentadiagonal, weighted_whittaker)
 
 
 # --- Savitzky-Golay: Savitzky & Golay 1964, Anal. Chem. 36:1627, tables as corrected by
@@ -106,9 +107,11 @@ def test_compiled_and_numpy_solvers_agree():
 
 def test_vectorised_exp_of_the_compiled_weights_matches_numpy():
     # the arPLS/airPLS weights use a hand-written exp that vectorises (Cody & Waite 1980
-    # range reduction, Taylor polynomial): within 1 ulp of numpy's exp (reference library)
-    # over the range the weights use, and exact at 0
-    numba = pytest.importorskip("numba")
+    # range reduction, Taylor polynomial): within 2 ulp of numpy's exp and of the C
+    # library's (math.exp), two independent references, over the range the weights use
+    # (1 ulp measured against numpy here), and exact at 0
+    import numba
+
     from mapkit.preprocess._banded import _exp_lanes
 
     @numba.njit
@@ -121,7 +124,12 @@ def test_vectorised_exp_of_the_compiled_weights_matches_numpy():
     T = np.concatenate([rng.uniform(-700, 708, 64_000), rng.uniform(-1, 1, 64_000),
                         np.linspace(-40, 40, 64_000), [0.0] * 32]).reshape(-1, 32)
     E, ref = run(T), np.exp(T)
-    assert np.max(np.abs(E - ref) / ref) <= np.finfo(float).eps
+    assert np.max(np.abs(E - ref) / ref) <= 2 * np.finfo(float).eps
+    import math
+
+    sub = T.ravel()[::97]
+    libm = np.array([math.exp(t) for t in sub])
+    assert np.max(np.abs(E.ravel()[::97] - libm) / libm) <= 2 * np.finfo(float).eps
     assert np.all(E[-1] == 1.0)
     # outside the range the value is that of the range's end (callers decide there)
     assert run(np.full((1, 32), 750.0))[0, 0] == run(np.full((1, 32), 708.0))[0, 0]
@@ -405,6 +413,8 @@ def test_compiled_noise_and_snr_equal_numpy_medians(n):
             np.testing.assert_array_equal(snr(cube, engine="numba"), snr_ref.reshape(7, 10))
             np.testing.assert_array_equal(noise_sd(y[1], engine="numba"), sd_ref[1])
     # float32 spectra are read as they are: the numbers of their float64 copy, either engine
+    # (IEEE 754: every binary32 value is a binary64 value, so the widening is exact, from
+    # memory; reading it converted changes nothing; the reference is the float64 path above)
     y32 = (rng.poisson(40.0, (70, n)) + rng.normal(size=(70, n))).astype(np.float32)
     y32[2, 0] = np.nan
     for engine in ("numba", "numpy"):
@@ -481,7 +491,8 @@ def test_spike_removal_engines_and_dtypes_agree(cleaned):
 
 def test_reweighted_baselines_read_float32_as_their_float64_copy():
     # the compiled ALS/arPLS/airPLS loops read float32 spectra without a float64 copy: the
-    # baselines must be bit-identical to those of the float64 copy (the conversion is exact)
+    # baselines must be bit-identical to those of the float64 copy (IEEE 754: the widening
+    # is exact, from memory; the float64 path is checked against pybaselines above)
     from mapkit.preprocess.baseline import METHODS, READS_FLOAT32
 
     rng = np.random.default_rng(8)
@@ -520,7 +531,7 @@ def test_kernel_median_matches_numpy():
         assert _median_inplace(v.copy()) == np.median(v)
 
 
-@pytest.mark.parametrize("rows", [1, 15, 16, 17, 40])
+@pytest.mark.parametrize("rows", [1, LANES - 1, LANES, LANES + 1, 2 * LANES + 1])
 def test_compiled_solvers_handle_partial_lane_blocks(rows):
     # the compiled solvers work on blocks of LANES spectra; a short last block must give
     # each spectrum exactly what the numpy recurrence gives it
@@ -551,7 +562,7 @@ def test_compiled_reweighting_gives_each_spectrum_its_own_result():
     rng = np.random.default_rng(11)
     n = 200
     ch = np.arange(n)
-    rows = 600                     # > 2 tasks of spectra; convergence after 2 to 30+ solves
+    rows = 2 * TASK_SPECTRA + 88   # > 2 tasks of spectra; convergence after 2 to 30+ solves
     y = (rng.normal(size=(rows, 1)) * 0.02 * ch + rng.uniform(0, 30, (rows, 1))
          * np.exp(-((ch - rng.uniform(40, 160, (rows, 1))) / 5.0) ** 2)
          + rng.normal(0, rng.uniform(0.1, 3, (rows, 1)), (rows, n)))

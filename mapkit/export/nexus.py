@@ -51,16 +51,20 @@ _DIGESTS_KEPT = 64
 
 
 def _identity(path):
+    # the change time too: any write moves it, and no tool can set it back (touch -r and
+    # cp -p restore only the modification time)
     st = os.stat(path)
-    return (str(Path(path).resolve()), st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns)
+    return (str(Path(path).resolve()), st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns,
+            st.st_ctime_ns)
 
 
 def file_sha256(path) -> str:
     """SHA-256 of a file, read in blocks (recorded so a result names its exact input).
 
-    Remembered for the file as it is (path, inode, size, modification time): asked again in
-    the same process, and the file unchanged, the digest is not read again; asked while
-    :func:`hash_in_background` is reading it, the call waits for that reading.
+    Remembered for the file as it is (path, inode, size, modification and change times):
+    asked again in the same process, and the file unchanged, the digest is not read again;
+    asked while :func:`hash_in_background` is reading it, the call waits for that reading. A
+    file that changed while it was read is not remembered.
     """
     key = _identity(path)
     with _DIGESTS_LOCK:
@@ -77,6 +81,9 @@ def file_sha256(path) -> str:
         with open(path, "rb") as fh:
             for block in iter(lambda: fh.read(1 << 20), b""):
                 h.update(block)    # (hashlib releases the GIL on large blocks)
+        if _identity(path) != key:     # changed while read: do not remember this digest
+            with _DIGESTS_LOCK:
+                _DIGESTS.pop(key, None)
         pending.set_result(h.hexdigest())
     except BaseException as exc:
         with _DIGESTS_LOCK:

@@ -292,7 +292,7 @@ def _unmixing(r, fig):
     base = ("no baseline terms" if order is None else
             f"polynomial baseline terms of order {order}"
             + (" (chosen from the data)" if p.get("baseline_order_requested") == "auto" else ""))
-    text = (f"{how.capitalize()}{weights}, with {base}. Abundances are in "
+    text = (f"{how[:1].upper() + how[1:]}{weights}, with {base}. Abundances are in "
             f"{html.escape(ab.units or 'reference units')}: one unit is one reference "
             "spectrum as stored in the library, so they compare within a reference, across "
             "pixels, not between references unless the library shares one scale.")

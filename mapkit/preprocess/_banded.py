@@ -2,10 +2,10 @@
 
 Every spectrum of a block needs (W + λ DᵀD) z = W y with its own weights W and the same
 second-difference penalty D: a symmetric positive-definite pentadiagonal system. The
-compiled kernel factorises the systems (LDLᵀ) of 16 spectra side by side (vector units),
-blocks of them in parallel, and releases the GIL; the whole reweighting loop of ALS,
-arPLS and airPLS runs compiled (weights computed lane by lane as baseline.py's numpy
-versions compute them). The numpy fallback runs the same recurrence
+compiled kernel factorises the systems (LDLᵀ) of LANES spectra side by side (vector
+units), blocks of them in parallel, and releases the GIL; the whole reweighting loop of
+ALS, arPLS and airPLS runs compiled (weights computed lane by lane as baseline.py's numpy
+versions compute them, the exponentials to 1 ulp). The numpy fallback runs the same recurrence
 along the channel axis, vectorised across spectra, when numba is unavailable. Measured on a
 2-core VM on 2026-12-02 (benchmarks/RESULTS.md): the compiled ALS is 34.7x a per-spectrum
 pybaselines loop, one thread against one (45-60x on 2 threads against one), the numpy one
@@ -88,9 +88,13 @@ EPS = np.finfo(np.float64).eps
 #: Each lane does exactly the scalar arithmetic, so results are bit-identical to one spectrum
 #: at a time (tested). 16 lanes were 3.3x faster than one at a time for ALS on 1024
 #: channels; with the arPLS/airPLS weights vectorised (`_exp_lanes`), 32 lanes run an arPLS
-#: iteration 2.3x faster than 16 did with the scalar exp, ALS and airPLS within the
+#: iteration 2.1-2.3x faster than 16 did with the scalar exp, ALS and airPLS within the
 #: run-to-run spread (1 thread, 1024 channels; benchmarks/RESULTS.md, "Vectorised arPLS weights")
 LANES = 32
+
+#: spectra one parallel task of the reweighting loop works through (its lanes refilled as
+#: spectra finish); not tied to LANES, so a 4096-spectrum block still makes 16 tasks
+TASK_SPECTRA = 256
 
 if HAVE_NUMBA:
     # inlined into the callers, whose freshly allocated blocks LLVM then knows not to
@@ -204,7 +208,8 @@ if HAVE_NUMBA:
     @numba.njit(cache=True, nogil=True, inline="always")
     def _new_weights(kind, its, p, Y, Z, W, q, E, T, K, change, stop, y_l1):  # pragma: no cover
         # the next weights into q, each lane's convergence measure and early stop, as
-        # baseline.py's numpy versions compute them (tests compare the two engines); its:
+        # baseline.py's numpy versions compute them, exponentials to 1 ulp (tests compare
+        # the two engines); its:
         # each lane's iteration count (lanes hold spectra that started at different times)
         n, lanes = Y.shape
         num = np.zeros(lanes)
@@ -248,7 +253,8 @@ if HAVE_NUMBA:
             # weight 1 / (1 + exp(-x)), x = -(2 / sd)((y - z) - (2 sd - mean)) (scipy.special.
             # expit's formula), -x formed exactly as x then negated. exp(-x) < 2⁻⁵³ where
             # -x < -40, so 1 + exp(-x) rounds to 1: weight 1.0; above 708 the weight is
-            # below 1e-307 and taken as 0.0 (numpy's exp gives 0.0 from 709.79 on)
+            # below 1e-307 and taken as 0.0 (numpy's exp overflows to inf from 709.79 on,
+            # which gives 0.0 there too)
             for i in range(n):
                 for j in range(lanes):
                     T[i, j] = scale[j] * ((Y[i, j] - Z[i, j]) - shift[j])
@@ -290,15 +296,12 @@ if HAVE_NUMBA:
             s += abs(y[k, i])
         y_l1[j] = s
 
-    #: spectra one parallel task works through (its lanes refilled as spectra finish)
-    TASK_SPECTRA = 16 * LANES
-
     @numba.njit(parallel=True, cache=True, nogil=True)
     def _reweighted_numba(y, d0, d1, d2, kind, p, max_iter, tol):  # pragma: no cover
         # the whole reweighting loop per task of spectra: no array traffic between
         # iterations. A lane whose spectrum stops (converged or at the iteration limit)
         # stores that iteration's result and takes the task's next spectrum, so lanes do
-        # not idle while the slowest of 16 converges; every lane does its own spectrum's
+        # not idle while the slowest of LANES converges; every lane does its own spectrum's
         # arithmetic only, so each result is what that spectrum alone would get
         m, n = y.shape
         out = np.empty((m, n))

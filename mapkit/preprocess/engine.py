@@ -33,10 +33,10 @@ def map_spectra(m: RamanMap, func, n_out: int | None = None, *, block_pixels: in
         def on_chunk(b, bad):
             b = np.asarray(b)
             keep = float32_in and b.dtype == np.float32
-            flat = (b if keep else b.astype(np.float64)).reshape(-1, b.shape[2])
+            flat = (b if keep else b.astype(np.float64, copy=False)).reshape(-1, b.shape[2])
             out = func(flat).reshape(b.shape[0], b.shape[1], n_out).astype(np.float32,
                                                                          copy=False)
-            if np.shares_memory(out, b):      # never write into the input's chunk
+            if np.may_share_memory(out, b):   # never write into the input's chunk
                 out = out.copy()
             out[bad[..., 0]] = 0.0            # masked pixels at zero, in place
             return out

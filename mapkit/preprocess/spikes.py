@@ -162,6 +162,9 @@ def remove_spatial_spikes(cube, mask=None, *, threshold: float = 8.0, grow: floa
         if out is None:
             cleaned = src.astype(np.float32)
         else:
+            if out.shape != src.shape or out.dtype != np.float32:
+                raise ValueError(f"out must be float32 of shape {src.shape}, not {out.dtype} "
+                                 f"{out.shape}")
             cleaned = out
             cleaned[...] = src
         spikes = np.zeros(src.shape, bool)
