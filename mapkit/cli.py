@@ -16,7 +16,7 @@ from pathlib import Path
 
 from .cli_common import (_add_read_options, _band, _check_outputs, _count_or_auto, _formats,
                          _map_files, _open_kwargs, _positive_int, _print_notes, _range_arg,
-                         add_response_options)
+                         add_response_options, missing_folders, remove_if_empty)
 from .errors import MapkitError, environment_error
 from .export.atomic import STAGING_PREFIX
 
@@ -203,6 +203,13 @@ def _run_analysis(a, map_path, library, standards, bands):
     if ident:
         print("components " + ", ".join(f"{r['spectrum']} = {describe_match(r)}"
                                         for r in ident))
+    un = results.get("unmixing") or {}
+    if un.get("references"):
+        rms = un.get("residual_rms_median")
+        print("unmixing  mean abundance " + ", ".join(
+            f"{k} {v['mean']:.3g}" for k, v in un["references"].items() if v["mean"] is not None)
+            + (f"; median residual {rms:.3g} counts" if rms is not None else "")
+            + f"; {un.get('not_converged', 0)} not converged")
     conc = summ["results"].get("concentration")
     if conc:
         cal = conc["calibration"]
@@ -214,8 +221,9 @@ def _run_analysis(a, map_path, library, standards, bands):
 
             print(f"          {describe_lack_of_fit(cal.get('lack_of_fit'))}")
         print(f"content   mean {conc['mean']:.2f} {conc['unit']}, median "
-              f"{conc['percentiles'][50]:.2f}; {conc['below_loq']} of {conc['pixels']} pixels "
-              f"below LOQ, {conc['outside_range']} outside the calibrated range")
+              f"{conc['percentiles'][50]:.2f} {conc['unit']} (flagged pixels included); "
+              f"{conc['below_loq']} of {conc['pixels']} pixels below LOQ, "
+              f"{conc['outside_range']} outside the calibrated range")
     print(f"wrote     {len(out['written'])} files to {Path(a.out)}/")
     for p in out["written"]:
         if p.suffix in (".h5", ".json", ".html"):
@@ -483,8 +491,11 @@ def build_parser() -> argparse.ArgumentParser:
     d.set_defaults(func=cmd_demo)
 
     an = sub.add_parser("analyse", help="clean, reduce and quantify one map file",
-                        description="Remove spikes and baseline, then band images, NMF, "
-                                    "k-means classes, unmixing and a concentration map.")
+                        description="Mask bad pixels, remove spikes and baseline, then "
+                                    "components (MCR-ALS with the background by default, or "
+                                    "NMF), classes (each pixel's dominant component by "
+                                    "default, or k-means), unmixing against a library and a "
+                                    "concentration map from calibration standards.")
     an.add_argument("map", help="map file (.h5 mapkit layout, any HDF5 with --dataset, or text table)")
     _add_analysis_options(an)
     _add_read_options(an)
@@ -567,6 +578,15 @@ def build_parser() -> argparse.ArgumentParser:
 
 def main(argv=None) -> int:
     args = build_parser().parse_args(argv)
+    out = getattr(args, "out", None)
+    made = missing_folders(out) if isinstance(out, (str, Path)) else []
+    rc = _run(args)
+    if rc != 0:          # a failed run leaves no empty output folder of its own making
+        remove_if_empty(made)
+    return rc
+
+
+def _run(args) -> int:
     try:
         args.func(args)
     except BrokenPipeError:

@@ -102,12 +102,44 @@ def _print_notes(m, prefix="notice    ", file=None):
         print(f"{prefix}{note}", file=file or sys.stdout)
 
 
+def missing_folders(out) -> list[Path]:
+    """The folders of ``out`` and above it that do not exist yet, deepest first."""
+    chain, p = [], Path(out)
+    while not p.exists() and p != p.parent:
+        chain.append(p)
+        p = p.parent
+    return chain
+
+
+def remove_if_empty(folders):
+    """Remove the ``folders`` (deepest first) that are empty: a failed run that made its
+    output folder leaves nothing behind."""
+    for p in folders:
+        try:
+            if p.is_dir() and not any(p.iterdir()):
+                p.rmdir()
+        except OSError:
+            return
+
+
 def _check_outputs(out, overwrite, names=("results.h5",)):
-    """Refuse, before any work, an output folder that is a file or holds earlier outputs."""
+    """Refuse, before any work, an output folder that is a file, cannot be made or holds
+    earlier outputs."""
     out = Path(out)
     if out.exists() and not out.is_dir():
         raise MapkitError("the output path is a file, not a folder", file=out, field="--out",
                           fix="give a folder for the outputs")
+    made = missing_folders(out)
+    if made:   # can it be made? (made and removed again: the run makes it when it writes)
+        try:
+            out.mkdir(parents=True)
+        except OSError as exc:
+            remove_if_empty(made)
+            why = (exc.strerror or str(exc)).lower()
+            raise MapkitError(f"the output folder cannot be made ({why})", file=out,
+                              field="--out",
+                              fix="give a folder on a disk you can write to") from None
+        remove_if_empty(made)
     if overwrite:
         return
     for name in names:

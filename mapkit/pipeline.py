@@ -217,7 +217,7 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
 
     t1 = time.perf_counter()
 
-    inputs = _inputs(map_path, standards, optical, placed)
+    inputs = _inputs(map_path, standards, optical, placed, library)
     written.append(write_report(
         outdir / "report.html", map_name=Path(map_path).name, summary=summary, results=results,
         model=model, recipe_text=recipe.text, provenance=provenance, optical=placed,
@@ -231,8 +231,14 @@ def analyse(map_path, outdir, *, library=None, standards=None, settings: Setting
             "calibration": model.calibration if model is not None else None, "model": model}
 
 
-def _inputs(map_path, standards, optical, placed):
+def _inputs(map_path, standards, optical, placed, library=None):
+    # every file the results depend on, each recorded with its digest
     inputs = {"map": map_path}
+    if library is not None:
+        from .read.reference import library_files
+
+        for p in library_files(library):
+            inputs[f"library: {p.name}"] = p
     if standards is not None:
         inputs["standards"] = standards
     if placed is not None:
@@ -288,6 +294,7 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
     from .read.dispatch import read_notes
     from .reduce import BackgroundMCR, DominantClasses, KMeansClasses, NMFComponents
     from .reduce import ReferenceUnmixing, band_image
+    from .reduce.unmix import unmixing_statistics
     from .reduce._common import image_axes
 
     bar = tqdm(total=3 * plan.n_blocks + 2, desc="mapkit", unit="step",
@@ -347,7 +354,7 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                                 "scheduler": where,
                                 **({"optical": optical} if optical is not None else {})})
     final = corrected.derive(corrected.intensity, run_step)
-    inputs = _inputs(map_path, standards, optical, placed)
+    inputs = _inputs(map_path, standards, optical, placed, library)
     if plan.n_blocks > 1:    # a long run: its inputs are hashed while it cleans, once
         hash_in_background(list(inputs.values()))
     snr_img = np.full(grid, np.nan)
@@ -528,7 +535,9 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                       list(km_result.summary["areas"]), s.min_score)
             results.append(km_result)
             if unmix is not None:
-                results.append(unmix_parts.stitched(sum_keys=("not_converged",)))
+                joined = unmix_parts.stitched(sum_keys=("not_converged",))
+                joined.summary.update(unmixing_statistics(joined))   # of the whole map
+                results.append(joined)
             del unmix_parts
             if model is not None:
                 x0 = conc_parts.stitched().fields["concentration"]
@@ -680,6 +689,7 @@ def run_method(m, method: str, *, n: int = 4, seed: int = 0, library=None, model
     from .reduce import (MCRALS, BackgroundMCR, DominantClasses, KMeansClasses, NMFComponents,
                          PCAScores, ReferenceUnmixing)
     from .reduce import match_library
+    from .reduce.unmix import unmixing_statistics
 
     if method not in METHODS:
         raise MapkitError(f"unknown method {method!r}", field="method",
@@ -731,6 +741,7 @@ def run_method(m, method: str, *, n: int = 4, seed: int = 0, library=None, model
                                    method="fcls" if method == "fcls" else "nnls").fit(m)
         res = un.result(m)
         res.summary["notices"] = [str(w.message) for w in caught]
+        res.summary.update(unmixing_statistics(res))
         return [res]
     if model is None:
         raise MapkitError("a content map needs a quantification model", field="model",

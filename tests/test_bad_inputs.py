@@ -445,3 +445,28 @@ def test_text_table_too_large_for_memory_is_told_to_convert(tmp_path, capsys, mo
     assert len(lines) == 1 and "Traceback" not in err
     assert "big.csv" in lines[0] and "mapkit convert" in lines[0], lines[0]
     assert not (tmp_path / "out" / "results.h5").exists()
+
+
+def test_output_folder_that_cannot_be_made_is_one_line(tmp_path, capsys):
+    # an --out below a file cannot be made: told before any work, status 2, nothing left
+    blocker = tmp_path / "notes.txt"
+    blocker.write_text("a file, not a folder")
+    path = _h5(tmp_path / "a.h5", cube=_cube())
+    rc = main(analyse(path, "--out", str(blocker / "run" / "out")))
+    err = capsys.readouterr().err.strip().splitlines()
+    assert rc == 2 and len(err) == 1, err
+    assert "--out" in err[0] and "cannot be made" in err[0] and "; " in err[0], err[0]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["a.h5", "notes.txt"]
+
+
+def test_failed_run_leaves_no_output_folder_of_its_own(tmp_path, capsys):
+    # a run that fails after its output folder was made removes the folders it made, if
+    # empty (common practice: a failed command leaves the disk as it was)
+    args, _ = _dup_library(tmp_path)
+    out = tmp_path / "new" / "deeper" / "out"
+    assert main(args + ["--out", str(out)]) == 2
+    assert not (tmp_path / "new").exists()
+    kept = tmp_path / "kept"
+    kept.mkdir()
+    assert main(args + ["--out", str(kept)]) == 2
+    assert kept.is_dir()          # a folder that was there before stays

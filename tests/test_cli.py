@@ -1,5 +1,6 @@
 """The command line: the demo end to end, and bad input as one-line errors with status 2."""
 
+import json
 import subprocess
 import sys
 
@@ -9,7 +10,7 @@ import pytest
 
 from mapkit.cli import main
 
-from .conftest import sha256
+from .conftest import SAMPLES, sha256
 
 
 @pytest.fixture(scope="module")
@@ -52,6 +53,12 @@ def test_demo_results_file_layout(demo_out):
         assert "sha256" in inputs
         steps = [s.decode() if isinstance(s, bytes) else s for s in f["/entry/provenance/steps"][...]]
         assert any('"despike"' in s for s in steps) and any('"baseline"' in s for s in steps)
+    # every file the results depend on is named with its SHA-256 (FIPS 180-4; reference:
+    # hashlib over the file's bytes): the map, the standards and each library spectrum
+    recorded = json.loads(inputs)
+    for p in sorted((SAMPLES / "library").iterdir()):
+        assert recorded[f"library: {p.name}"] == {"path": p.name, "sha256": sha256(p)}
+    assert recorded["standards"]["sha256"] == sha256(SAMPLES / "calibration_standards.csv")
 
 
 def test_report_gives_the_unmixing_numbers_of_the_results_file(demo_out):
@@ -70,13 +77,18 @@ def test_report_gives_the_unmixing_numbers_of_the_results_file(demo_out):
         rms = f["/entry/results/unmixing/residual"]["residual_rms"][()]
     good = np.all(np.isfinite(data), axis=0)
     assert "weighted for shot noise" in section and "baseline terms of order" in section
+    summary = json.loads((out / "summary.json").read_text())["results"]["unmixing"]   # same
     for k, name in enumerate(names):
         v = data[k][good]
         row = re.search(rf"<tr><td>{re.escape(name)}</td>(.*?)</tr>", section).group(1)
         cells = re.findall(r"<td>(.*?)</td>", row)
         assert cells[:2] == [f"{v.mean():.4g}", f"{np.median(v):.4g}"], (name, cells)
         assert cells[3] == f"{100 * (v > 0).mean():.4g}"
+        assert summary["references"][name]["mean"] == pytest.approx(v.mean(), rel=1e-6)
+        assert summary["references"][name]["p95"] == pytest.approx(np.percentile(v, 95),
+                                                                   rel=1e-6)
     assert f"<td>{np.median(rms[np.isfinite(rms)]):.4g}</td>" in section
+    assert summary["residual_rms_median"] == pytest.approx(np.median(rms[np.isfinite(rms)]))
 
 
 def test_tiff_has_physical_pixel_size(demo_out):
@@ -309,3 +321,22 @@ def test_reduction_subcommands_accept_quiet(command):
     extra = {"unmix": ["--library", "lib"], "peaks": ["--range", "500-540"]}.get(command, [])
     a = build_parser().parse_args([command, "map.h5", *extra, "--quiet"])
     assert a.quiet is True
+
+
+def test_analyse_prints_the_unmixing_and_unit_of_the_content(tmp_path, capsys, sample_map_path,
+                                                             sample_dir):
+    # the terminal summary carries the unmixing's numbers (as summary.json does) and the
+    # content line its unit and that flagged pixels are included
+    rc = main(["analyse", str(sample_map_path), "--library", str(sample_dir / "library"),
+               "--standards", str(sample_dir / "calibration_standards.csv"),
+               "--component-method", "nmf", "--class-method", "kmeans", "--components", "3",
+               "--out", str(tmp_path / "out")])
+    out = capsys.readouterr().out
+    assert rc == 0
+    line = next(x for x in out.splitlines() if x.startswith("unmixing  mean abundance "))
+    un = json.loads((tmp_path / "out" / "summary.json").read_text())["results"]["unmixing"]
+    for name, v in un["references"].items():
+        assert f"{name} {v['mean']:.3g}" in line
+    assert f"median residual {un['residual_rms_median']:.3g} counts" in line
+    content = next(x for x in out.splitlines() if x.startswith("content   mean "))
+    assert "(flagged pixels included)" in content and content.count("% w/w") == 2

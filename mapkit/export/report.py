@@ -8,8 +8,6 @@ import html
 import tempfile
 from pathlib import Path
 
-import numpy as np
-
 from ..core.provenance import library_versions
 from .atomic import atomic_path
 from .labels import class_names, display_label, identified_names
@@ -271,19 +269,13 @@ def _unmixing(r, fig):
     """The unmixing section: how it was fitted, each reference's abundance over the good
     pixels (mean, median, 95th percentile, share of pixels where it is found), the residual
     and what did not converge, then the images."""
+    from ..reduce.unmix import unmixing_statistics
+
     ab = r.fields["abundance"]
     p = r.parameters
-    data = np.asarray(ab.data, float)
-    good = np.all(np.isfinite(data), axis=0)
-    rows = []
-    for k, name in enumerate(ab.axes[0].values):
-        v = data[k][good]
-        rows.append((str(name), float(v.mean()) if v.size else None,
-                     float(np.median(v)) if v.size else None,
-                     float(np.percentile(v, 95)) if v.size else None,
-                     100.0 * float((v > 0).mean()) if v.size else None))
-    rms = np.asarray(r.fields["residual"].data, float)
-    rms = rms[np.isfinite(rms)]
+    numbers = unmixing_statistics(r)
+    rows = [(name, v["mean"], v["median"], v["p95"], v["found_pct"])
+            for name, v in numbers["references"].items()]
     how = {"nnls": "non-negative least squares", "fcls": "fully constrained least squares "
            "(shares sum to 1, scale fitted)"}.get(p.get("method"), str(p.get("method")))
     weights = " weighted for shot noise (Poisson counts)" if p.get("weights") == "poisson" \
@@ -296,8 +288,8 @@ def _unmixing(r, fig):
             f"{html.escape(ab.units or 'reference units')}: one unit is one reference "
             "spectrum as stored in the library, so they compare within a reference, across "
             "pixels, not between references unless the library shares one scale.")
-    stats = [("pixels fitted", int(good.sum())),
-             ("median residual RMS (counts)", float(np.median(rms)) if rms.size else None),
+    stats = [("pixels fitted", numbers["pixels_fitted"]),
+             ("median residual RMS (counts)", numbers["residual_rms_median"]),
              ("not converged", r.summary.get("not_converged", 0))]
     for c in r.summary.get("collinear_references", []):
         stats.append((f"collinear: {c['pair'][0]} / {c['pair'][1]}", c["r"]))

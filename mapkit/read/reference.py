@@ -171,12 +171,23 @@ def read_reference(path) -> Spectrum:
     return _two_column(path)
 
 
+#: the file types a library folder is read from
+LIBRARY_SUFFIXES = (".jdx", ".dx", ".jcamp", ".txt", ".csv", ".tsv")
+
+
+def library_files(path) -> list[Path]:
+    """The reference files a library (a folder, or one file) is read from, in order."""
+    path = Path(path)
+    if path.is_dir():
+        return sorted(p for p in path.iterdir() if p.suffix.lower() in LIBRARY_SUFFIXES)
+    return [path]
+
+
 def read_library(path) -> list[Spectrum]:
     """Every reference spectrum in a folder (or one file), names unique."""
     path = Path(path)
     if path.is_dir():
-        files = sorted(p for p in path.iterdir()
-                       if p.suffix.lower() in (".jdx", ".dx", ".jcamp", ".txt", ".csv", ".tsv"))
+        files = library_files(path)
         if not files:
             raise MapkitError("no reference spectra (.jdx, .dx, .txt, .csv) in the folder",
                               file=path, fix="put one spectrum per file in it")
@@ -189,6 +200,7 @@ def read_library(path) -> list[Spectrum]:
     if dup:
         holders = [f.name for f, n in zip(files, names) if n == dup[0]]
         raise MapkitError(f"the library holds the name {dup[0]!r} more than once (in "
-                          f"{' and '.join(holders)})", file=path, field="TITLE",
+                          f"{' and '.join(holders)})", file=path,
+                          field="names (a JCAMP-DX TITLE, or a text spectrum's file name)",
                           fix="give every reference a unique name")
     return library

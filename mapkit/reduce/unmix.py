@@ -250,6 +250,40 @@ def unmix_spectra_poisson(R, X, shift, baseline_order: int | None = None, *,
     return A, rms, converged
 
 
+def unmixing_statistics(result) -> dict:
+    """What an unmixing result says in numbers, over its fitted pixels: per reference the
+    mean, median and 95th percentile of the abundance and the share of pixels where it is
+    found (abundance > 0); the median residual RMS (counts) and the pixels fitted. For the
+    summary of a whole map (after the blocks are joined) and the report alike.
+
+    Examples
+    --------
+    >>> from mapkit.core.result import Axis, Field, Result
+    >>> ax = (Axis("component", np.array(["a"])), Axis("y", np.arange(1.)),
+    ...       Axis("x", np.arange(4.)))
+    >>> r = Result("unmixing", "nnls_unmixing", {}, {
+    ...     "abundance": Field("abundance", np.array([[[0.0, 1.0, 3.0, np.nan]]]), ax),
+    ...     "residual": Field("residual_rms", np.array([[2.0, 4.0, 6.0, np.nan]]), ax[1:])})
+    >>> s = unmixing_statistics(r)
+    >>> s["references"]["a"]["median"], s["references"]["a"]["found_pct"], s["residual_rms_median"]
+    (1.0, 66.66666666666667, 4.0)
+    """
+    data = np.asarray(result.fields["abundance"].data, float)
+    names = [str(n) for n in result.fields["abundance"].axes[0].values]
+    good = np.all(np.isfinite(data), axis=0)
+    refs = {}
+    for k, name in enumerate(names):
+        v = data[k][good]
+        refs[name] = ({"mean": float(v.mean()), "median": float(np.median(v)),
+                       "p95": float(np.percentile(v, 95)),
+                       "found_pct": 100.0 * float((v > 0).mean())} if v.size else
+                      {"mean": None, "median": None, "p95": None, "found_pct": None})
+    rms = np.asarray(result.fields["residual"].data, float)
+    rms = rms[np.isfinite(rms)]
+    return {"pixels_fitted": int(good.sum()), "references": refs,
+            "residual_rms_median": float(np.median(rms)) if rms.size else None}
+
+
 def check_baseline_order(order):
     """A polynomial baseline order as the fits take it: None, "auto" or a whole number ≥ 0."""
     if order is None or order == "auto":
