@@ -516,6 +516,13 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
                 lab[good] = cls.labels_of(shares, good, grid)
                 labels = lab.reshape(grid)
                 del shares   # only the labels are written (no shares_ image kept)
+                for k in cls.never_pure():
+                    notices.append(
+                        f"classes: component {k + 1} is never close to pure on this map (at "
+                        f"its purest pixels the other components hold "
+                        f"{100 * cls.mixing_at_purest_[k]:.0f} % of the shares), so its pure "
+                        f"level is underestimated and class {k + 1}'s area is likely "
+                        "overstated; read its abundance image (or the unmixing) instead")
             else:
                 cls = km
             stats = stream.ClassStats(n_cls, ns)
@@ -530,6 +537,9 @@ def _analyse_blocks(map_path, outdir, raw, plan, where, *, s, refs, model, recip
             del bc
             stats.store(cls, labels, corrected)
             km_result = cls.result(corrected, name="classes")
+            if s.class_method == "dominant":
+                km_result.summary["mixing_at_purest"] = [float(v) for v in
+                                                         cls.mixing_at_purest_]
             _identify(km_result.summary, comp.components_ if s.class_method == "dominant"
                       else cls.class_mean_, corrected.raman_shift, refs,
                       list(km_result.summary["areas"]), s.min_score)

@@ -193,3 +193,61 @@ def test_unknown_pure_level_rule_is_refused():
     with pytest.raises(MapkitError, match="pure-level") as err:
         DominantClasses(n_classes=2, scale="median").fit(m, np.ones((2, 4, 5)))
     assert err.value.field == "scale"
+
+
+def test_a_component_never_pure_is_flagged_and_said(tmp_path):
+    # a binder at 15-40 % everywhere is never close to pure: its image over its own purest
+    # pixels overstates it, and the class map gives it pixels it never dominates. The
+    # classes flag it (mixing at its purest pixels above NEVER_PURE), and components
+    # that are pure somewhere are not flagged (a pure-pixel scale needs a pure pixel: the
+    # premise of pure-pixel methods, Boardman, Kruse & Green 1995, Summaries of the 5th
+    # JPL Airborne Earth Science Workshop, from memory)
+    from mapkit.reduce.segment import NEVER_PURE, DominantClasses
+
+    rng = np.random.default_rng(4)
+    ny, nx = 30, 40
+    xx = np.broadcast_to(np.arange(nx) / (nx - 1), (ny, nx))
+    binder = 0.15 + 0.25 * xx
+    layer = (np.arange(ny)[:, None] < ny // 2) * np.ones((1, nx))
+    a = (1 - binder) * layer
+    b = (1 - binder) * (1 - layer)
+    images = np.stack([a, b, binder]) + rng.normal(0, 0.01, (3, ny, nx))
+    m = RamanMap(np.ones((ny, nx, 5)), raman_shift=np.arange(5.0), x=np.arange(nx * 1.0),
+                 y=np.arange(ny * 1.0))
+    cls = DominantClasses(n_classes=3).fit(m, images)
+    assert cls.never_pure() == [2]
+    assert cls.mixing_at_purest_[2] > 0.35 > NEVER_PURE > cls.mixing_at_purest_[:2].max()
+    # the overstatement the flag warns of: the binder dominates no pixel, yet gets a class
+    assert (cls.labels_ == 2).mean() > 0.1
+
+
+def test_analyse_says_when_a_component_is_never_pure(tmp_path):
+    # the same invented layout as spectra (two layers and a binder in every pixel): the
+    # default analysis says in its notices which class area is likely overstated
+    import json
+
+    from mapkit.cli import main
+    from mapkit.export.nexus import write_map
+
+    rng = np.random.default_rng(5)
+    ny, nx, n = 24, 30, 300
+    shift = np.linspace(200, 1800, n)
+    band = lambda c, w: np.exp(-0.5 * ((shift - c) / w) ** 2)   # noqa: E731
+    pure = np.stack([band(400, 8) + 0.6 * band(1000, 10), band(700, 9) + 0.5 * band(1300, 8),
+                     band(1450, 12) + 0.8 * band(1650, 9)]) * 400
+    xx = np.broadcast_to(np.arange(nx) / (nx - 1), (ny, nx))
+    binder = 0.15 + 0.25 * xx
+    layer = (np.arange(ny)[:, None] < ny // 2) * np.ones((1, nx))
+    frac = np.stack([(1 - binder) * layer, (1 - binder) * (1 - layer), binder])
+    mu = np.einsum("kyx,ks->yxs", frac, pure) + 100 + 0.05 * (shift - 200)
+    m = RamanMap(rng.poisson(mu).astype(np.float32), raman_shift=shift,
+                 x=np.arange(nx * 1.0), y=np.arange(ny * 1.0))
+    write_map(tmp_path / "film.h5", m)
+    assert main(["analyse", str(tmp_path / "film.h5"), "--components", "3", "--out",
+                 str(tmp_path / "out"), "--quiet", "--no-figures"]) == 0
+    summary = json.loads((tmp_path / "out" / "summary.json").read_text())
+    said = [t for t in summary["notices"] if "never close to pure" in t]
+    assert len(said) == 1, summary["notices"]
+    mixing = summary["results"]["classes"]["mixing_at_purest"]
+    k = int(np.argmax(mixing))
+    assert f"component {k + 1} is never close to pure" in said[0] and mixing[k] > 0.3
