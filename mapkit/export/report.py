@@ -267,14 +267,14 @@ def _on_micrograph(placed, results, fig):
 
 def _unmixing(r, fig):
     """The unmixing section: how it was fitted, each reference's abundance over the good
-    pixels (mean, median, 95th percentile, share of pixels where it is found), the residual
+    pixels (mean, median, 95th percentile, share of pixels above 0), the residual
     and what did not converge, then the images."""
     from ..reduce.unmix import unmixing_statistics
 
     ab = r.fields["abundance"]
     p = r.parameters
     numbers = unmixing_statistics(r)
-    rows = [(name, v["mean"], v["median"], v["p95"], v["found_pct"])
+    rows = [(name, v["mean"], v["median"], v["p95"], v["positive_pct"])
             for name, v in numbers["references"].items()]
     how = {"nnls": "non-negative least squares", "fcls": "fully constrained least squares "
            "(shares sum to 1, scale fitted)"}.get(p.get("method"), str(p.get("method")))
@@ -298,7 +298,7 @@ def _unmixing(r, fig):
     return ("<h2>Unmixing against the reference spectra</h2>"
             f"<p>{html.escape(text)}</p>"
             + _table(rows, ["reference", "mean", "median", "95th percentile",
-                            "pixels where found %"])
+                            "pixels with abundance > 0 %"])
             + _table(stats, ["fit", "value"])
             + f'<div class="figs">{"".join(figs)}</div>')
 

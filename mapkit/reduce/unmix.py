@@ -252,8 +252,8 @@ def unmix_spectra_poisson(R, X, shift, baseline_order: int | None = None, *,
 
 def unmixing_statistics(result) -> dict:
     """What an unmixing result says in numbers, over its fitted pixels: per reference the
-    mean, median and 95th percentile of the abundance and the share of pixels where it is
-    found (abundance > 0); the median residual RMS (counts) and the pixels fitted. For the
+    mean, median and 95th percentile of the abundance and the percentage of pixels where it
+    is above 0 (with noise, NNLS leaves small positive values where a reference is absent); the median residual RMS (counts) and the pixels fitted. For the
     summary of a whole map (after the blocks are joined) and the report alike.
 
     Examples
@@ -265,8 +265,9 @@ def unmixing_statistics(result) -> dict:
     ...     "abundance": Field("abundance", np.array([[[0.0, 1.0, 3.0, np.nan]]]), ax),
     ...     "residual": Field("residual_rms", np.array([[2.0, 4.0, 6.0, np.nan]]), ax[1:])})
     >>> s = unmixing_statistics(r)
-    >>> s["references"]["a"]["median"], s["references"]["a"]["found_pct"], s["residual_rms_median"]
-    (1.0, 66.66666666666667, 4.0)
+    >>> a = s["references"]["a"]
+    >>> a["median"], round(a["positive_pct"], 1), s["residual_rms_median"]
+    (1.0, 66.7, 4.0)
     """
     data = np.asarray(result.fields["abundance"].data, float)
     names = [str(n) for n in result.fields["abundance"].axes[0].values]
@@ -276,8 +277,8 @@ def unmixing_statistics(result) -> dict:
         v = data[k][good]
         refs[name] = ({"mean": float(v.mean()), "median": float(np.median(v)),
                        "p95": float(np.percentile(v, 95)),
-                       "found_pct": 100.0 * float((v > 0).mean())} if v.size else
-                      {"mean": None, "median": None, "p95": None, "found_pct": None})
+                       "positive_pct": 100.0 * float((v > 0).mean())} if v.size else
+                      {"mean": None, "median": None, "p95": None, "positive_pct": None})
     rms = np.asarray(result.fields["residual"].data, float)
     rms = rms[np.isfinite(rms)]
     return {"pixels_fitted": int(good.sum()), "references": refs,
