@@ -116,6 +116,9 @@ CASES = [
                                  [t / "a.h5"]), "ok", "wrote"),
     ("ragged text rows", lambda t: (analyse(_table(t / "a.csv", "x,y,100,200\n0,0,1,2\n1,0,3\n")),
                                     [t / "a.csv"]), "error", "line 3 has 3 values"),
+    ("empty cell in a text table", lambda t: (analyse(_table(
+        t / "a.csv", "x,y,100,200\n0,0,1,2\n1,0,3,\n0,1,5,6\n1,1,7,8\n")), [t / "a.csv"]),
+     "error", "line 3: the value in column '200' is missing (an empty cell)"),
     ("duplicate positions", lambda t: (analyse(_table(t / "a.csv", _wide(((0, 0), (0, 0))))),
                                        [t / "a.csv"]), "error", "appears more than once"),
     ("non-rectangular scan", lambda t: (analyse(_table(t / "a.csv", _wide(((0, 0), (1, 0), (0, 1))))),

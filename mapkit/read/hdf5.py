@@ -28,8 +28,10 @@ def open_h5(path):
     try:
         return h5py.File(path, "r", rdcc_nbytes=layout.CHUNK_CACHE_BYTES)
     except OSError as exc:
-        raise MapkitError(f"not a readable HDF5 file ({str(exc).split('(')[0].strip()})",
-                          file=path, fix="give an HDF5/NeXus map or a text table") from None
+        raise MapkitError(f"not a readable HDF5 file ({str(exc).split('(')[0].strip()}; it "
+                          "may be truncated or corrupt, or in another format)", file=path,
+                          fix="give an HDF5/NeXus map or a text table; copy a truncated file "
+                              "again") from None
 
 
 def dataset(f, name: str, *, source, hint: str):

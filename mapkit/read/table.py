@@ -67,6 +67,11 @@ def _read_rows(path):
                               file=path, field=f"line {lineno}",
                               fix="make every row as long as the header (ragged rows are not read)")
         for c, cell in enumerate(cells):
+            if not cell.strip():
+                raise MapkitError(f"the value in column {header[c]!r} is missing (an empty "
+                                  "cell)", file=path, field=f"line {lineno}",
+                                  fix="fill it in, write nan for a missing value, or remove "
+                                      "the row")
             if not _NUMBER.match(cell) and cell.lower() not in ("nan", "inf", "-inf"):
                 raise MapkitError(f"value {cell!r} in column {header[c]!r} is not a number",
                                   file=path, field=f"line {lineno}",
