@@ -59,7 +59,9 @@ def cmd_components(a):
         lines = [f"NMF: {n} components, {s['n_iter']} iterations"]
     elif method == "mcr_background":
         lines = [f"MCR-ALS with a background per pixel: {n} components, baseline order "
-                 f"{s['baseline_order']}, lack of fit {s['lack_of_fit_pct']:.2f} %"]
+                 f"{s['baseline_order']}, lack of fit {s['lack_of_fit_pct']:.2f} % (shot noise "
+                 f"alone would leave about {s['noise_lack_of_fit_pct']:.2f} % if the data are "
+                 "counts)"]
     else:
         lines = [f"MCR-ALS: {n} components, lack of fit {s['lack_of_fit_pct']:.2f} %, "
                  f"explained variance {s['explained_variance_pct']:.2f} %, {s['n_iter']} "

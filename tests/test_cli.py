@@ -340,3 +340,14 @@ def test_analyse_prints_the_unmixing_and_unit_of_the_content(tmp_path, capsys, s
     assert f"median residual {un['residual_rms_median']:.3g} counts" in line
     content = next(x for x in out.splitlines() if x.startswith("content   mean "))
     assert "(flagged pixels included)" in content and content.count("% w/w") == 2
+
+
+def test_report_reads_the_lack_of_fit_against_shot_noise(demo_out):
+    # the components section gives the MCR lack of fit beside what shot noise alone would
+    # leave (the numbers of summary.json), so a large value from fluorescence noise is not
+    # read as a failed fit
+    _, out, *_ = demo_out
+    mcr = json.loads((out / "summary.json").read_text())["results"]["mcr"]
+    page = (out / "report.html").read_text()
+    assert (f"Lack of fit {mcr['lack_of_fit_pct']:.1f} % of the signal after the background; "
+            f"shot noise alone would leave about {mcr['noise_lack_of_fit_pct']:.1f} %") in page

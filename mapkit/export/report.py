@@ -93,10 +93,15 @@ def write_report(path, *, map_name: str, summary: dict, results, model=None, rec
             ident = r.summary.get("identification", [])
             title = ("MCR-ALS, background fitted per pixel" if r.method == "mcr_als_background"
                      else comp_name.upper())
+            lof, noise = r.summary.get("lack_of_fit_pct"), r.summary.get("noise_lack_of_fit_pct")
+            fit = (f" Lack of fit {lof:.1f} % of the signal after the background; shot noise "
+                   f"alone would leave about {noise:.1f} % if the data are counts (close to it: "
+                   "the residual is noise; well above it: a component or a background shape "
+                   "is missing)." if lof is not None and noise is not None else "")
             parts.append(f"<h2>Components ({title})</h2><p>Each component is a spectrum and an "
                          "image of where it sits; identification against the reference "
                          "library uses the hit-quality index on a 0-1 scale (1 = same shape), "
-                         "after removing offset and slope from both sides.</p>"
+                         f"after removing offset and slope from both sides.{html.escape(fit)}</p>"
                          + _identification_table(ident, "component")
                          + f'<div class="figs">{"".join(figs)}</div>')
         classes = res.get("classes") or res.get("kmeans")

@@ -694,6 +694,11 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
         Passes over the blocks the last :meth:`start_from_blocks` took (set only by it).
     lack_of_fit_ : float
         100·‖D − C Sᵀ − B Pᵀ‖ / ‖D − B Pᵀ‖ in %.
+    noise_lack_of_fit_ : float
+        The lack of fit that shot noise alone leaves, for data in counts: the same ratio
+        with the Poisson variance (the counts) in the numerator, reduced by the channels
+        the fit spends per spectrum (components and background terms). A lack of fit near
+        it means the residual is noise; with strong fluorescence both are large.
 
     Examples
     --------
@@ -876,7 +881,14 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
         self.baseline_order_ = int(order)
         C = self._images(X, shift).T
         self.start_pixels_ = idx
-        self.lack_of_fit_ = float(100 * np.linalg.norm(Xp - C @ Sp) / (np.linalg.norm(Xp) or 1))
+        norm_p = np.linalg.norm(Xp) or 1.0
+        self.lack_of_fit_ = float(100 * np.linalg.norm(Xp - C @ Sp) / norm_p)
+        # E‖noise‖² of Poisson counts is their sum; the fit absorbs its share of it in the
+        # components and background terms it spends per spectrum (common practice: the
+        # expected residual sum of squares of a linear fit, sigma²·(n − p))
+        n_ch = X.shape[1]
+        kept = max(n_ch - Q.shape[1] - S.shape[0], 0) / n_ch
+        self.noise_lack_of_fit_ = float(100 * np.sqrt(np.clip(X, 0, None).sum() * kept) / norm_p)
         self.raman_shift_ = np.array(shift, dtype=float)
         self.n_iter_ = self.max_iter
         self.fit_images_ = rows_out(C, good, mp)
@@ -912,7 +924,9 @@ class BackgroundMCR(TransformerMixin, BaseEstimator):
                             long_name="MCR-ALS concentration (background fitted per pixel)"),
             "spectra": Field("spectrum", self.components_, (comp, shift_axis(m)), "a.u.",
                              long_name="MCR-ALS spectrum (unit maximum)")},
-            {"lack_of_fit_pct": self.lack_of_fit_, "baseline_order": self.baseline_order_,
+            {"lack_of_fit_pct": self.lack_of_fit_,
+             "noise_lack_of_fit_pct": self.noise_lack_of_fit_,
+             "baseline_order": self.baseline_order_,
              "spectra_baseline_order": self.spectra_baseline_order_, "n_iter": self.n_iter_})
 
 
