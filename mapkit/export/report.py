@@ -278,7 +278,8 @@ def _unmixing(r, fig):
 
     ab = r.fields["abundance"]
     p = r.parameters
-    numbers = unmixing_statistics(r)
+    # the analysis has put them in the summary (of the whole map); a bare result has not
+    numbers = r.summary if "references" in r.summary else unmixing_statistics(r)
     rows = [(name, v["mean"], v["median"], v["p95"], v["positive_pct"])
             for name, v in numbers["references"].items()]
     how = {"nnls": "non-negative least squares", "fcls": "fully constrained least squares "
