@@ -583,7 +583,7 @@ class ReferenceUnmixing(TransformerMixin, BaseEstimator):
         fields = {"abundance": Field("abundance", abundance, (comp, *image_axes(m)),
                                      "share" if fcls else "reference units",
                                      long_name="share of each reference (sum 1)" if fcls
-                                     else "abundance of each reference"),
+                                     else "abundance (1 = the reference as stored)"),
                   "residual": Field("residual_rms", rms, image_axes(m), "counts",
                                     long_name="RMS of the fit residual"),
                   "references": Field("reference", self.references_,
